@@ -1,0 +1,1 @@
+"""The spec compiler: TOML spec -> validated study -> variants -> pure JAX training programs."""
