@@ -210,21 +210,23 @@ def expand(spec: Spec) -> list[Variant]:
     raw = spec.model_dump(mode="python", exclude_unset=True, exclude={"ablation"}, round_trip=True)
     raw = json.loads(json.dumps(_plain(raw)))
     abl = spec.ablation
-    # Each candidate: (label, changes, where the change came from in the TOML document)
-    candidates: list[tuple[str | None, dict, tuple]] = []
+    # Each candidate: (label, changes, where it is written in the TOML document, where each
+    # changed key is written)
+    candidates: list[tuple[str | None, dict, tuple, dict[str, tuple]]] = []
     problems: list[Problem] = []
 
     if abl is None:
-        candidates.append((BASE_LABEL, {}, ()))
+        candidates.append((BASE_LABEL, {}, (), {}))
     elif abl.mode == "list":
         if abl.include_base:
-            candidates.append((BASE_LABEL, {}, ("ablation",)))
+            candidates.append((BASE_LABEL, {}, ("ablation",), {}))
         for i, v in enumerate(abl.variant):
             for key in v.set:
                 why = _check_key(key)
                 if why:
                     problems.append(Problem(("ablation", "variant", i, "set", key), why))
-            candidates.append((v.label, dict(v.set), ("ablation", "variant", i)))
+            candidates.append((v.label, dict(v.set), ("ablation", "variant", i),
+                               {k: ("ablation", "variant", i, "set", k) for k in v.set}))
     else:
         for i, axis in enumerate(abl.axis):
             why = _check_key(axis.key)
@@ -233,19 +235,23 @@ def expand(spec: Spec) -> list[Variant]:
         if abl.mode == "grid":
             for combo in itertools.product(*[list(enumerate(a.values)) for a in abl.axis]):
                 changes = {a.key: v for a, (_, v) in zip(abl.axis, combo)}
+                # The last axis stands for the whole combination; _blame narrows a problem down
+                # to the axis whose key it concerns.
                 where = ("ablation", "axis", len(abl.axis) - 1, "values", combo[-1][0])
-                candidates.append((None, changes, where))
+                origins = {a.key: ("ablation", "axis", k, "values", j) for k, (a, (j, _)) in enumerate(zip(abl.axis, combo))}
+                candidates.append((None, changes, where, origins))
         else:
-            candidates.append((BASE_LABEL, {}, ("ablation",)))
+            candidates.append((BASE_LABEL, {}, ("ablation",), {}))
             for i, axis in enumerate(abl.axis):
                 for j, value in enumerate(axis.values):
-                    candidates.append((None, {axis.key: value}, ("ablation", "axis", i, "values", j)))
+                    here = ("ablation", "axis", i, "values", j)
+                    candidates.append((None, {axis.key: value}, here, {axis.key: here}))
     if problems:
         raise SpecError(problems)
 
     variants: list[Variant] = []
     by_hash: dict[str, Variant] = {}
-    for label, changes, where in candidates:
+    for label, changes, where, origins in candidates:
         tree = copy.deepcopy(raw)
         for key, value in changes.items():
             _deep_set(tree, key, value)
@@ -254,7 +260,12 @@ def expand(spec: Spec) -> list[Variant]:
             resolved = _resolve(tree)
         except ValidationError as err:
             for p in pydantic_problems(err):
-                problems.append(Problem(where, f"variant '{label}' is invalid: {dotted(p.loc)}: {p.message}"))
+                cause = _blame(origins, p.loc)
+                message = f"variant '{label}' is invalid: {dotted(p.loc)}: {p.message}"
+                if cause and p.message.startswith("unknown key") and _written(raw, p.loc):
+                    message += (f"; the base spec sets {dotted(p.loc)}, which {cause}={format_value(changes[cause])} "
+                                "does not have: remove it from the base or set it only in the variants that use it")
+                problems.append(Problem(origins.get(cause, where), message))
             continue
         vhash = variant_hash(resolved)
         if vhash in by_hash:
@@ -273,6 +284,28 @@ def expand(spec: Spec) -> list[Variant]:
     if problems:
         raise SpecError(problems)
     return variants
+
+
+def _blame(origins: dict[str, tuple], loc: tuple) -> str | None:
+    """The changed key a problem at ``loc`` most likely comes from: the one sharing the longest
+    dotted prefix with it (the later one on a tie); None when no change touches its section."""
+    path = [p for p in loc if isinstance(p, str)]
+    best, best_score = None, 0
+    for key in origins:
+        parts = key.split(".")
+        score = next((n for n, (a, b) in enumerate(zip(parts, path)) if a != b), min(len(parts), len(path)))
+        if score >= best_score and score > 0:
+            best, best_score = key, score
+    return best
+
+
+def _written(tree: dict, loc: tuple) -> bool:
+    node: Any = tree
+    for part in loc:
+        if not isinstance(node, dict) or part not in node:
+            return False
+        node = node[part]
+    return True
 
 
 def _plain(obj):

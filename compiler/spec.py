@@ -321,6 +321,7 @@ class Axis(Strict):
     @field_validator("values")
     @classmethod
     def _distinct(cls, v):
+        _hashable_values(v)
         seen = []
         for x in v:
             if any(_same(x, y) for y in seen):
@@ -339,6 +340,7 @@ class ListedVariant(Strict):
         for k in v:
             if not _DOTTED.match(k):
                 raise ValueError(f"{k!r} is not a dotted key such as 'optimizer.learning_rate'")
+        _hashable_values(list(v.values()))
         return v
 
 
@@ -446,6 +448,21 @@ class Spec(Strict):
 def train_size(samples: int, validation: float) -> int:
     """Rows in the training split: the validation share is rounded, the rest trains."""
     return samples - int(round(samples * validation))
+
+
+_SAFE_INT = 2**53 - 1
+
+
+def _hashable_values(values: list) -> None:
+    """Axis and variant values reach the study hash before any field checks them, and canonical
+    JSON (RFC 8785) has no NaN, no infinities and no integers beyond ±(2**53 − 1)."""
+    for x in values:
+        if isinstance(x, float) and not math.isfinite(x):
+            raise ValueError(f"{x!r} is not a usable value (no setting accepts NaN or infinity)")
+        if isinstance(x, int) and not isinstance(x, bool) and abs(x) > _SAFE_INT:
+            raise ValueError(f"{x} is too large (integers must be within ±(2**53 − 1))")
+        if isinstance(x, (list, dict)):
+            _hashable_values(list(x.values()) if isinstance(x, dict) else x)
 
 
 def _same(a, b) -> bool:
