@@ -1,0 +1,102 @@
+"""The software and machine a run was computed on, as far as they can change its bits.
+
+A run's numbers are a function of (resolved variant, seed, lane width, software, machine). The
+*numerics* fields below are the software and machine part: two environments with the same
+numerics fingerprint are expected to give identical bits, and resume/replay compare them field by
+field to say what changed. Host name and time are recorded for people, never compared.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import platform
+import socket
+from importlib import metadata
+
+__all__ = ["capture", "numerics", "fingerprint", "differences"]
+
+# CPU features that decide which kernels XLA:CPU emits (and so the rounding of matmuls).
+_ISA_FLAGS = ("sse4_1", "sse4_2", "avx", "avx2", "fma", "f16c", "avx512f", "avx512bw", "avx512dq",
+              "avx512vl", "avx512_vnni", "avx512_bf16", "amx_tile", "asimd", "sve")
+
+_NUMERICS_KEYS = ("python", "jax", "jaxlib", "optax", "numpy", "xla_flags", "jax_threefry_partitionable",
+                  "jax_default_matmul_precision", "jax_enable_x64", "cpu_model", "cpu_isa", "machine", "os")
+
+
+def _version(dist: str) -> str:
+    try:
+        return metadata.version(dist)
+    except metadata.PackageNotFoundError:
+        return "absent"
+
+
+def _cpu() -> tuple[str, list[str]]:
+    model, flags = platform.processor() or "unknown", set()
+    try:
+        with open("/proc/cpuinfo", encoding="utf-8", errors="replace") as fh:
+            for line in fh:
+                key, _, value = line.partition(":")
+                key = key.strip()
+                if key == "model name" and model in ("unknown", "", platform.machine()):
+                    model = value.strip()
+                elif key in ("flags", "Features") and not flags:
+                    flags = set(value.split())
+    except OSError:
+        pass
+    return model, sorted(f for f in flags if f in _ISA_FLAGS)
+
+
+def capture() -> dict:
+    """The current process's environment. Imports jax (its config decides the random stream)."""
+    import jax
+
+    model, isa = _cpu()
+    return {
+        "python": platform.python_version(),
+        "jax": _version("jax"),
+        "jaxlib": _version("jaxlib"),
+        "optax": _version("optax"),
+        "numpy": _version("numpy"),
+        "pyarrow": _version("pyarrow"),
+        "lesion": _version("lesion"),
+        "xla_flags": os.environ.get("XLA_FLAGS", ""),
+        "jax_threefry_partitionable": bool(jax.config.jax_threefry_partitionable),
+        "jax_default_matmul_precision": str(jax.config.jax_default_matmul_precision),
+        "jax_enable_x64": bool(jax.config.jax_enable_x64),
+        "cpu_model": model,
+        "cpu_isa": isa,
+        "cores": os.cpu_count() or 0,
+        "machine": platform.machine(),
+        "os": f"{platform.system()} {platform.release()}",
+        "host": socket.gethostname(),
+    }
+
+
+def numerics(env: dict) -> dict:
+    return {k: env.get(k) for k in _NUMERICS_KEYS}
+
+
+def fingerprint(env: dict) -> str:
+    """Short digest of the numerics fields: equal fingerprints, comparable bits."""
+    text = json.dumps(numerics(env), sort_keys=True, separators=(",", ":"))
+    return hashlib.sha256(text.encode()).hexdigest()[:16]
+
+
+def differences(recorded: dict, current: dict) -> list[str]:
+    """Human-readable list of numerics fields that differ, e.g. "jax: 0.10.2 → 0.11.0"."""
+    out = []
+    for key in _NUMERICS_KEYS:
+        a, b = recorded.get(key), current.get(key)
+        if a != b:
+            out.append(f"{key}: {_show(a)} → {_show(b)}")
+    return out
+
+
+def _show(value) -> str:
+    if isinstance(value, list):
+        return ",".join(value) or "(none)"
+    if value in ("", None):
+        return "(unset)"
+    return str(value)

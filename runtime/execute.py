@@ -1,0 +1,175 @@
+"""Execution: compile groups, run their lanes, turn the numbers into result-set rows.
+
+The seam is :func:`execute_group`: one :class:`~runtime.plan.Group` and its data in, a
+:class:`GroupResult` out. It needs nothing else from the process, so a group can be executed in
+another process or on another machine and its result written here.
+
+Inside a group one program per structure is compiled (``vmap`` over lanes of (knobs, seed key)
+of the compiler's per-epoch function, steps in ``lax.scan``) and called once per epoch from
+Python; the data stays on the device across epochs and only the per-epoch metrics come back.
+JAX's persistent compilation cache (in the user's cache folder) lets a second invocation skip
+compiling; it is a speed-up only — the bits never depend on it.
+"""
+
+from __future__ import annotations
+
+import os
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+
+from runtime.plan import Group
+
+__all__ = ["GroupResult", "LaneResult", "execute_group", "enable_compile_cache", "cache_dir",
+           "BN_COLLAPSE_RATIO"]
+
+# A batch-normalized layer whose gradient norm falls below this fraction of the output layer's
+# has stopped learning: its batch statistics have (nearly) no spread left.
+BN_COLLAPSE_RATIO = 1e-4
+
+
+@dataclass
+class LaneResult:
+    run_id: str
+    lane: int
+    curves: dict[str, np.ndarray]       # metric -> float32[epochs]
+    diverged_at: int | None             # 1-based epoch, None when the run stayed finite
+    param_digest: str
+    warnings: list[str] = field(default_factory=list)
+
+
+@dataclass
+class GroupResult:
+    group_id: str
+    lane_width: int
+    metric_names: tuple[str, ...]
+    lanes: list[LaneResult]
+    compile_seconds: float
+    run_seconds: float
+    environment: dict
+
+
+def cache_dir() -> Path:
+    """The compile cache folder: ``$LESION_CACHE_DIR``, else ``$XDG_CACHE_HOME/lesion/xla``,
+    else ``~/.cache/lesion/xla``. Trusted local state: it holds compiled machine code."""
+    if os.environ.get("LESION_CACHE_DIR"):
+        return Path(os.environ["LESION_CACHE_DIR"])
+    base = os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache")
+    return Path(base) / "lesion" / "xla"
+
+
+_cache_enabled = False
+
+
+def enable_compile_cache() -> None:
+    global _cache_enabled
+    if _cache_enabled:
+        return
+    import jax
+
+    path = cache_dir()
+    try:
+        path.mkdir(parents=True, exist_ok=True)
+    except OSError:
+        return  # no cache folder: compile every time, the numbers are the same
+    jax.config.update("jax_compilation_cache_dir", str(path))
+    jax.config.update("jax_persistent_cache_min_compile_time_secs", 0.2)
+    jax.config.update("jax_persistent_cache_min_entry_size_bytes", 0)
+    _cache_enabled = True
+
+
+# Compiled (init, epoch) per (structure, lane width, data shape), reused by every group of a
+# structure within one process.
+_programs: dict[tuple, tuple] = {}
+
+
+def _compiled(group: Group, dataset, knobs, keys):
+    import jax
+
+    from compiler.build import compile_variant
+
+    key = (group.structure, group.lane_width, dataset.x.shape, dataset.fingerprint)
+    if key in _programs:
+        return _programs[key] + (0.0,)
+    program = compile_variant(group.runs[0].variant.spec, dataset)
+    t0 = time.perf_counter()
+    init = jax.jit(jax.vmap(program.init, in_axes=(0, 0, None, None)))
+    epoch = jax.jit(jax.vmap(program.epoch, in_axes=(0, 0, None, None)))
+    x, y = jax.device_put(dataset.x), jax.device_put(dataset.y)
+    init_c = init.lower(knobs, keys, x, y).compile()
+    carry_shape = jax.eval_shape(jax.vmap(program.init, in_axes=(0, 0, None, None)), knobs, keys, x, y)
+    epoch_c = epoch.lower(carry_shape, knobs, x, y).compile()
+    status = jax.jit(jax.vmap(program.status))
+    params = jax.jit(jax.vmap(program.params))
+    seconds = time.perf_counter() - t0
+    _programs[key] = (program, init_c, epoch_c, status, params, x, y)
+    return _programs[key] + (seconds,)
+
+
+def execute_group(group: Group, dataset, environment: dict,
+                  on_epoch: Callable[[int, int], None] | None = None) -> GroupResult:
+    """Train every run of a group at the group's lane width and return its numbers."""
+    import jax
+    import jax.numpy as jnp
+
+    from compiler.build import knob_vector, param_digest, seed_key
+
+    lanes = list(group.runs) + [group.runs[0]] * group.padding
+    vectors = [knob_vector(r.variant.spec) for r in lanes]
+    names = tuple(vectors[0])
+    knobs = {n: jnp.asarray(np.array([v[n] for v in vectors], dtype=np.float32)) for n in names}
+    keys = jax.vmap(seed_key)(jnp.asarray([r.seed for r in lanes], dtype=jnp.int32))
+
+    program, init_c, epoch_c, status_fn, params_fn, x, y, compile_seconds = _compiled(group, dataset, knobs, keys)
+    t0 = time.perf_counter()
+    carry = init_c(knobs, keys, x, y)
+    per_epoch = []
+    for e in range(program.epochs):
+        carry, metrics = epoch_c(carry, knobs, x, y)
+        per_epoch.append(metrics)
+        if on_epoch is not None:
+            jax.block_until_ready(metrics)
+            on_epoch(e + 1, program.epochs)
+    per_epoch, (diverged, at), params = jax.device_get((per_epoch, status_fn(carry), params_fn(carry)))
+    run_seconds = time.perf_counter() - t0
+
+    names = program.metric_names
+    stacked = {m: np.stack([np.asarray(ep[m], dtype=np.float32) for ep in per_epoch]) for m in names}
+    results = []
+    for i, run in enumerate(group.runs):
+        curves = {m: stacked[m][:, i] for m in names}
+        lane_params = jax.tree.map(lambda a: a[i], params)
+        results.append(LaneResult(
+            run_id=run.run_id, lane=i, curves=curves,
+            diverged_at=int(at[i]) + 1 if bool(diverged[i]) else None,
+            param_digest=param_digest(lane_params),
+            warnings=_warnings(run.variant.spec, curves),
+        ))
+    return GroupResult(group.group_id, group.lane_width, names, results, compile_seconds, run_seconds, environment)
+
+
+def _warnings(spec, curves: dict[str, np.ndarray]) -> list[str]:
+    """Batch-normalized layers whose gradient collapsed, judged from per-layer gradient norms."""
+    if spec.normalization.kind != "batch":
+        return []
+    hidden = len(spec.model.widths)
+    out_norm = curves.get(f"grad_norm_l{hidden + 1}")
+    if out_norm is None:
+        return []
+    found = []
+    for layer in range(1, hidden + 1):
+        g = curves.get(f"grad_norm_l{layer}")
+        if g is None:
+            continue
+        with np.errstate(divide="ignore", invalid="ignore"):
+            ratio = g / out_norm
+        bad = np.flatnonzero(np.isfinite(ratio) & (ratio < BN_COLLAPSE_RATIO) & (out_norm > 0))
+        if bad.size:
+            e = int(bad[0])
+            found.append(f"batch-normalized layer l{layer}: gradient collapsed from epoch {e + 1} "
+                         f"(|g| {g[e]:.2e} vs output layer {out_norm[e]:.2e}); "
+                         "are the batch rows nearly identical?")
+    return found

@@ -1,0 +1,83 @@
+"""Planning: a study's runs (variant × seed) grouped into compile groups of a fixed lane width.
+
+Every variant with the same structure key shares one XLA program, vmapped over lanes of
+(knobs, seed). The lane width is part of what decides a run's bits (XLA:CPU results depend on the
+batch width, not on the neighbouring lanes' values), so:
+
+- the width of a structure is chosen from *all* of the study's runs of that structure, never from
+  the runs still missing, so a resumed study computes its remaining runs at the width the first
+  invocation used;
+- a group with fewer runs than the width is padded with copies of its first run, and the padding
+  is discarded;
+- replay re-plans a stored run at its recorded width.
+
+The width is the number of runs of the structure, capped by ``max_lanes`` and by a memory bound.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from compiler.expand import Variant
+from compiler.hashing import run_id
+
+__all__ = ["Run", "Group", "plan", "DEFAULT_MAX_LANES", "lane_bytes"]
+
+# Wider lanes amortize per-step overhead on small models; beyond ~32 the matrices are big enough
+# that XLA:CPU gains nothing more on two cores and memory grows linearly.
+DEFAULT_MAX_LANES = 32
+
+
+@dataclass(frozen=True)
+class Run:
+    run_id: str
+    variant: Variant
+    seed: int
+
+
+@dataclass(frozen=True)
+class Group:
+    group_id: str          # "<structure key>-<chunk index>"
+    structure: str
+    lane_width: int
+    runs: tuple[Run, ...]  # 1..lane_width real runs; execution pads to lane_width
+
+    @property
+    def padding(self) -> int:
+        return self.lane_width - len(self.runs)
+
+
+def lane_bytes(variant: Variant, features: int, outputs: int) -> int:
+    """Rough bytes one lane needs while training: parameters with gradients and up to three
+    optimizer slots, activations of one batch kept for the backward pass, float32."""
+    spec = variant.spec
+    widths = [features, *spec.model.widths, outputs]
+    params = sum(a * b + 3 * b for a, b in zip(widths[:-1], widths[1:]))
+    batch = spec.training.batch_size
+    activations = batch * sum(widths) * 4
+    if spec.regularization.dropout.kind == "connect":
+        activations += batch * params  # a weight mask per example
+    return 4 * (5 * params + activations)
+
+
+def plan(variants: list[Variant], seeds: list[int], *, lanes: int | None = None,
+         max_lanes: int = DEFAULT_MAX_LANES, lane_budget: dict[str, int] | None = None) -> list[Group]:
+    """Groups of runs in a fixed order (structure in order of first appearance, then variant
+    order, then seed order). ``lanes`` forces the width; ``lane_budget`` maps a structure key to
+    the most lanes its memory allows."""
+    by_structure: dict[str, list[Run]] = {}
+    for v in variants:
+        for s in seeds:
+            by_structure.setdefault(v.structure, []).append(Run(run_id(v.hash, s), v, s))
+    groups = []
+    for structure, runs in by_structure.items():
+        if lanes is not None:
+            width = lanes
+        else:
+            width = min(len(runs), max_lanes)
+            if lane_budget and structure in lane_budget:
+                width = max(1, min(width, lane_budget[structure]))
+        for i in range(0, len(runs), width):
+            chunk = tuple(runs[i:i + width])
+            groups.append(Group(f"{structure}-{i // width}", structure, width, chunk))
+    return groups

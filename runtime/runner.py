@@ -1,0 +1,269 @@
+"""``lesion run``: a loaded study planned, executed group by group, and stored.
+
+Order of work: hold the result set's writer lock; read what is already stored; plan every run of
+the study (so lane widths never depend on what is missing); skip runs stored with the same run
+id and the same numerics environment; execute the rest group by group, writing each finished
+group atomically before starting the next. An interruption loses at most the group in flight.
+"""
+
+from __future__ import annotations
+
+import json
+import time
+from dataclasses import dataclass
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+import pyarrow as pa
+
+from compiler.hashing import canonical_json, variant_payload
+from compiler.spec import METRICS
+from runtime import __version__, environment
+from runtime.execute import GroupResult, enable_compile_cache, execute_group
+from runtime.plan import Group, plan
+from runtime.store import ResultSet, ResultSetError, open_result_set, result_dir, write_results, writer_lock
+
+__all__ = ["RunReport", "run_study", "study_meta", "varied_keys", "group_tables", "datasets_for"]
+
+
+@dataclass
+class RunReport:
+    path: Path
+    planned: int
+    computed: int
+    reused: int
+    diverged: int
+    warnings: list[str]
+    groups: int
+    compile_seconds: float
+    run_seconds: float
+
+
+def study_meta(loaded, env: dict) -> dict:
+    return {
+        "spec_source": loaded.source,
+        "spec_path": str(Path(loaded.path).resolve()) if loaded.path else "",
+        "canonical_json": canonical_json(loaded.spec.model_dump(mode="json")).decode(),
+        "study_hash": loaded.study_hash,
+        "version": __version__,
+        "environment": env,
+    }
+
+
+def varied_keys(variants) -> list[str]:
+    keys: list[str] = []
+    for v in variants:
+        for k in v.changes:
+            if k not in keys:
+                keys.append(k)
+    return keys
+
+
+def _lookup(tree, dotted: str):
+    node = tree
+    for part in dotted.split("."):
+        if not isinstance(node, dict) or part not in node:
+            return None
+        node = node[part]
+    return node
+
+
+def _key_columns(variants, keys: list[str]) -> dict[str, tuple[pa.DataType, dict]]:
+    """Each varied key's value in every resolved variant, typed when the values share a type."""
+    out = {}
+    for key in keys:
+        values = {v.hash: _lookup(variant_payload(v.spec), key) for v in variants}
+        kinds = {type(x) for x in values.values() if x is not None}
+        if kinds <= {bool}:
+            typ = pa.bool_()
+        elif kinds <= {int}:
+            typ = pa.int64()
+        elif kinds <= {int, float}:
+            typ, values = pa.float64(), {h: (None if x is None else float(x)) for h, x in values.items()}
+        elif kinds <= {str}:
+            typ = pa.string()
+        else:
+            typ = pa.string()
+            values = {h: (None if x is None else json.dumps(x, sort_keys=True)) for h, x in values.items()}
+        out[key] = (typ, values)
+    return out
+
+
+def datasets_for(groups: list[Group], base_dir: Path) -> dict[str, object]:
+    """One data set per distinct data section (loaded once, shared by its groups)."""
+    from compiler.data import load_data
+
+    cache: dict[str, object] = {}
+    out = {}
+    for g in groups:
+        spec = g.runs[0].variant.spec
+        key = json.dumps(spec.data.model_dump(mode="json"), sort_keys=True)
+        if key not in cache:
+            cache[key] = load_data(spec, base_dir)
+        out[g.group_id] = cache[key]
+    return out
+
+
+def group_tables(result: GroupResult, group: Group, study_hash: str, headline: str, key_columns: dict,
+                 data_fingerprint: str) -> tuple[pa.Table, pa.Table]:
+    """The runs rows and curves rows of one executed group."""
+    env_json = json.dumps(result.environment, sort_keys=True)
+    env_fp = environment.fingerprint(result.environment)
+    direction = METRICS[headline]
+    by_id = {r.run_id: r for r in group.runs}
+    finished = datetime.now(timezone.utc).isoformat(timespec="seconds")
+    n = len(result.lanes)
+    cols: dict[str, list] = {k: [] for k in (
+        "study_hash", "variant_hash", "run_id", "variant_label", "variant_index", "changes")}
+    cols.update({k: [] for k in key_columns})
+    for k in ("seed", "lane_width", "lane", "group_id", "structure", "status", "diverged_at", "epochs"):
+        cols[k] = []
+    finals = {f"final_{m}": [] for m in result.metric_names}
+    best, best_epoch = [], []
+    tail = {k: [] for k in ("param_digest", "data_fingerprint", "env_fingerprint", "environment",
+                            "compile_seconds", "run_seconds", "warnings", "finished_at")}
+    curve_cols: dict[str, list] = {"run_id": [], "variant_label": [], "seed": [], "epoch": []}
+    curve_metrics: dict[str, list] = {m: [] for m in result.metric_names}
+    for lane in result.lanes:
+        run = by_id[lane.run_id]
+        v = run.variant
+        epochs = len(next(iter(lane.curves.values())))
+        cols["study_hash"].append(study_hash)
+        cols["variant_hash"].append(v.hash)
+        cols["run_id"].append(lane.run_id)
+        cols["variant_label"].append(v.label)
+        cols["variant_index"].append(v.index)
+        cols["changes"].append(json.dumps(v.changes, sort_keys=True))
+        for k, (_, values) in key_columns.items():
+            cols[k].append(values[v.hash])
+        cols["seed"].append(run.seed)
+        cols["lane_width"].append(result.lane_width)
+        cols["lane"].append(lane.lane)
+        cols["group_id"].append(result.group_id)
+        cols["structure"].append(group.structure)
+        cols["status"].append("diverged" if lane.diverged_at is not None else "ok")
+        cols["diverged_at"].append(lane.diverged_at)
+        cols["epochs"].append(epochs)
+        for m in result.metric_names:
+            finals[f"final_{m}"].append(lane.curves[m][-1])
+        h = lane.curves.get(headline)
+        if h is None or not np.isfinite(h).any():
+            best.append(np.float32("nan"))
+            best_epoch.append(None)
+        else:
+            i = int(np.nanargmax(h) if direction == "max" else np.nanargmin(h))
+            best.append(h[i])
+            best_epoch.append(i + 1)
+        tail["param_digest"].append(lane.param_digest)
+        tail["data_fingerprint"].append(data_fingerprint)
+        tail["env_fingerprint"].append(env_fp)
+        tail["environment"].append(env_json)
+        tail["compile_seconds"].append(result.compile_seconds)
+        tail["run_seconds"].append(result.run_seconds / n)
+        tail["warnings"].append("; ".join(lane.warnings))
+        tail["finished_at"].append(finished)
+        curve_cols["run_id"].extend([lane.run_id] * epochs)
+        curve_cols["variant_label"].extend([v.label] * epochs)
+        curve_cols["seed"].extend([run.seed] * epochs)
+        curve_cols["epoch"].extend(range(1, epochs + 1))
+        for m in result.metric_names:
+            curve_metrics[m].append(lane.curves[m])
+    int32 = {"variant_index", "lane_width", "lane", "diverged_at", "epochs"}
+    arrays, names = [], []
+    for k, vals in cols.items():
+        if k in key_columns:
+            arrays.append(pa.array(vals, type=key_columns[k][0]))
+        elif k in int32:
+            arrays.append(pa.array(vals, type=pa.int32()))
+        elif k == "seed":
+            arrays.append(pa.array(vals, type=pa.int64()))
+        else:
+            arrays.append(pa.array(vals, type=pa.string()))
+        names.append(k)
+    for k, vals in finals.items():
+        arrays.append(pa.array(np.asarray(vals, dtype=np.float32)))
+        names.append(k)
+    arrays += [pa.array(np.asarray(best, dtype=np.float32)), pa.array(best_epoch, type=pa.int32())]
+    names += [f"best_{headline}", "best_epoch"]
+    for k, vals in tail.items():
+        typ = pa.float64() if k.endswith("seconds") else pa.string()
+        arrays.append(pa.array(vals, type=typ))
+        names.append(k)
+    runs = pa.Table.from_arrays(arrays, names=names)
+    c_arrays = [pa.array(curve_cols["run_id"], type=pa.string()), pa.array(curve_cols["variant_label"], type=pa.string()),
+                pa.array(curve_cols["seed"], type=pa.int64()), pa.array(curve_cols["epoch"], type=pa.int32())]
+    c_names = ["run_id", "variant_label", "seed", "epoch"]
+    for m, parts in curve_metrics.items():
+        c_arrays.append(pa.array(np.concatenate(parts).astype(np.float32)))
+        c_names.append(m)
+    return runs, pa.Table.from_arrays(c_arrays, names=c_names)
+
+
+def _stored(path: Path) -> ResultSet | None:
+    if not (path / "runs.parquet").exists():
+        return None
+    return open_result_set(path)
+
+
+def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = False,
+              progress: Callable | None = None, on_wait: Callable | None = None) -> RunReport:
+    """Compute every run of the study not already stored; write each group as it finishes.
+
+    ``progress(event, **info)`` receives ("plan", groups=…, runs=…), ("group", group=…,
+    todo=…), ("epoch", done=…, total=…), ("stored", group=…, result=…)."""
+    enable_compile_cache()
+    env = environment.capture()
+    env_fp = environment.fingerprint(env)
+    path = result_dir(out, loaded.spec.study.name, loaded.study_hash)
+    meta = study_meta(loaded, env)
+    spec = loaded.spec
+    headline = spec.study.metric
+    seeds = spec.study.seed_list
+    with writer_lock(path, on_wait=on_wait):
+        stored = None if fresh else _stored(path)
+        if stored is not None and stored.study_hash != loaded.study_hash:
+            raise ResultSetError(f"{path}: holds study {stored.study_hash[:12]}, not {loaded.study_hash[:12]}")
+        done = set()
+        if stored is not None:
+            for rid, fp in zip(stored.runs.column("run_id").to_pylist(),
+                               stored.runs.column("env_fingerprint").to_pylist()):
+                if fp == env_fp:
+                    done.add(rid)
+        groups = plan(loaded.variants, seeds, lanes=lanes)
+        todo = []
+        for g in groups:
+            missing = tuple(r for r in g.runs if r.run_id not in done)
+            if missing:
+                todo.append(Group(g.group_id, g.structure, g.lane_width, missing))
+        planned = sum(len(g.runs) for g in groups)
+        if progress:
+            progress("plan", groups=len(todo), runs=sum(len(g.runs) for g in todo), planned=planned)
+        base_dir = Path(loaded.path).resolve().parent if loaded.path else Path.cwd()
+        data = datasets_for(todo, base_dir)
+        key_columns = _key_columns(loaded.variants, varied_keys(loaded.variants))
+        diverged, warnings = 0, []
+        compile_s = run_s = 0.0
+        current = stored
+        if fresh and (path / "runs.parquet").exists():
+            current = None
+        for g in todo:
+            if progress:
+                progress("group", group=g, todo=len(g.runs))
+            result = execute_group(g, data[g.group_id], env,
+                                   on_epoch=(lambda d, t: progress("epoch", done=d, total=t)) if progress else None)
+            runs_t, curves_t = group_tables(result, g, loaded.study_hash, headline, key_columns,
+                                            data[g.group_id].fingerprint)
+            current = write_results(path, meta, runs_t, curves_t, previous=current)
+            diverged += sum(1 for lane in result.lanes if lane.diverged_at is not None)
+            warnings += [f"{lane.run_id}: {w}" for lane in result.lanes for w in lane.warnings]
+            compile_s += result.compile_seconds
+            run_s += result.run_seconds
+            if progress:
+                progress("stored", group=g, result=result)
+        if current is None:  # nothing to compute and nothing stored: an empty study cannot happen
+            raise ResultSetError(f"{path}: nothing was computed")
+        computed = sum(len(g.runs) for g in todo)
+        return RunReport(path, planned, computed, planned - computed, diverged, warnings, len(todo),
+                         compile_s, run_s)

@@ -1,0 +1,78 @@
+"""``lesion show``: a result set summarized per variant across seeds.
+
+The headline metric (the study's ``metric``) and the final validation divergence are summarized
+by their value at the last epoch of each run: mean, sample standard deviation and a 95 % t
+interval of the mean. Diverged runs are counted and left out of the statistics.
+"""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+
+from runtime.stats import summarize
+from runtime.store import ResultSet
+
+__all__ = ["summary_rows", "curve_rows", "SUMMARY_COLUMNS", "headline_of"]
+
+SUMMARY_COLUMNS = ["variant", "ok", "diverged", "mean", "sd", "ci_low", "ci_high",
+                   "val_divergence", "val_divergence_sd", "groups", "seconds", "warnings"]
+
+
+def headline_of(rs: ResultSet) -> str:
+    return json.loads(rs.meta["canonical_json"])["study"]["metric"]
+
+
+def _variants(rs: ResultSet) -> list[tuple[int, str]]:
+    pairs = sorted(set(zip(rs.runs.column("variant_index").to_pylist(), rs.runs.column("variant_label").to_pylist())))
+    return pairs
+
+
+def summary_rows(rs: ResultSet, metric: str | None = None) -> list[dict]:
+    metric = metric or headline_of(rs)
+    cols = rs.runs.to_pydict()
+    col = f"final_{metric}"
+    if col not in cols:
+        have = sorted(c[len("final_"):] for c in cols if c.startswith("final_"))
+        raise ValueError(f"metric {metric!r} is not in this result set (it has: {', '.join(have)})")
+    rows = []
+    for _, label in _variants(rs):
+        idx = [i for i, lab in enumerate(cols["variant_label"]) if lab == label]
+        ok = [i for i in idx if cols["status"][i] == "ok"]
+        head = summarize([cols[col][i] for i in ok])
+        div = summarize([cols["final_val_divergence"][i] for i in ok]) if "final_val_divergence" in cols else None
+        warn = sum(1 for i in idx if cols["warnings"][i])
+        rows.append({
+            "variant": label, "ok": len(ok), "diverged": len(idx) - len(ok),
+            "mean": head.mean, "sd": head.sd, "ci_low": head.ci_low, "ci_high": head.ci_high,
+            "val_divergence": div.mean if div else None, "val_divergence_sd": div.sd if div else None,
+            "groups": len({cols["group_id"][i] for i in idx}),
+            "seconds": float(sum(cols["run_seconds"][i] for i in idx)),
+            "warnings": warn or None,
+        })
+    return rows
+
+
+def curve_rows(rs: ResultSet, metrics: list[str] | None = None) -> tuple[list[dict], list[str]]:
+    """Per-epoch means across the ok runs of each variant."""
+    curves = rs.curves.to_pydict()
+    ok_ids = {r for r, s in zip(rs.runs.column("run_id").to_pylist(), rs.runs.column("status").to_pylist()) if s == "ok"}
+    headline = headline_of(rs)
+    default = [m for m in (headline, "train_divergence", "val_divergence") if m in curves]
+    metrics = metrics or list(dict.fromkeys(default))
+    for m in metrics:
+        if m not in curves:
+            raise ValueError(f"metric {m!r} is not in this result set's curves")
+    rows = []
+    for _, label in _variants(rs):
+        idx = [i for i, (lab, rid) in enumerate(zip(curves["variant_label"], curves["run_id"]))
+               if lab == label and rid in ok_ids]
+        epochs = sorted({curves["epoch"][i] for i in idx})
+        for e in epochs:
+            sel = [i for i in idx if curves["epoch"][i] == e]
+            row = {"variant": label, "epoch": e, "runs": len(sel)}
+            for m in metrics:
+                row[m] = float(np.mean([curves[m][i] for i in sel]))
+            rows.append(row)
+    return rows, ["variant", "epoch", "runs", *metrics]
