@@ -120,12 +120,13 @@ def _print_check_table(study) -> None:
         if changes == v.label:
             changes = "(as the label says)"
         table.add_row(str(v.index), v.label, changes, v.hash[:12], seeds, v.structure)
-    Console(markup=False, highlight=False, emoji=False, width=max(100, _terminal_width())).print(table)
+    Console(markup=False, highlight=False, emoji=False, width=_terminal_width()).print(table)
 
 
 def _terminal_width() -> int:
+    # Piped output has no width to respect; keep each variant on one line for grep and diff.
     import shutil
-    return shutil.get_terminal_size((100, 24)).columns
+    return shutil.get_terminal_size((100, 24)).columns if sys.stdout.isatty() else 200
 
 
 def _seeds_text(seeds: list[int]) -> str:
