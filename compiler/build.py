@@ -1,0 +1,254 @@
+"""From a resolved variant to pure JAX training functions: where the spec meets the components.
+
+Contract (what the runtime relies on): :func:`compile_variant` ``(variant, dataset) -> Program``
+builds — but does not jit — pure, vmappable functions of
+
+- ``knobs``: ``{name: f32 scalar}`` for the names in ``Program.knob_names`` (the variant's entries
+  of :data:`compiler.hashing.KNOBS`, from :func:`knob_vector`). Every knob is traced, so one XLA
+  program serves every variant of a structure key;
+- ``key``: the run's root key :func:`seed_key` ``(seed)``;
+- ``data_x``, ``data_y``: the whole :class:`compiler.data.Dataset` arrays, shared by all lanes.
+
+``init`` draws the run's train/validation split and fits standardization (mean, population
+standard deviation; constant features get scale 1) on its training rows. ``epoch`` is a whole
+epoch: shuffle, every step in ``lax.scan``, then the validation split in inference mode;
+``train`` is ``init`` then a scan over ``epochs``. Metrics per epoch are named in
+``Program.metric_names``.
+
+Randomness: one root key per seed; fixed tags derive independent streams
+(``fold_in(root, tag)``): the split, the initial weights, the per-epoch shuffle
+(``fold_in(stream, epoch)``) and dropout (``fold_in(fold_in(stream, epoch), step)``). Two variants
+with the same seed and shapes therefore share split, initial weights and batch order.
+
+Health: if the objective, a gradient-updated parameter or a running statistic is not finite, the
+step is discarded (``jnp.where``), the run stays frozen from then on, ``status`` reports the
+epoch it happened in, and that epoch's and later metrics are NaN.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from typing import Any, Callable, NamedTuple
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+import optax
+
+from compiler import divergences, model, normalization, optimizers, regularization
+from compiler.data import Dataset
+from compiler.hashing import knobs_of, structure_key
+from compiler.spec import Spec, WarmupCosine, train_size
+
+__all__ = ["Program", "Carry", "compile_variant", "knob_vector", "seed_key", "param_digest",
+           "SPLIT", "INIT", "SHUFFLE", "DROPOUT"]
+
+# Purpose tags of the random streams; fixed forever, since they decide every run's bits.
+SPLIT, INIT, SHUFFLE, DROPOUT = 1, 2, 3, 4
+
+
+class Program(NamedTuple):
+    structure: str
+    knob_names: tuple[str, ...]
+    metric_names: tuple[str, ...]
+    epochs: int
+    init: Callable
+    epoch: Callable
+    train: Callable
+    evaluate: Callable
+    params: Callable
+    status: Callable
+
+
+class Carry(NamedTuple):
+    params: Any
+    state: Any            # running statistics of the normalizers
+    opt_state: Any
+    knobs: dict           # kept for ``evaluate``, which takes no knobs
+    epoch: jax.Array      # int32, index of the next epoch
+    train_idx: jax.Array  # int32 [n_train]
+    val_idx: jax.Array    # int32 [n_val]
+    x_mean: jax.Array
+    x_scale: jax.Array
+    shuffle_key: jax.Array
+    dropout_key: jax.Array
+    diverged: jax.Array   # bool
+    diverged_at: jax.Array  # int32 epoch index, −1 while healthy
+
+
+class _Parts(NamedTuple):
+    divergence: divergences.Divergence
+    network: model.Network
+    tx: optax.GradientTransformation
+    schedule: Callable
+    weight_decay: Any
+
+
+def seed_key(seed: int) -> jax.Array:
+    """The root key of a run: a typed threefry key."""
+    return jax.random.key(seed)
+
+
+def knob_vector(variant: Spec) -> dict[str, np.float32]:
+    """The variant's knob values as float32 scalars, in ``KNOBS`` order."""
+    return {name: np.float32(value) for name, value in knobs_of(variant).items()}
+
+
+def param_digest(params_pytree) -> str:
+    """SHA-256 hex over every leaf in sorted key-path order: path, dtype, shape, raw bytes."""
+    h = hashlib.sha256()
+    leaves = jax.tree_util.tree_flatten_with_path(params_pytree)[0]
+    for path, leaf in sorted(leaves, key=lambda item: jax.tree_util.keystr(item[0])):
+        a = np.ascontiguousarray(np.asarray(leaf))
+        h.update(f"{jax.tree_util.keystr(path)}|{a.dtype.str}|{a.shape}|".encode())
+        h.update(a.tobytes())
+    return h.hexdigest()
+
+
+def _fields(knobs: dict, prefix: str, skip: tuple[str, ...] = ()) -> dict:
+    """The knobs directly under ``prefix``, keyed by their last name (the factories' arguments)."""
+    return {name[len(prefix):]: value for name, value in knobs.items()
+            if name.startswith(prefix) and "." not in name[len(prefix):] and name[len(prefix):] not in skip}
+
+
+def _global_norm(tree) -> jax.Array:
+    leaves = jax.tree.leaves(tree)
+    return optax.global_norm(leaves) if leaves else jnp.float32(0.0)
+
+
+def _all_finite(tree) -> jax.Array:
+    return jnp.all(jnp.stack([jnp.all(jnp.isfinite(leaf)) for leaf in jax.tree.leaves(tree)]))
+
+
+def compile_variant(variant: Spec, dataset: Dataset) -> Program:
+    """Pure training functions for one resolved variant (``model.hidden`` a list) and its data."""
+    n, features = dataset.x.shape
+    classification = dataset.task == "classification"
+    n_train = train_size(n, variant.data.validation)
+    targets = None if classification else dataset.y.shape[1]
+    epochs = variant.training.epochs
+    batch_size = variant.training.batch_size
+    drop_last = variant.training.drop_last
+    steps = n_train // batch_size if drop_last else -(-n_train // batch_size)
+    padded = steps * batch_size
+    decoupled = variant.regularization.decoupled
+    opt = variant.optimizer
+    schedule_spec = opt.schedule
+    static_schedule = {"warmup_epochs": schedule_spec.warmup_epochs} if isinstance(schedule_spec, WarmupCosine) else {}
+    static_opt = {"nesterov": opt.nesterov} if opt.kind == "sgd" else {}
+    widths = list(variant.model.widths)
+    names = model.layer_names(len(widths) + 1)
+    knob_names = tuple(knobs_of(variant))
+
+    def parts(knobs) -> _Parts:
+        divergence = divergences.REGISTRY[variant.divergence.kind](**_fields(knobs, "divergence."))
+        normalizer = normalization.REGISTRY[variant.normalization.kind](**_fields(knobs, "normalization."))
+        dropout = regularization.REGISTRY[variant.regularization.dropout.kind](
+            **_fields(knobs, "regularization.dropout."))
+        out_width = divergence.width(dataset.classes, targets)
+        network = model.mlp(widths, out_width, variant.model.activation, variant.model.init, normalizer, dropout)
+        schedule = optimizers.SCHEDULES[schedule_spec.kind](
+            knobs["optimizer.learning_rate"], steps, steps * epochs,
+            **_fields(knobs, "optimizer.schedule."), **static_schedule)
+        weight_decay = knobs["regularization.weight_decay"]
+        # The mask is a function of the params tree so optax can build it at init and update alike.
+        decay = (weight_decay, model.weight_mask) if decoupled else None
+        tx = optimizers.REGISTRY[opt.kind](schedule, **_fields(knobs, "optimizer.", skip=("learning_rate",)),
+                                           **static_opt, decoupled=decay)
+        return _Parts(divergence, network, tx, schedule, weight_decay)
+
+    def standardize(carry, x):
+        return (x - carry.x_mean) / carry.x_scale
+
+    def init(knobs, key, data_x, data_y):
+        p = parts(knobs)
+        data_x = jnp.asarray(data_x)
+        order = jax.random.permutation(jax.random.fold_in(key, SPLIT), n)
+        train_idx, val_idx = order[:n_train], order[n_train:]
+        x_train = data_x[train_idx]
+        mean = jnp.mean(x_train, axis=0)
+        std = jnp.std(x_train, axis=0)
+        params, state = p.network.init(jax.random.fold_in(key, INIT), features)
+        return Carry(params, state, p.tx.init(params), dict(knobs), jnp.int32(0),
+                     train_idx.astype(jnp.int32), val_idx.astype(jnp.int32), mean,
+                     jnp.where(std > 0, std, 1.0), jax.random.fold_in(key, SHUFFLE),
+                     jax.random.fold_in(key, DROPOUT), jnp.bool_(False), jnp.int32(-1))
+
+    def scores(p, params, state, x, y):
+        """Inference-mode divergence and accuracy/RMSE on standardized inputs."""
+        # Inference draws no dropout masks, so any key will do.
+        z, _ = p.network.apply(params, state, x, jax.random.key(0), None, False)
+        out = {"divergence": jnp.mean(p.divergence.per_example(z, y))}
+        if not classification:
+            out["rmse"] = jnp.sqrt(jnp.mean(jnp.square(z - y)))
+        elif z.shape[-1] == 1:
+            out["accuracy"] = jnp.mean(((z[:, 0] > 0) == (y == 1)).astype(jnp.float32))
+        else:
+            out["accuracy"] = jnp.mean((jnp.argmax(z, axis=-1) == y).astype(jnp.float32))
+        return out
+
+    def epoch(carry: Carry, knobs, data_x, data_y):
+        p = parts(knobs)
+        data_x, data_y = jnp.asarray(data_x), jnp.asarray(data_y)
+        weights = model.weight_mask(carry.params)
+        e = carry.epoch
+        order = carry.train_idx[jax.random.permutation(jax.random.fold_in(carry.shuffle_key, e), n_train)]
+        real = jnp.ones((n_train,), jnp.float32)
+        if padded > n_train:
+            order = jnp.concatenate([order, jnp.zeros((padded - n_train,), jnp.int32)])
+            real = jnp.concatenate([real, jnp.zeros((padded - n_train,), jnp.float32)])
+        batches = (order[:padded].reshape(steps, batch_size), real[:padded].reshape(steps, batch_size))
+        epoch_dropout = jax.random.fold_in(carry.dropout_key, e)
+
+        def step(inner, batch):
+            params, state, opt_state, diverged = inner
+            (idx, mask), s = batch
+            x = standardize(carry, data_x[idx])
+            y = data_y[idx]
+
+            def objective(params):
+                z, new_state = p.network.apply(params, state, x, jax.random.fold_in(epoch_dropout, s), mask, True)
+                div = jnp.sum(mask * p.divergence.per_example(z, y)) / jnp.sum(mask)
+                penalty = jnp.float32(0.0) if decoupled else regularization.l2_penalty(params, weights, p.weight_decay)
+                return div + penalty, (div, penalty, new_state)
+
+            (value, (div, penalty, new_state)), grads = jax.value_and_grad(objective, has_aux=True)(params)
+            updates, new_opt_state = p.tx.update(grads, opt_state, params)
+            new_params = optax.apply_updates(params, updates)
+            ok = (~diverged & jnp.isfinite(value) & _all_finite(new_params)
+                  & (_all_finite(new_state) if jax.tree.leaves(new_state) else True))
+            keep = lambda new, old: jax.tree.map(lambda a, b: jnp.where(ok, a, b), new, old)
+            inner = (keep(new_params, params), keep(new_state, state), keep(new_opt_state, opt_state),
+                     diverged | ~ok)
+            metrics = {"train_divergence": div, "train_penalty": penalty, "grad_norm": _global_norm(grads),
+                       **{f"grad_norm_{name}": _global_norm(grads[name]) for name in names}}
+            return inner, metrics
+
+        (params, state, opt_state, diverged), per_step = jax.lax.scan(
+            step, (carry.params, carry.state, carry.opt_state, carry.diverged),
+            (batches, jnp.arange(steps, dtype=jnp.int32)))
+        val_x = standardize(carry, data_x[carry.val_idx])
+        val = scores(p, params, state, val_x, data_y[carry.val_idx])
+        metrics = {name: jnp.mean(values) for name, values in per_step.items()}
+        metrics.update({f"val_{k}": v for k, v in val.items()})
+        metrics["weight_norm"] = _global_norm([w for w, m in zip(jax.tree.leaves(params), jax.tree.leaves(weights)) if m])
+        metrics["learning_rate"] = jnp.asarray(p.schedule(e * steps + steps - 1), jnp.float32)
+        metrics = {name: jnp.where(diverged, jnp.nan, metrics[name]).astype(jnp.float32) for name in metric_names}
+        diverged_at = jnp.where(diverged & ~carry.diverged, e, carry.diverged_at)
+        return carry._replace(params=params, state=state, opt_state=opt_state, epoch=e + 1,
+                              diverged=diverged, diverged_at=diverged_at), metrics
+
+    def train(knobs, key, data_x, data_y):
+        carry = init(knobs, key, data_x, data_y)
+        return jax.lax.scan(lambda c, _: epoch(c, knobs, data_x, data_y), carry, None, length=epochs)
+
+    def evaluate(carry: Carry, x, y):
+        return scores(parts(carry.knobs), carry.params, carry.state, standardize(carry, jnp.asarray(x)),
+                      jnp.asarray(y))
+
+    metric_names = ("train_divergence", "train_penalty", "val_divergence",
+                    "val_accuracy" if classification else "val_rmse", "grad_norm",
+                    *(f"grad_norm_{name}" for name in names), "weight_norm", "learning_rate")
+    return Program(structure_key(variant), knob_names, metric_names, epochs, init, epoch, train, evaluate,
+                   lambda carry: {"params": carry.params, "state": carry.state},
+                   lambda carry: (carry.diverged, carry.diverged_at))

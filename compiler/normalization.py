@@ -1,0 +1,87 @@
+"""Normalization layers placed between a hidden layer's affine map and its activation.
+
+Contract: each factory in :data:`REGISTRY` takes the layer's knobs (floats or traced f32
+scalars) and returns a :class:`Normalizer` (a stax-like pair plus one flag):
+
+- ``init(width) -> (params, state)``: learnable parameters (γ, β) and non-learned running
+  statistics, both dicts of f32 arrays (empty when the layer has none);
+- ``apply(params, state, x, mask, train) -> (y, new_state)``: ``x`` is ``[batch, width]``;
+  ``mask`` is ``f32[batch]`` (1 for a real example, 0 for padding) and restricts batch
+  statistics to the real examples; ``train`` is a Python bool choosing the mode;
+- ``uses_bias``: False when a preceding affine bias cannot change the output (it is then
+  omitted, not merely left untrained).
+"""
+
+from __future__ import annotations
+
+from typing import Callable, NamedTuple
+
+import jax.numpy as jnp
+
+__all__ = ["Normalizer", "none", "batch", "layer", "REGISTRY"]
+
+
+class Normalizer(NamedTuple):
+    init: Callable
+    apply: Callable
+    uses_bias: bool
+
+
+def none() -> Normalizer:
+    """The identity: no parameters, no statistics."""
+    return Normalizer(lambda width: ({}, {}), lambda params, state, x, mask, train: (x, state), True)
+
+
+def _affine_params(width):
+    return {"gamma": jnp.ones((width,), jnp.float32), "beta": jnp.zeros((width,), jnp.float32)}
+
+
+def batch(momentum=0.9, epsilon=1e-5) -> Normalizer:
+    """Batch normalization (Ioffe & Szegedy 2015).
+
+    Training (Alg. 1), per neuron over the ``m`` real examples of the mini-batch:
+    ``μ = Σ x_i / m``, ``σ² = Σ (x_i − μ)² / m`` (biased), ``x̂ = (x − μ)/√(σ² + ε)``,
+    ``y = γ x̂ + β``. Inference (Alg. 2) uses population statistics: here exponential running
+    averages ``s ← momentum·s + (1 − momentum)·batch`` (``momentum`` weights the *old* value) of
+    ``μ`` and of the unbiased variance ``m/(m − 1)·σ²``. Running statistics start at mean 0,
+    variance 1. Subtracting ``μ`` cancels any per-neuron shift, so a preceding bias is dropped.
+    """
+
+    def init(width):
+        return _affine_params(width), {"mean": jnp.zeros((width,), jnp.float32),
+                                       "var": jnp.ones((width,), jnp.float32)}
+
+    def apply(params, state, x, mask, train):
+        if train:
+            w = jnp.ones(x.shape[:1], x.dtype) if mask is None else mask
+            m = jnp.sum(w)
+            mu = jnp.sum(w[:, None] * x, axis=0) / m
+            var = jnp.sum(w[:, None] * jnp.square(x - mu), axis=0) / m
+            # A batch of one real example has no unbiased variance; keep the old estimate's scale.
+            unbiased = var * m / jnp.maximum(m - 1.0, 1.0)
+            new_state = {"mean": momentum * state["mean"] + (1.0 - momentum) * mu,
+                         "var": momentum * state["var"] + (1.0 - momentum) * unbiased}
+        else:
+            mu, var, new_state = state["mean"], state["var"], state
+        x_hat = (x - mu) / jnp.sqrt(var + epsilon)
+        return params["gamma"] * x_hat + params["beta"], new_state
+
+    return Normalizer(init, apply, False)
+
+
+def layer(epsilon=1e-5) -> Normalizer:
+    """Layer normalization (Ba, Kiros & Hinton 2016, eq. 4), per example over the ``H`` units of
+    the layer: ``μ = Σ a_j / H``, ``σ = √(Σ (a_j − μ)² / H + ε)``, ``y = g ⊙ (a − μ)/σ + b``.
+    The same computation in training and inference; no batch statistics, so padding rows do not
+    matter. A preceding bias is kept: it shifts units differently, which the per-example mean
+    does not cancel."""
+
+    def apply(params, state, x, mask, train):
+        mu = jnp.mean(x, axis=-1, keepdims=True)
+        var = jnp.mean(jnp.square(x - mu), axis=-1, keepdims=True)
+        return params["gamma"] * (x - mu) / jnp.sqrt(var + epsilon) + params["beta"], state
+
+    return Normalizer(lambda width: (_affine_params(width), {}), apply, True)
+
+
+REGISTRY: dict[str, Callable[..., Normalizer]] = {"none": none, "batch": batch, "layer": layer}
