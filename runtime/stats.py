@@ -8,9 +8,10 @@ silently dropped. Differences are always B − A.
   the mean, ``mean ± t_{n-1, (1+c)/2} · sd / √n``.
 - :func:`compare` — with at least :data:`MIN_PER_SIDE` seeds finite on both sides, a paired t test
   over those seeds (arms with one seed share data split, initial weights and batch order, so the
-  pairing removes that shared noise), plus an exact sign-flip permutation test of the mean
-  difference (Fisher 1935, ch. 21); otherwise Welch's t test with the Welch–Satterthwaite degrees
-  of freedom (Welch 1947) when each side has enough finite values; otherwise no test.
+  pairing removes that shared noise), plus a sign-flip permutation test of the mean difference
+  (Fisher 1935, *The Design of Experiments*, §21 — cited from memory), exact up to 16 pairs;
+  otherwise Welch's t test with the Welch–Satterthwaite degrees of freedom (Welch 1947) when
+  each side has enough finite values; otherwise no test.
 - :func:`adjust` — Holm (1979) step-down or Benjamini & Hochberg (1995) adjusted p-values.
 - :func:`verdict` — ``better`` / ``worse`` / ``no detectable change`` / ``no test possible``.
 
@@ -114,7 +115,7 @@ def sign_flip_pvalue(differences: Sequence[float]) -> float:
 
     Under H0 (the arms are exchangeable within a seed) each difference is equally likely to carry
     either sign. The p-value is the share of sign patterns whose mean is at least as far from 0
-    as the observed one (Fisher 1935, ch. 21). For n ≤ :data:`EXACT_MAX_PAIRS` all 2^n patterns
+    as the observed one (Fisher 1935). For n ≤ :data:`EXACT_MAX_PAIRS` all 2^n patterns
     are enumerated (the observed one included), so the smallest possible value is 2/2^n — with 3
     seeds never below 0.25. Beyond, :data:`RANDOM_SIGN_PATTERNS` patterns drawn with a fixed seed
     give ``(1 + k) / (1 + R)`` (Phipson & Smyth 2010), never 0.

@@ -96,7 +96,7 @@ def test_sign_flip_exact_matches_scipy_permutation_test():
 def test_sign_flip_beyond_exhaustive_is_close_to_exact_and_reproducible():
     n = EXACT_MAX_PAIRS + 2
     d = np.random.default_rng(3).normal(0.25, 1.0, size=n)
-    # Exhaustive reference over all 2^18 patterns, computed here by brute force (Fisher 1935).
+    # Exhaustive reference over all 2^18 patterns, by brute force from the definition.
     bits = (np.arange(2 ** n)[:, None] >> np.arange(n)) & 1
     exact = float(np.mean(np.abs((1 - 2 * bits) @ d) >= abs(d.sum()) * (1 - 1e-12)))
     p = sign_flip_pvalue(d)
@@ -184,8 +184,8 @@ def test_too_few_values_means_no_test():
 
 
 # ── adjust ──────────────────────────────────────────────────────────────────────────────────────
-# The 15 p-values of the thrombolysis example of Benjamini & Hochberg (1995), Section 4, as
-# copied from the scipy.stats.false_discovery_control docstring (installed scipy 1.17).
+# The 15 p-values of the thrombolysis example of Benjamini & Hochberg (1995), JRSS-B 57:289,
+# as copied from the scipy.stats.false_discovery_control docstring (installed scipy 1.17).
 BH95 = [0.0001, 0.0004, 0.0019, 0.0095, 0.0201, 0.0278, 0.0298, 0.0344,
         0.0459, 0.3240, 0.4262, 0.5719, 0.6528, 0.7590, 1.000]
 
@@ -195,7 +195,7 @@ def test_holm_by_hand_on_the_benjamini_hochberg_example():
     # (9·0.0298 = 0.2682, 8·0.0344 = 0.2752) are lifted to 0.278 by monotonicity.
     hand = [0.0015, 0.0056, 0.0247, 0.114, 0.2211, 0.278, 0.278, 0.278, 0.3213] + [1.0] * 6
     assert adjust(BH95, "holm") == pytest.approx(hand, abs=1e-12)
-    # Holm, like Bonferroni in the paper, rejects the first three at 0.05
+    # Holm, like Bonferroni in the scipy docstring's account of the paper, rejects three at 0.05
     assert sum(p <= 0.05 for p in adjust(BH95, "holm")) == 3
 
 
@@ -211,7 +211,7 @@ def test_bh_matches_scipy_docstring_and_passes_nan_through():
     doc = [0.0015, 0.003, 0.0095, 0.035625, 0.0603, 0.06385714, 0.06385714, 0.0645,
            0.0765, 0.486, 0.58118182, 0.714875, 0.75323077, 0.81321429, 1.0]
     assert adjust(BH95, "bh") == pytest.approx(doc, abs=5e-9)
-    assert sum(p <= 0.05 for p in adjust(BH95, "bh")) == 4   # four rejections, as in the paper
+    assert sum(p <= 0.05 for p in adjust(BH95, "bh")) == 4   # four rejections, as the docstring says
     # docstring: false_discovery_control([0.5, 0.6, 0.1, 0.001]) -> [0.6, 0.6, 0.2, 0.004];
     # a NaN in between must neither change them nor count as a fifth test
     out = adjust([0.5, math.nan, 0.6, 0.1, None, 0.001], "bh")
