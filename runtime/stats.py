@@ -40,7 +40,7 @@ MIN_PER_SIDE = 3
 EXACT_MAX_PAIRS = 16           # 2^16 = 65 536 sign patterns: exhaustive enumeration stays cheap
 RANDOM_SIGN_PATTERNS = 65_535  # beyond that, this many random patterns (so (1+k)/(1+R) has R+1 = 2^16)
 _PATTERN_SEED = 20_240_917     # fixed so that the same numbers always give the same p-value
-_CHUNK = 4096
+_CHUNK = 4096                  # random patterns per batch: memory stays bounded with thousands of seeds
 VERDICTS = ("better", "worse", "no detectable change", "no test possible")
 
 
