@@ -117,6 +117,8 @@ def pydantic_problems(err: ValidationError, prefix: tuple = ()) -> list[Problem]
     for e in err.errors(include_url=False):
         _, loc = _walk(e["loc"])
         message = _message(e, loc)
+        if e["type"] == "union_tag_invalid":
+            loc += ("kind",)  # the wrong value is written on the kind line, not on the table
         if message.startswith("@"):
             for line in message.splitlines():
                 key, _, text = line[1:].partition(": ")
@@ -209,6 +211,7 @@ def expand(spec: Spec) -> list[Variant]:
     """The variants of a study, in a fixed order. Raises SpecError listing every problem."""
     raw = spec.model_dump(mode="python", exclude_unset=True, exclude={"ablation"}, round_trip=True)
     raw = json.loads(json.dumps(_plain(raw)))
+    _with_kinds(raw, spec)
     abl = spec.ablation
     # Each candidate: (label, changes, where it is written in the TOML document, where each
     # changed key is written)
@@ -284,6 +287,19 @@ def expand(spec: Spec) -> list[Variant]:
     if problems:
         raise SpecError(problems)
     return variants
+
+
+def _with_kinds(raw: dict, model: BaseModel) -> None:
+    """Write down the ``kind`` of every tagged section, defaults included: a change such as
+    ``optimizer.learning_rate`` to a study that leaves ``[optimizer]`` at its default must stay
+    inside the default's kind (sgd), not create a section without one."""
+    for name in type(model).model_fields:
+        value = getattr(model, name)
+        if isinstance(value, BaseModel) and "kind" in type(value).model_fields:
+            node = raw.setdefault(name, {})
+            if isinstance(node, dict):
+                node.setdefault("kind", value.kind)
+                _with_kinds(node, value)
 
 
 def _blame(origins: dict[str, tuple], loc: tuple) -> str | None:

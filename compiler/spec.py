@@ -100,12 +100,16 @@ class SyntheticData(Strict):
 
     @model_validator(mode="after")
     def _shape(self):
+        # "@key: message" lines: expand.pydantic_problems locates each at its key.
+        problems = []
         if self.generator == "friedman1" and self.features < 5:
-            raise ValueError("friedman1 needs features >= 5 (its target uses the first five)")
+            problems.append("@features: friedman1 needs features >= 5 (its target uses the first five)")
         if self.generator in ("rings", "spirals") and self.features < 2:
-            raise ValueError(f"{self.generator} needs features >= 2 (the pattern lives in the first two)")
+            problems.append(f"@features: {self.generator} needs features >= 2 (the pattern lives in the first two)")
         if self.generator in CLASSIFICATION_GENERATORS and self.classes < 2:
-            raise ValueError(f"classes must be >= 2 for the classification generator {self.generator!r}")
+            problems.append(f"@classes: classes must be >= 2 for the classification generator {self.generator!r}")
+        if problems:
+            raise ValueError("\n".join(problems))
         return self
 
 
