@@ -1,0 +1,60 @@
+"""Tiny studies shared by the runtime tests: compiled once per session, results in a tmp folder."""
+
+import os
+from pathlib import Path
+
+import pytest
+
+TINY = """
+[study]
+name = "{name}"
+seeds = {seeds}
+metric = "val_accuracy"
+
+[data]
+kind = "synthetic"
+generator = "blobs"
+samples = 240
+features = 4
+classes = 3
+noise = 0.5
+
+[model]
+hidden = [8]
+
+[divergence]
+kind = "kl"
+
+[optimizer]
+kind = "sgd"
+learning_rate = 0.1
+momentum = 0.9
+
+[training]
+epochs = {epochs}
+batch_size = 32
+
+[ablation]
+mode = "grid"
+[[ablation.axis]]
+key = "optimizer.learning_rate"
+values = {rates}
+"""
+
+
+def _write_tiny(tmp: Path, name="tiny", seeds=3, epochs=3, rates="[0.03, 0.3]", extra="") -> Path:
+    path = tmp / f"{name}.toml"
+    path.write_text(TINY.format(name=name, seeds=seeds, epochs=epochs, rates=rates) + extra)
+    return path
+
+
+@pytest.fixture(scope="session")
+def tiny_spec():
+    """tiny_spec(folder, name=..., seeds=..., epochs=..., rates="[...]", extra="") -> spec path"""
+    return _write_tiny
+
+
+@pytest.fixture(autouse=True, scope="session")
+def _private_compile_cache(tmp_path_factory):
+    # The persistent compile cache is a speed-up only; tests keep theirs apart from the user's.
+    os.environ.setdefault("LESION_CACHE_DIR", str(tmp_path_factory.mktemp("xla-cache")))
