@@ -1,0 +1,104 @@
+"""Ablation expansion: modes, labels, kind switches, neuron budgets, seeds, and invalid variants."""
+
+from __future__ import annotations
+
+import itertools
+
+import pytest
+
+from compiler.errors import SpecError
+from compiler.loader import load_text
+
+HEAD = '[study]\nname = "x"\nseeds = 2\n'
+
+
+def _variants(body: str):
+    return load_text(HEAD + body, "t.toml").variants
+
+
+def _error(body: str) -> str:
+    with pytest.raises(SpecError) as info:
+        load_text(HEAD + body, "t.toml")
+    return str(info.value)
+
+
+def test_grid_is_the_cartesian_product_in_axis_order():
+    # common practice: a full factorial design has one run per combination, last factor fastest.
+    lrs, rates = [0.01, 0.1], [0.0, 0.2, 0.4]
+    vs = _variants(f'[[ablation.axis]]\nkey = "optimizer.learning_rate"\nvalues = {lrs}\n'
+                   f'[[ablation.axis]]\nkey = "regularization.dropout.rate"\nvalues = {rates}\n')
+    assert [tuple(v.changes.values()) for v in vs] == list(itertools.product(lrs, rates))
+    assert vs[1].label == "optimizer.learning_rate=0.01, regularization.dropout.rate=0.2"
+    assert [v.spec.optimizer.learning_rate for v in vs] == [a for a, _ in itertools.product(lrs, rates)]
+    assert [v.index for v in vs] == list(range(6))
+
+
+def test_one_at_a_time_changes_each_value_alone_and_does_not_repeat_the_base():
+    vs = _variants('[optimizer]\nkind = "sgd"\nlearning_rate = 0.1\n[ablation]\nmode = "one_at_a_time"\n'
+                   '[[ablation.axis]]\nkey = "optimizer.learning_rate"\nvalues = [0.01, 0.1, 0.5]\n'
+                   '[[ablation.axis]]\nkey = "training.epochs"\nvalues = [5]\n')
+    assert [v.label for v in vs] == ["base", "optimizer.learning_rate=0.01", "optimizer.learning_rate=0.5",
+                                     "training.epochs=5"]
+    assert vs[3].spec.optimizer.learning_rate == 0.1 and vs[3].spec.training.epochs == 5
+
+
+def test_list_mode_keeps_labels_and_can_leave_out_the_base():
+    body = ('[ablation]\nmode = "list"\ninclude_base = {}\n'
+            '[[ablation.variant]]\nlabel = "slow"\nset = {{ "optimizer.learning_rate" = 0.001 }}\n'
+            '[[ablation.variant]]\nlabel = "wide"\nset = {{ "model.hidden" = [128, 128] }}\n')
+    assert [v.label for v in _variants(body.format("true"))] == ["base", "slow", "wide"]
+    vs = _variants(body.format("false"))
+    assert [v.label for v in vs] == ["slow", "wide"]
+    assert vs[1].spec.model.hidden == [128, 128]
+
+
+def test_kind_switch_drops_the_old_kinds_defaults():
+    vs = _variants('[optimizer]\nkind = "sgd"\nlearning_rate = 0.2\n'
+                   '[[ablation.axis]]\nkey = "optimizer.kind"\nvalues = ["sgd", "adam"]\n')
+    adam = vs[1].spec.optimizer
+    assert adam.kind == "adam" and not hasattr(adam, "momentum")
+    assert adam.learning_rate == 0.2            # what the user wrote carries over
+    assert adam.b2 == 0.999                     # Kingma & Ba 2015, the paper's default β2
+
+
+def test_kind_switch_refuses_a_key_the_user_set_that_the_new_kind_lacks():
+    message = _error('[optimizer]\nkind = "sgd"\nmomentum = 0.9\n'
+                     '[[ablation.axis]]\nkey = "optimizer.kind"\nvalues = ["sgd", "adam"]\n')
+    assert "t.toml:9: ablation.axis[0].values[1]: variant 'optimizer.kind=adam' is invalid: optimizer.momentum" in message
+    assert "the base spec sets optimizer.momentum" in message
+
+
+def test_a_change_inside_a_default_section_keeps_its_kind():
+    vs = _variants('[[ablation.axis]]\nkey = "optimizer.momentum"\nvalues = [0.0, 0.9]\n')
+    assert [(v.spec.optimizer.kind, v.spec.optimizer.momentum) for v in vs] == [("sgd", 0.0), ("sgd", 0.9)]
+
+
+def test_neuron_budget_expands_to_equal_widths():
+    vs = _variants('[model]\nhidden = { neurons = 96, depth = 1 }\n[ablation]\nmode = "list"\n'
+                   '[[ablation.variant]]\nlabel = "deep"\nset = { "model.hidden.depth" = 3 }\n')
+    assert [v.spec.model.hidden for v in vs] == [[96], [32, 32, 32]]
+
+
+def test_invalid_combination_names_the_variant():
+    message = _error('[data]\nclasses = 3\n[[ablation.axis]]\nkey = "divergence.kind"\nvalues = ["kl", "bce"]\n')
+    assert "variant 'divergence.kind=bce' is invalid: divergence.kind: 'bce' is binary but data.classes = 3" in message
+
+
+def test_duplicate_variants_are_refused():
+    message = _error('[[ablation.axis]]\nkey = "model.hidden"\nvalues = [[32, 32], { neurons = 64, depth = 2 }]\n')
+    assert "is the same configuration as 'model.hidden=[32,32]'" in message
+
+
+@pytest.mark.parametrize("seeds, expected", [("4", [0, 1, 2, 3]), ("[7, 3, 11]", [7, 3, 11])])
+def test_seeds_as_count_or_list(seeds, expected):
+    study = load_text(f'[study]\nname = "x"\nseeds = {seeds}\n'
+                      '[[ablation.axis]]\nkey = "training.epochs"\nvalues = [3, 6]\n')
+    assert study.seeds == expected and study.runs == 2 * len(expected)
+
+
+def test_knob_only_changes_share_a_structure_and_kind_changes_do_not():
+    vs = _variants('[normalization]\nkind = "batch"\n'
+                   '[[ablation.axis]]\nkey = "normalization.kind"\nvalues = ["batch", "layer"]\n'
+                   '[[ablation.axis]]\nkey = "optimizer.learning_rate"\nvalues = [0.01, 0.1]\n')
+    assert vs[0].structure == vs[1].structure != vs[2].structure == vs[3].structure
+    assert len({v.hash for v in vs}) == 4

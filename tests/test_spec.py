@@ -1,0 +1,75 @@
+"""The spec language: the shipped specs validate, and the editor schema (JSON Schema draft
+2020-12) is a valid schema that accepts them."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+import tomllib
+from pathlib import Path
+
+import jsonschema
+import pytest
+from pydantic import ValidationError
+
+from compiler.loader import load_study
+from compiler.schema import spec_schema
+from compiler.spec import BatchNorm, Spec
+
+ROOT = Path(__file__).parent.parent
+SPECS = sorted((ROOT / "specs").glob("*.toml"))
+
+
+@pytest.fixture(scope="module")
+def schema() -> dict:
+    out = subprocess.run([sys.executable, "-m", "runtime.cli", "schema"], cwd=ROOT, capture_output=True,
+                         text=True, check=True)
+    return json.loads(out.stdout)
+
+
+def test_there_are_demo_specs():
+    assert {p.name for p in SPECS} >= {"cold-chain.toml", "kiln-drift.toml", "gearbox-budget.toml"}
+
+
+@pytest.mark.parametrize("path", SPECS, ids=lambda p: p.name)
+def test_every_demo_spec_loads(path):
+    study = load_study(path)
+    assert study.variants and study.runs <= 30   # the demos must stay quick to run
+
+
+def test_schema_is_a_valid_draft_2020_12_schema(schema):
+    # JSON Schema 2020-12 meta-schema, as jsonschema's validator implements it.
+    assert schema["$schema"] == "https://json-schema.org/draft/2020-12/schema"
+    jsonschema.Draft202012Validator.check_schema(schema)
+    assert schema == spec_schema()
+
+
+@pytest.mark.parametrize("path", SPECS, ids=lambda p: p.name)
+def test_every_demo_spec_validates_against_the_schema(schema, path):
+    jsonschema.Draft202012Validator(schema).validate(tomllib.loads(path.read_text()))
+
+
+@pytest.mark.parametrize("doc", [
+    {"study": {"name": "x"}, "optimiser": {}},                                  # unknown section
+    {"study": {"name": "x"}, "ablation": {"axis": [{"key": "optimizer.lr", "values": [1]}]}},
+    {"study": {"name": "x", "metric": "accuracy"}},
+])
+def test_schema_refuses_what_the_loader_refuses(schema, doc):
+    with pytest.raises(jsonschema.ValidationError):
+        jsonschema.Draft202012Validator(schema).validate(doc)
+
+
+def test_spec_models_are_frozen_and_closed():
+    spec = Spec.model_validate({"study": {"name": "x"}})
+    with pytest.raises(ValidationError):
+        spec.study.name = "y"
+    with pytest.raises(ValidationError):
+        BatchNorm(kind="batch", epsilon=1e-5, moment=0.9)
+
+
+def test_batch_norm_defaults():
+    # Ioffe & Szegedy 2015 use ε for numerical stability; 1e-5 and a running-average momentum of
+    # 0.9 are common practice defaults.
+    bn = BatchNorm(kind="batch")
+    assert (bn.epsilon, bn.momentum) == (1e-5, 0.9)
