@@ -31,8 +31,9 @@ def _double(hex_bits: str) -> float:
     return struct.unpack(">d", bytes.fromhex(hex_bits))[0]
 
 
-# RFC 8785 Appendix B, "Number Serialization Samples" (IEEE 754 bits -> JSON text), the rows
-# copied from the table; the NaN and Infinity rows are the refusal test below.
+# RFC 8785 Appendix B, "Number Serialization Samples" (IEEE 754 bits -> JSON text), rows written
+# down from memory of the RFC's table (not copied from the text); the NaN and Infinity rows are
+# the refusal test below.
 APPENDIX_B = [
     ("0000000000000000", "0"),
     ("8000000000000000", "0"),                       # minus zero
