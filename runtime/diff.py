@@ -2,7 +2,8 @@
 
 1. The spec diff: every canonical-JSON field whose value differs between the two studies.
 2. Variant matching (``runtime.specdiff.match_variants``): by resolved configuration minus the
-   changed fields, then by label.
+   changed fields (an ablation axis whose values changed counts as a change of its key), then
+   by label.
 3. Per matched variant and metric, the final-epoch values by seed go to ``runtime.stats.compare``
    (paired over common seeds, else Welch); the p-values of all rows are adjusted together (Holm
    by default, or Benjamini–Hochberg) and each row gets a verdict in the metric's direction.
@@ -14,6 +15,7 @@ same study (seeds shared, so paired).
 from __future__ import annotations
 
 import json
+import re
 from dataclasses import dataclass, field
 
 from compiler.errors import SpecError
@@ -95,11 +97,30 @@ def _rows(pairs, rs_a, rs_b, metrics, correction, alpha) -> list[dict]:
     return rows
 
 
+def _ignored_keys(changes: list[Change], a_tree: dict, b_tree: dict) -> set[str]:
+    """Fields to ignore when matching variants: the changed fields, plus the key of every axis (or
+    listed variant's set key) whose entry changed — an axis over learning rate whose values moved
+    from 0.1 to 0.001 makes learning rate the thing that was changed."""
+    keys = {c.key for c in changes}
+    for c in changes:
+        m = re.match(r"ablation\.(axis|variant)\[(\d+)\]", c.key)
+        if not m:
+            continue
+        for tree in (a_tree, b_tree):
+            entries = (tree.get("ablation") or {}).get(m.group(1)) or []
+            i = int(m.group(2))
+            if i < len(entries):
+                entry = entries[i]
+                keys |= {entry["key"]} if m.group(1) == "axis" else set(entry.get("set", {}))
+    return keys
+
+
 def diff_result_sets(rs_a: ResultSet, rs_b: ResultSet, *, metrics: list[str] | None = None,
                      correction: str = "holm", alpha: float = 0.05) -> DiffReport:
     changes = spec_diff(rs_a.meta["canonical_json"], rs_b.meta["canonical_json"])
     va, vb = _variants(rs_a), _variants(rs_b)
-    pairs, only_a, only_b = match_variants(va, vb, [c.key for c in changes])
+    ignored = _ignored_keys(changes, json.loads(rs_a.meta["canonical_json"]), json.loads(rs_b.meta["canonical_json"]))
+    pairs, only_a, only_b = match_variants(va, vb, ignored)
     rows = _rows([(p.a, p.b) for p in pairs], rs_a, rs_b, _metrics(rs_a, metrics), correction, alpha)
     return DiffReport(changes, rows, [v["label"] for v in only_a], [v["label"] for v in only_b], correction,
                       same_study=not changes)
