@@ -21,8 +21,9 @@ Randomness: one root key per seed; fixed tags derive independent streams
 with the same seed and shapes therefore share split, initial weights and batch order.
 
 Health: if the objective, a gradient-updated parameter or a running statistic is not finite, the
-step is discarded (``jnp.where``), the run stays frozen from then on, ``status`` reports the
-epoch it happened in, and that epoch's and later metrics are NaN.
+step is discarded (``jnp.where``) and the run stays frozen from then on; an epoch whose metrics
+overflow (e.g. the validation loss of huge but finite weights) also marks the run diverged.
+``status`` reports the epoch it happened in, and that epoch's and later metrics are NaN.
 """
 
 from __future__ import annotations
@@ -113,7 +114,7 @@ def _fields(knobs: dict, prefix: str, skip: tuple[str, ...] = ()) -> dict:
 
 def _global_norm(tree) -> jax.Array:
     leaves = jax.tree.leaves(tree)
-    return optax.global_norm(leaves) if leaves else jnp.float32(0.0)
+    return optax.tree.norm(leaves) if leaves else jnp.float32(0.0)
 
 
 def _all_finite(tree) -> jax.Array:
@@ -233,6 +234,9 @@ def compile_variant(variant: Spec, dataset: Dataset) -> Program:
         metrics.update({f"val_{k}": v for k, v in val.items()})
         metrics["weight_norm"] = _global_norm([w for w, m in zip(jax.tree.leaves(params), jax.tree.leaves(weights)) if m])
         metrics["learning_rate"] = jnp.asarray(p.schedule(e * steps + steps - 1), jnp.float32)
+        # Finite but huge weights can still overflow the validation loss or a norm: that epoch
+        # counts as the divergence too, so every reported number is either finite or NaN.
+        diverged = diverged | ~_all_finite(metrics)
         metrics = {name: jnp.where(diverged, jnp.nan, metrics[name]).astype(jnp.float32) for name in metric_names}
         diverged_at = jnp.where(diverged & ~carry.diverged, e, carry.diverged_at)
         return carry._replace(params=params, state=state, opt_state=opt_state, epoch=e + 1,
