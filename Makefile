@@ -17,8 +17,9 @@ $(STAMP): $(BIN)/python pyproject.toml requirements.lock
 	touch $(STAMP)
 
 demo: $(STAMP)
-	$(BIN)/lesion run specs/cold-chain.toml --out results --quiet >/dev/null
-	$(BIN)/lesion show results/$$($(BIN)/lesion check specs/cold-chain.toml --format json | $(BIN)/python -c 'import json,sys; print(json.load(sys.stdin)["result_set"])')
+	@path=$$($(BIN)/lesion run specs/cold-chain.toml --out results | tail -n 1) && \
+	  $(BIN)/lesion show "$$path" && \
+	  echo "result set: $$path  (try: $(BIN)/lesion replay $$path)"
 
 test: $(STAMP)
 	$(BIN)/python -m pytest

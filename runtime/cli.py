@@ -21,11 +21,18 @@ import typer
 from typer.core import TyperGroup
 
 from compiler.errors import SpecError
+from runtime.store import ResultSetError
 
 __all__ = ["app", "main", "USER_ERRORS"]
 
-# Errors that mean "the input is wrong", not "lesion is wrong".
-USER_ERRORS: tuple[type[Exception], ...] = (SpecError,)
+
+class UsageError(Exception):
+    """Arguments that do not fit together (a one-line message, exit 2)."""
+
+
+# Errors that mean "the input is wrong", not "lesion is wrong" (plus compiler.data.DataError,
+# see _loaded_user_errors).
+USER_ERRORS: tuple[type[Exception], ...] = (SpecError, ResultSetError, UsageError)
 
 
 class _Group(TyperGroup):
@@ -34,7 +41,9 @@ class _Group(TyperGroup):
     def invoke(self, ctx: typer.Context):
         try:
             return super().invoke(ctx)
-        except USER_ERRORS as err:
+        except Exception as err:
+            if not isinstance(err, USER_ERRORS + _loaded_user_errors()):
+                raise
             for line in str(err).splitlines() or [type(err).__name__]:
                 typer.echo(line, err=True)
             raise typer.Exit(2) from None
@@ -47,6 +56,10 @@ app = typer.Typer(
          "A study is one TOML file: a base configuration and an [ablation] that derives variants from it.\n\n"
          "Examples:\n\n"
          "  lesion check specs/cold-chain.toml\n\n"
+         "  lesion run specs/cold-chain.toml            # prints the result set's path last\n\n"
+         "  lesion show results/cold-chain-<hash>\n\n"
+         "  lesion replay results/cold-chain-<hash>\n\n"
+         "  lesion diff results/A results/B --fail-on worse\n\n"
          "  lesion schema > lesion.schema.json",
     no_args_is_help=True,
     add_completion=False,
@@ -55,9 +68,22 @@ app = typer.Typer(
 )
 
 
+def _loaded_user_errors() -> tuple[type[Exception], ...]:
+    # compiler.data is only in sys.modules when a command needed data; then its error counts too.
+    mod = sys.modules.get("compiler.data")
+    return (mod.DataError,) if mod is not None else ()
+
+
 class Format(str, Enum):
     table = "table"
     json = "json"
+
+
+class Output(str, Enum):
+    table = "table"
+    json = "json"
+    csv = "csv"
+    markdown = "markdown"
 
 
 @app.command()
@@ -149,6 +175,260 @@ def schema() -> None:
     from compiler.schema import spec_schema
 
     typer.echo(json.dumps(spec_schema(), indent=2, ensure_ascii=False))
+
+
+def _err(text: str) -> None:
+    typer.echo(text, err=True)
+
+
+@app.command()
+def run(
+    spec: Path = typer.Argument(..., help="The study's TOML spec file.", show_default=False),
+    out: Path = typer.Option(Path("results"), "--out", "-o", help="Folder that receives the result set."),
+    lanes: int = typer.Option(None, "--lanes", min=1, max=4096,
+                              help="Runs per compiled program call (lane width); default: chosen per structure."),
+    fresh: bool = typer.Option(False, "--fresh", help="Recompute every run, even those already stored."),
+    quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bars or summary on stderr."),
+) -> None:
+    """Run every variant × seed of a study and store the result set; print its path last.
+
+    Runs already stored with the same run id and the same numerics environment are kept, so
+    re-running an interrupted study finishes only what is missing.
+
+    Examples:
+
+      lesion run specs/cold-chain.toml
+
+      lesion run specs/cold-chain.toml --out /tmp/results --lanes 16 --quiet
+    """
+    from compiler.loader import load_study
+
+    study = load_study(spec)
+    from runtime.runner import run_study  # imports jax: after the spec is known to be good
+
+    progress = None if quiet else _RunProgress(study)
+    try:
+        with progress or _nothing():
+            report = run_study(study, out, lanes=lanes, fresh=fresh, progress=progress,
+                               on_wait=lambda: _err("waiting: another 'lesion run' is writing this result set"))
+    except KeyboardInterrupt:
+        _err(f"interrupted: finished groups are stored in {out / study.result_set}; "
+             f"run the same command again to compute only what is missing")
+        raise typer.Exit(130) from None
+    if not quiet:
+        _err(f"{report.planned} runs: {report.computed} computed, {report.reused} already stored; "
+             f"{report.diverged} diverged; {report.groups} groups, "
+             f"compile {report.compile_seconds:.1f} s, run {report.run_seconds:.1f} s")
+        for w in report.warnings:
+            _err(f"warning: {w}")
+    typer.echo(str(report.path))
+
+
+class _nothing:
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        return False
+
+
+class _RunProgress:
+    """A rich progress bar per compile group on stderr: runs, epochs, elapsed and remaining."""
+
+    def __init__(self, study):
+        from rich.console import Console
+        from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn, \
+            TimeRemainingColumn
+
+        self.progress = Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
+                                 TextColumn("epochs"), TimeElapsedColumn(), TimeRemainingColumn(),
+                                 console=Console(stderr=True), transient=False)
+        self.task = None
+        self.done = 0
+        self.total = 0
+        self.groups = 0
+        self.index = 0
+
+    def __enter__(self):
+        self.progress.__enter__()
+        return self
+
+    def __exit__(self, *exc):
+        return self.progress.__exit__(*exc)
+
+    def __call__(self, event, **info):
+        if event == "plan":
+            self.total, self.groups = info["runs"], info["groups"]
+            if info["runs"] == 0:
+                self.progress.console.print(f"all {info['planned']} runs already stored")
+        elif event == "group":
+            g = info["group"]
+            self.index += 1
+            self.task = self.progress.add_task(
+                f"group {self.index}/{self.groups} ({len(g.runs)} runs, width {g.lane_width})",
+                total=g.runs[0].variant.spec.training.epochs)
+        elif event == "epoch":
+            self.progress.update(self.task, completed=info["done"])
+        elif event == "stored":
+            self.done += len(info["group"].runs)
+
+
+@app.command()
+def show(
+    result: Path = typer.Argument(..., help="A result set folder written by 'lesion run'.", show_default=False),
+    format: Output = typer.Option(Output.table, "--format", "-f", help="table, json, csv or markdown."),
+    curves: bool = typer.Option(False, "--curves", help="Per-epoch means per variant instead of the summary."),
+    metric: list[str] = typer.Option(None, "--metric", "-m", help="Metric(s) to show (default: the study's)."),
+) -> None:
+    """Summarize a result set per variant: runs ok/diverged, mean ± sd and 95 % CI across seeds.
+
+    Examples:
+
+      lesion show results/cold-chain-7da471c81b78
+
+      lesion show results/cold-chain-7da471c81b78 --curves --format csv
+    """
+    from runtime.formats import render
+    from runtime.show import SUMMARY_COLUMNS, curve_rows, headline_of, summary_rows
+    from runtime.store import open_result_set
+
+    rs = open_result_set(result)
+    name = json.loads(rs.meta["canonical_json"])["study"]["name"]
+    try:
+        if curves:
+            rows, columns = curve_rows(rs, metric or None)
+            title = f"{name} ({rs.study_hash[:12]}): per-epoch means over ok runs"
+        else:
+            if metric and len(metric) > 1:
+                raise UsageError("show summarizes one metric at a time (give --metric once)")
+            m = metric[0] if metric else headline_of(rs)
+            rows, columns = summary_rows(rs, m), SUMMARY_COLUMNS
+            title = f"{name} ({rs.study_hash[:12]}): final {m} across seeds (mean, sd, 95% CI)"
+    except ValueError as err:
+        raise UsageError(str(err)) from None
+    typer.echo(render(rows, columns, format.value, title=title))
+
+
+@app.command()
+def replay(
+    result: Path = typer.Argument(..., help="A result set folder written by 'lesion run'.", show_default=False),
+    run: str = typer.Option(None, "--run", help="Replay this run id (a unique prefix is enough)."),
+    variant: str = typer.Option(None, "--variant", help="Replay the runs of this variant label."),
+    all_runs: bool = typer.Option(False, "--all", help="Replay every selected run, not one per variant."),
+    format: Format = typer.Option(Format.table, "--format", "-f", help="table for people, json for programs."),
+) -> None:
+    """Re-execute stored runs from the result set's own spec and compare them bit for bit.
+
+    Exit 0 when every replayed run is identical, 1 when any differs, 2 when the result set is
+    refused (edited metadata, changed data file) or the arguments are wrong.
+
+    Examples:
+
+      lesion replay results/cold-chain-7da471c81b78
+
+      lesion replay results/cold-chain-7da471c81b78 --variant "normalization.kind=batch, regularization.dropout.rate=0.15" --all
+    """
+    if run is not None and variant is not None:
+        raise UsageError("give --run or --variant, not both")
+    from runtime.formats import render
+    from runtime.replay import replay as do_replay
+
+    report = do_replay(result, run=run, variant=variant, everything=all_runs,
+                       on_group=None if format is Format.json else
+                       (lambda g: _err(f"replaying {len(g.runs)} run(s) at lane width {g.lane_width} ...")))
+    rows = [r.as_dict() for r in report.rows]
+    columns = ["run_id", "variant", "seed", "lane_width", "verdict", "first_epoch", "first_metric",
+               "max_abs", "max_rel", "digest"]
+    if format is Format.json:
+        typer.echo(json.dumps({"result_set": str(report.path), "identical": report.identical,
+                               "environment_changes": report.environment_changes, "runs": rows}, indent=2))
+    else:
+        if report.environment_changes:
+            typer.echo("environment differs from the recorded one:")
+            for line in report.environment_changes:
+                typer.echo(f"  {line}")
+        else:
+            typer.echo("environment: same as recorded")
+        typer.echo(render(rows, columns, "table", title="replay"))
+        differing = sum(r.verdict != "identical" for r in report.rows)
+        if differing and report.environment_changes:
+            typer.echo(f"{differing} run(s) differ, and the environment changed (above): differing bits are "
+                       "expected from such a change; replay in the recorded environment to test the code")
+        elif differing:
+            typer.echo(f"{differing} run(s) differ in the recorded environment: the result set or the code changed")
+        else:
+            typer.echo(f"all {len(rows)} replayed run(s) identical")
+    if not report.identical:
+        raise typer.Exit(1)
+
+
+class FailOn(str, Enum):
+    worse = "worse"
+    never = "never"
+
+
+class Correction(str, Enum):
+    holm = "holm"
+    bh = "bh"
+
+
+@app.command()
+def diff(
+    a: Path = typer.Argument(..., help="Result set A (the reference).", show_default=False),
+    b: Path = typer.Argument(None, help="Result set B (the change). Omit with --baseline.", show_default=False),
+    baseline: str = typer.Option(None, "--baseline", help="Compare every variant of A with this variant of A."),
+    metric: list[str] = typer.Option(None, "--metric", "-m", help="Metric(s) to compare (default: the study's)."),
+    correction: Correction = typer.Option(Correction.holm, "--correction",
+                                          help="Multiple-comparison adjustment: holm (family-wise) or bh (false discovery rate)."),
+    alpha: float = typer.Option(0.05, "--alpha", min=1e-6, max=0.5, help="Significance level of adjusted p-values."),
+    format: Output = typer.Option(Output.table, "--format", "-f", help="table, json, csv or markdown."),
+    fail_on: FailOn = typer.Option(FailOn.never, "--fail-on", help="'worse': exit 1 if any adjusted comparison is worse."),
+) -> None:
+    """Compare two result sets (or every variant with a baseline) beyond seed noise.
+
+    Per matched variant and metric: n, means, B − A with a 95 % CI, p-value (paired t over common
+    seeds, else Welch), adjusted p-value and a verdict: better, worse, no detectable change.
+
+    Examples:
+
+      lesion diff results/cold-chain-7da471c81b78 results/cold-chain-0c2f5a9e1d44
+
+      lesion diff results/cold-chain-7da471c81b78 --baseline "normalization.kind=none, regularization.dropout.rate=0.0"
+
+      lesion diff A B --format markdown --fail-on worse
+    """
+    from runtime.diff import DIFF_COLUMNS, diff_baseline, diff_result_sets
+    from runtime.formats import render
+    from runtime.store import open_result_set
+
+    if (b is None) == (baseline is None):
+        raise UsageError("give two result sets (lesion diff A B), or one with --baseline LABEL")
+    rs_a = open_result_set(a)
+    if baseline is not None:
+        report = diff_baseline(rs_a, baseline, metrics=metric or None, correction=correction.value, alpha=alpha)
+        title = f"each variant vs baseline '{baseline}'"
+    else:
+        report = diff_result_sets(rs_a, open_result_set(b), metrics=metric or None,
+                                  correction=correction.value, alpha=alpha)
+        title = f"B − A ({b.name} vs {a.name})"
+    title += f", p adjusted by {'Holm' if correction is Correction.holm else 'Benjamini–Hochberg'}"
+    if format is Output.json:
+        typer.echo(render(report.rows, DIFF_COLUMNS + ["reason"], "json", title=title, extra=report.extra()))
+    else:
+        if format in (Output.table, Output.markdown) and b is not None:
+            lines = ["spec: identical studies (a reproducibility check)"] if report.same_study else \
+                ["spec changes (A → B):"] + [f"  {c.render()}" for c in report.changes]
+            if report.only_a:
+                lines.append("only in A: " + "; ".join(report.only_a))
+            if report.only_b:
+                lines.append("only in B: " + "; ".join(report.only_b))
+            typer.echo("\n".join(lines if format is Output.table else [f"    {x}" if x.startswith("  ") else x for x in lines]) + "\n")
+        typer.echo(render(report.rows, DIFF_COLUMNS, format.value, title=title))
+        untested = [r for r in report.rows if r["verdict"] == "no test possible"]
+        if untested and format is Output.table:
+            typer.echo(f"{len(untested)} row(s): {untested[0]['reason']}")
+    if fail_on is FailOn.worse and report.worse:
+        raise typer.Exit(1)
 
 
 def main() -> None:
