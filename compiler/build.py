@@ -12,8 +12,13 @@ builds — but does not jit — pure, vmappable functions of
 ``init`` draws the run's train/validation split and fits standardization (mean, population
 standard deviation; constant features get scale 1) on its training rows. ``epoch`` is a whole
 epoch: shuffle, every step in ``lax.scan``, then the validation split in inference mode;
-``train`` is ``init`` then a scan over ``epochs``. Metrics per epoch are named in
-``Program.metric_names``.
+``train`` is ``init`` then a scan over ``epochs``. Metrics per epoch (``Program.metric_names``):
+``train_divergence`` and ``train_penalty`` (``λ/2‖W‖²``, 0 when decay is decoupled) averaged
+over the epoch's steps; ``val_divergence`` and ``val_accuracy`` or ``val_rmse`` (target units)
+on the validation split in inference mode; ``grad_norm`` and ``grad_norm_l<i>`` (L2 norm of the
+objective's gradient, all of it or one layer's, averaged over steps); ``weight_norm`` (L2 norm of
+the weight matrices at the end of the epoch); ``learning_rate`` at the epoch's last step.
+``evaluate`` returns ``divergence`` and ``accuracy`` or ``rmse``.
 
 Randomness: one root key per seed; fixed tags derive independent streams
 (``fold_in(root, tag)``): the split, the initial weights, the per-epoch shuffle
