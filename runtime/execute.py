@@ -23,7 +23,7 @@ import numpy as np
 
 from runtime.plan import Group
 
-__all__ = ["GroupResult", "LaneResult", "execute_group", "enable_compile_cache", "cache_dir",
+__all__ = ["GroupResult", "LaneResult", "execute_group", "InProcess", "enable_compile_cache", "cache_dir",
            "BN_COLLAPSE_RATIO"]
 
 # A batch-normalized layer whose gradient norm falls below this fraction of the output layer's
@@ -149,6 +149,22 @@ def execute_group(group: Group, dataset, environment: dict,
             warnings=_warnings(run.variant.spec, curves),
         ))
     return GroupResult(group.group_id, group.lane_width, names, results, compile_seconds, run_seconds, environment)
+
+
+class InProcess:
+    """The default executor: the groups one after another in this process.
+
+    An executor's contract: ``run(groups, data, environment, progress)`` yields
+    ``(group, GroupResult)`` as groups finish, in any order; ``data`` maps a group id to its
+    Dataset; ``progress`` (or None) receives the ("group", group=…) and ("epoch", done=…, total=…)
+    events. The caller writes each result as it arrives."""
+
+    def run(self, groups, data, environment, progress=None):
+        for g in groups:
+            if progress:
+                progress("group", group=g, todo=len(g.runs))
+            on_epoch = (lambda d, t: progress("epoch", done=d, total=t)) if progress else None
+            yield g, execute_group(g, data[g.group_id], environment, on_epoch=on_epoch)
 
 
 def _warnings(spec, curves: dict[str, np.ndarray]) -> list[str]:

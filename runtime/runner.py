@@ -9,7 +9,6 @@ group atomically before starting the next. An interruption loses at most the gro
 from __future__ import annotations
 
 import json
-import time
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
@@ -21,7 +20,7 @@ import pyarrow as pa
 from compiler.hashing import canonical_json, variant_payload
 from compiler.spec import METRICS
 from runtime import __version__, environment
-from runtime.execute import GroupResult, enable_compile_cache, execute_group
+from runtime.execute import GroupResult, InProcess, enable_compile_cache
 from runtime.plan import Group, plan
 from runtime.store import ResultSet, ResultSetError, open_result_set, result_dir, write_results, writer_lock
 
@@ -208,8 +207,11 @@ def _stored(path: Path) -> ResultSet | None:
 
 
 def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = False,
-              progress: Callable | None = None, on_wait: Callable | None = None) -> RunReport:
+              progress: Callable | None = None, on_wait: Callable | None = None, executor=None) -> RunReport:
     """Compute every run of the study not already stored; write each group as it finishes.
+
+    ``executor`` runs the groups (default :class:`runtime.execute.InProcess`); whatever it is,
+    this process stays the single writer of the result set.
 
     ``progress(event, **info)`` receives ("plan", groups=…, runs=…), ("group", group=…,
     todo=…), ("epoch", done=…, total=…), ("stored", group=…, result=…)."""
@@ -246,13 +248,7 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
         diverged, warnings = 0, []
         compile_s = run_s = 0.0
         current = stored
-        if fresh and (path / "runs.parquet").exists():
-            current = None
-        for g in todo:
-            if progress:
-                progress("group", group=g, todo=len(g.runs))
-            result = execute_group(g, data[g.group_id], env,
-                                   on_epoch=(lambda d, t: progress("epoch", done=d, total=t)) if progress else None)
+        for g, result in (executor or InProcess()).run(todo, data, env, progress):
             runs_t, curves_t = group_tables(result, g, loaded.study_hash, headline, key_columns,
                                             data[g.group_id].fingerprint)
             current = write_results(path, meta, runs_t, curves_t, previous=current)
