@@ -1,8 +1,10 @@
 """diff over real result sets: reproducibility, a planted effect, mismatched studies."""
 
 import pytest
+from typer.testing import CliRunner
 
 from compiler.loader import load_study
+from runtime.cli import app
 from runtime.diff import diff_baseline, diff_result_sets
 from runtime.runner import run_study
 from runtime.store import open_result_set
@@ -16,7 +18,8 @@ def _run(tmp, tiny_spec, name, **kw):
 def pair(tmp_path_factory, tiny_spec):
     tmp = tmp_path_factory.mktemp("diff")
     a = _run(tmp, tiny_spec, "same", seeds=5, epochs=4, rates="[0.05, 0.2]")
-    b = _run(tmp / "again", tiny_spec, "same", seeds=5, epochs=4, rates="[0.05, 0.2]") if (tmp / "again").mkdir() is None else None
+    (tmp / "again").mkdir()
+    b = _run(tmp / "again", tiny_spec, "same", seeds=5, epochs=4, rates="[0.05, 0.2]")
     return a, b
 
 
@@ -42,6 +45,9 @@ def test_planted_effect_is_detected_as_worse(tmp_path, tiny_spec):
     assert row["verdict"] == "worse", row
     assert row["diff"] < 0 and row["p_adjusted"] < 0.05
     assert report.worse == 1
+    gate = CliRunner().invoke(app, ["diff", str(good.path), str(slow.path), "--fail-on", "worse"])
+    assert gate.exit_code == 1 and "worse" in gate.stdout
+    assert CliRunner().invoke(app, ["diff", str(good.path), str(slow.path)]).exit_code == 0
 
 
 def test_baseline_within_one_result_set(pair):
