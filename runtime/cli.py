@@ -423,12 +423,31 @@ def diff(
             if report.only_b:
                 lines.append("only in B: " + "; ".join(report.only_b))
             typer.echo("\n".join(lines if format is Output.table else [f"    {x}" if x.startswith("  ") else x for x in lines]) + "\n")
-        typer.echo(render(report.rows, DIFF_COLUMNS, format.value, title=title))
+        if format is Output.table:
+            rows, columns = _compact_diff(report.rows, baseline is not None)
+        else:
+            rows, columns = report.rows, DIFF_COLUMNS
+        typer.echo(render(rows, columns, format.value, title=title))
         untested = [r for r in report.rows if r["verdict"] == "no test possible"]
         if untested and format is Output.table:
             typer.echo(f"{len(untested)} row(s): {untested[0]['reason']}")
     if fail_on is FailOn.worse and report.worse:
         raise typer.Exit(1)
+
+
+def _compact_diff(rows: list[dict], baseline: bool) -> tuple[list[dict], list[str]]:
+    """The diff for a terminal: one variant column, n as 'A/B', the interval in one cell."""
+    from runtime.formats import fmt_number
+
+    out = []
+    for r in rows:
+        same = r["variant_a"] == r["variant_b"]
+        variant = r["variant_b"] if baseline or same else f"{r['variant_a']} → {r['variant_b']}"
+        ci = "" if r["ci_low"] is None else f"[{fmt_number(r['ci_low'])}, {fmt_number(r['ci_high'])}]"
+        out.append({"variant": variant, "metric": r["metric"], "test": r["test"], "n": f"{r['n_a']}/{r['n_b']}",
+                    "A": r["mean_a"], "B": r["mean_b"], "B − A": r["diff"], "95% CI": ci,
+                    "p": r["p"], "p adj": r["p_adjusted"], "verdict": r["verdict"]})
+    return out, ["variant", "metric", "test", "n", "A", "B", "B − A", "95% CI", "p", "p adj", "verdict"]
 
 
 def main() -> None:
