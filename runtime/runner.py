@@ -217,7 +217,9 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
     todo=…), ("epoch", done=…, total=…), ("stored", group=…, result=…)."""
     enable_compile_cache()
     env = environment.capture()
-    env_fp = environment.fingerprint(env)
+    # Stored runs are reused when they match the environment that will compute the missing ones
+    # (an executor's workers, when it says so), not necessarily this process's.
+    env_fp = environment.fingerprint(getattr(executor, "compute_environment", None) or env)
     path = result_dir(out, loaded.spec.study.name, loaded.study_hash)
     meta = study_meta(loaded, env)
     spec = loaded.spec
