@@ -69,9 +69,11 @@ app = typer.Typer(
 
 
 def _loaded_user_errors() -> tuple[type[Exception], ...]:
-    # compiler.data is only in sys.modules when a command needed data; then its error counts too.
-    mod = sys.modules.get("compiler.data")
-    return (mod.DataError,) if mod is not None else ()
+    # compiler.data and runtime.cluster are only in sys.modules when a command needed data or a
+    # cluster; then their errors count too.
+    found = [getattr(sys.modules[name], error) for name, error in
+             (("compiler.data", "DataError"), ("runtime.cluster", "ClusterError")) if name in sys.modules]
+    return tuple(found)
 
 
 class Format(str, Enum):
@@ -189,6 +191,9 @@ def run(
                               help="Runs per compiled program call (lane width); default: chosen per structure."),
     fresh: bool = typer.Option(False, "--fresh", help="Recompute every run, even those already stored."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bars or summary on stderr."),
+    cluster: str = typer.Option(None, "--cluster",
+                                help="Run the groups on a Dask scheduler (tcp://HOST:PORT) or on N local "
+                                     "worker processes (local:N); results are written here."),
 ) -> None:
     """Run every variant × seed of a study and store the result set; print its path last.
 
@@ -200,6 +205,8 @@ def run(
       lesion run specs/cold-chain.toml
 
       lesion run specs/cold-chain.toml --out /tmp/results --lanes 16 --quiet
+
+      lesion run specs/cold-chain.toml --cluster local:4
     """
     from compiler.loader import load_study
 
@@ -207,9 +214,13 @@ def run(
     from runtime.runner import run_study  # imports jax: after the spec is known to be good
 
     progress = None if quiet else _RunProgress(study)
+    executor = None
+    if cluster is not None:
+        from runtime.cluster import DaskExecutor
+        executor = DaskExecutor(cluster, on_warning=lambda text: _err(f"warning: {text}"))
     try:
-        with progress or _nothing():
-            report = run_study(study, out, lanes=lanes, fresh=fresh, progress=progress,
+        with executor or _nothing(), progress or _nothing():
+            report = run_study(study, out, lanes=lanes, fresh=fresh, progress=progress, executor=executor,
                                on_wait=lambda: _err("waiting: another 'lesion run' is writing this result set"))
     except KeyboardInterrupt:
         _err(f"interrupted: finished groups are stored in {out / study.result_set}; "
