@@ -126,7 +126,7 @@ def test_good_spec_loads_with_source_hash_and_variants():
     study = load_study(path)
     assert study.source == path.read_text()
     assert study.study_hash == study_hash(study.spec)
-    assert len(study.variants) == 9 and study.runs == 27
+    assert len(study.variants) == 9 and study.runs == 45
     assert study.result_set == f"cold-chain-{study.study_hash[:12]}"
     assert load_text(study.source, "replayed").study_hash == study.study_hash
 
