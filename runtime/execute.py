@@ -86,13 +86,13 @@ def enable_compile_cache() -> None:
 _programs: dict[tuple, tuple] = {}
 
 
-def _compiled(group: Group, dataset, knobs, keys):
+def _compiled(group: Group, dataset, knobs, keys, reuse: bool):
     import jax
 
     from compiler.build import compile_variant
 
     key = (group.structure, group.lane_width, dataset.x.shape, dataset.fingerprint)
-    if key in _programs:
+    if reuse and key in _programs:
         return _programs[key] + (0.0,)
     program = compile_variant(group.runs[0].variant.spec, dataset)
     t0 = time.perf_counter()
@@ -110,8 +110,11 @@ def _compiled(group: Group, dataset, knobs, keys):
 
 
 def execute_group(group: Group, dataset, environment: dict,
-                  on_epoch: Callable[[int, int], None] | None = None) -> GroupResult:
-    """Train every run of a group at the group's lane width and return its numbers."""
+                  on_epoch: Callable[[int, int], None] | None = None, reuse: bool = True) -> GroupResult:
+    """Train every run of a group at the group's lane width and return its numbers.
+
+    ``reuse=False`` compiles afresh even when this process already compiled the structure
+    (replay proves the bits with a new compile)."""
     import jax
     import jax.numpy as jnp
 
@@ -123,7 +126,7 @@ def execute_group(group: Group, dataset, environment: dict,
     knobs = {n: jnp.asarray(np.array([v[n] for v in vectors], dtype=np.float32)) for n in names}
     keys = jax.vmap(seed_key)(jnp.asarray([r.seed for r in lanes], dtype=jnp.int32))
 
-    program, init_c, epoch_c, status_fn, params_fn, x, y, compile_seconds = _compiled(group, dataset, knobs, keys)
+    program, init_c, epoch_c, status_fn, params_fn, x, y, compile_seconds = _compiled(group, dataset, knobs, keys, reuse)
     t0 = time.perf_counter()
     carry = init_c(knobs, keys, x, y)
     per_epoch = []

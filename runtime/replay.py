@@ -149,7 +149,7 @@ def replay(path: str | Path, *, run: str | None = None, variant: str | None = No
                                     f"{stored[:16]}…: the data changed since the run")
         if on_group:
             on_group(g)
-        result = execute_group(g, d, current)
+        result = execute_group(g, d, current, reuse=False)
         for lane in result.lanes:
             rows.append(_compare(lane, cols, row_of[lane.run_id], curves, result.metric_names))
     return ReplayReport(rs.path, rows, changes)
