@@ -22,7 +22,7 @@ import rfc8785
 from compiler.spec import Spec
 
 __all__ = ["canonical_json", "sha256_hex", "study_hash", "variant_hash", "run_id",
-           "KNOBS", "knobs_of", "structure_key", "variant_payload"]
+           "KNOBS", "knobs_of", "structure_key", "variant_payload", "lookup"]
 
 # Dotted paths of traced scalars. A path missing in a variant (another kind) is simply absent.
 KNOBS: tuple[str, ...] = (
@@ -59,7 +59,8 @@ def run_id(vhash: str, seed: int) -> str:
     return f"{vhash[:16]}-s{seed}"
 
 
-def _lookup(tree: dict, path: str):
+def lookup(tree: dict, path: str):
+    """The value at a dotted path of a nested dict, or None where the path does not exist."""
     node = tree
     for part in path.split("."):
         if not isinstance(node, dict) or part not in node:
@@ -73,7 +74,7 @@ def knobs_of(variant: Spec) -> dict[str, float]:
     tree = variant_payload(variant)
     out = {}
     for path in KNOBS:
-        value = _lookup(tree, path)
+        value = lookup(tree, path)
         if value is not None:
             out[path] = float(value)
     return out
@@ -83,7 +84,7 @@ def structure_key(variant: Spec) -> str:
     tree = variant_payload(variant)
     for path in KNOBS:
         *head, last = path.split(".")
-        node = _lookup(tree, ".".join(head)) if head else tree
+        node = lookup(tree, ".".join(head)) if head else tree
         if isinstance(node, dict):
             node.pop(last, None)
     return sha256_hex(canonical_json(tree))[:12]

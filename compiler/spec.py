@@ -283,14 +283,9 @@ class Adam(Strict):
     schedule: Schedule = Constant(kind="constant")
 
 
-class AdamW(Strict):
+class AdamW(Adam):
     """Adam with decoupled weight decay; λ is ``regularization.weight_decay``."""
     kind: Literal["adamw"]
-    learning_rate: LearningRate = 1e-3
-    b1: Rate = 0.9
-    b2: Rate = 0.999
-    eps: Positive = 1e-8
-    schedule: Schedule = Constant(kind="constant")
 
 
 class RMSProp(Strict):

@@ -17,7 +17,7 @@ from typing import Callable
 import numpy as np
 import pyarrow as pa
 
-from compiler.hashing import canonical_json, variant_payload
+from compiler.hashing import canonical_json, lookup, variant_payload
 from compiler.spec import METRICS
 from runtime import __version__, environment
 from runtime.execute import GroupResult, InProcess, enable_compile_cache
@@ -60,20 +60,11 @@ def varied_keys(variants) -> list[str]:
     return keys
 
 
-def _lookup(tree, dotted: str):
-    node = tree
-    for part in dotted.split("."):
-        if not isinstance(node, dict) or part not in node:
-            return None
-        node = node[part]
-    return node
-
-
 def _key_columns(variants, keys: list[str]) -> dict[str, tuple[pa.DataType, dict]]:
     """Each varied key's value in every resolved variant, typed when the values share a type."""
     out = {}
     for key in keys:
-        values = {v.hash: _lookup(variant_payload(v.spec), key) for v in variants}
+        values = {v.hash: lookup(variant_payload(v.spec), key) for v in variants}
         kinds = {type(x) for x in values.values() if x is not None}
         if kinds <= {bool}:
             typ = pa.bool_()
