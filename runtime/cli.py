@@ -461,6 +461,56 @@ def _compact_diff(rows: list[dict], baseline: bool) -> tuple[list[dict], list[st
     return out, ["variant", "metric", "test", "n", "A", "B", "B − A", "95% CI", "p", "p adj", "verdict"]
 
 
+class PlotKind(str, Enum):
+    curves = "curves"
+    arms = "arms"
+    grid = "grid"
+
+
+@app.command()
+def plot(
+    result: Path = typer.Argument(..., help="A result set folder written by 'lesion run'.", show_default=False),
+    out: Path = typer.Option(None, "--out", "-o", help="Picture to write, .png or .svg "
+                             "(default: <result set>/plots/<kind>.png)."),
+    kind: PlotKind = typer.Option(PlotKind.curves, "--kind", "-k",
+                                  help="curves: per-epoch means; arms: final values per variant; "
+                                       "grid: heat map of a two-axis grid."),
+    metric: list[str] = typer.Option(None, "--metric", "-m", help="Metric(s) to draw (default: the study's; "
+                                     "curves also draw train and val divergence)."),
+    baseline: str = typer.Option(None, "--baseline", help="arms: the variant to mark as the baseline "
+                                 "(default: the one labelled 'base', if any)."),
+    against: Path = typer.Option(None, "--against", help="Draw the diff from RESULT (A) to this result set (B)."),
+) -> None:
+    """Draw a result set as a picture (PNG or SVG) and print the written path.
+
+    Examples:
+
+      lesion plot results/cold-chain-7da471c81b78
+
+      lesion plot results/cold-chain-7da471c81b78 --kind grid -o grid.svg
+
+      lesion plot results/kiln-drift-4f765a63c96a --kind arms --metric val_rmse --metric val_divergence
+
+      lesion plot results/A --against results/B
+    """
+    from runtime.plot import PlotError, default_path, plot_diff, plot as draw, save_figure  # imports matplotlib
+    from runtime.store import open_result_set
+
+    rs = open_result_set(result)
+    try:
+        if against is not None:
+            if baseline is not None:
+                raise UsageError("--baseline marks an arm of one result set; it does not apply with --against")
+            fig = plot_diff(rs, open_result_set(against), metrics=metric or None)
+            target = out or rs.path / "plots" / f"diff-{Path(against).resolve().name}.png"
+        else:
+            fig = draw(rs, kind.value, metrics=metric or None, baseline=baseline)
+            target = out or default_path(rs, kind.value)
+        typer.echo(str(save_figure(fig, target)))
+    except PlotError as err:
+        raise UsageError(str(err)) from None
+
+
 def main() -> None:
     """Console-script entry point (``lesion = "runtime.cli:main"``)."""
     app()
