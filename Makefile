@@ -19,6 +19,8 @@ $(STAMP): $(BIN)/python pyproject.toml requirements.lock
 demo: $(STAMP)
 	@path=$$($(BIN)/lesion run specs/cold-chain.toml --out results | tail -n 1) && \
 	  $(BIN)/lesion show "$$path" && \
+	  $(BIN)/lesion plot "$$path" --kind curves && \
+	  $(BIN)/lesion plot "$$path" --kind arms && \
 	  echo "result set: $$path  (try: $(BIN)/lesion replay $$path)"
 
 test: $(STAMP)
