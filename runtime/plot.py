@@ -200,10 +200,11 @@ def _style(metric: str) -> str:
 def plot_curves(rs: ResultSet, metrics: list[str] | None = None) -> Figure:
     """Per-epoch mean ± 1 sd over ok seeds of each metric; train dashed, validation solid; one panel
     per metric family (``train_divergence`` and ``val_divergence`` share a panel)."""
-    try:
-        rows, columns = curve_rows(rs, metrics or None)
-    except ValueError as err:
-        raise PlotError(str(err)) from None
+    have = [c for c in rs.curves.column_names if c not in ("run_id", "variant_label", "seed", "epoch")]
+    for m in metrics or []:
+        if m not in have:
+            raise PlotError(f"--metric {m!r} has no curves in this result set (it has: {', '.join(have)})")
+    rows, columns = curve_rows(rs, metrics or None)
     metrics = columns[3:]  # after variant, epoch, runs
     families = list(dict.fromkeys(_family(m) for m in metrics))
     labels = _variants(rs)
@@ -471,7 +472,8 @@ def plot_diff(rs_a: ResultSet, rs_b: ResultSet, metrics: list[str] | None = None
             if row["diff"] is not None and math.isfinite(row["diff"]):
                 ax.plot([row["diff"]], [y], "D", color=colour, markersize=6.5, gid=f"diff:{m}:{b}")
             p = row["p_adjusted"]
-            note = row["verdict"] + (f", p̃={p:.2g}" if p is not None and math.isfinite(p) else "")
+            note = f"{row['verdict']} ({row['test']}, n={row['n_b']})" if row["test"] != "none" else row["verdict"]
+            note += f", p adj {p:.2g}" if p is not None and math.isfinite(p) else ""
             ax.annotate(note, (1.0, y), xycoords=("axes fraction", "data"), xytext=(4, 0),
                         textcoords="offset points", va="center", fontsize=8, color=colour, annotation_clip=False)
         ax.set_xlabel(f"B − A, final {m} ({_direction_text(m)})")
