@@ -145,8 +145,8 @@ def replay(path: str | Path, *, run: str | None = None, variant: str | None = No
             stored = cols["data_fingerprint"][row_of[r.run_id]]
             if d.fingerprint != stored:
                 where = r.variant.spec.data.path if r.variant.spec.data.kind == "file" else "the generated data"
-                raise ReplayRefused(f"{where}: data fingerprint is {d.fingerprint[:16]}…, the run recorded "
-                                    f"{stored[:16]}…: the data changed since the run")
+                raise ReplayRefused(f"{where}: the data changed since the run (SHA-256 now {d.fingerprint}, "
+                                    f"recorded {stored}); restore the data the run used")
         if on_group:
             on_group(g)
         result = execute_group(g, d, current, reuse=False)
