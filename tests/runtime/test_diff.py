@@ -70,3 +70,16 @@ def test_mismatched_studies_give_a_readable_spec_diff(pair, tmp_path, tiny_spec)
     assert {r["variant_b"] for r in report.rows} == {
         "optimizer.learning_rate=0.05, regularization.weight_decay=0.0",
         "optimizer.learning_rate=0.2, regularization.weight_decay=0.0"}
+
+
+def test_different_data_is_shown_and_variants_still_pair(pair, tmp_path, tiny_spec):
+    a, _ = pair
+    spec = tiny_spec(tmp_path, "same", seeds=5, epochs=4, rates="[0.05, 0.2]")
+    spec.write_text(spec.read_text().replace("noise = 0.5", "noise = 0.9"))
+    b = open_result_set(run_study(load_study(spec), tmp_path / "r").path)
+    report = diff_result_sets(a, b)
+    assert [c.render() for c in report.changes] == ["data.noise: 0.5 → 0.9"]
+    # matched by configuration minus data.noise, paired over the five shared seeds
+    assert [(r["variant_a"] == r["variant_b"], r["test"], r["n_a"]) for r in report.rows] == [(True, "paired", 5)] * 2
+    text = CliRunner().invoke(app, ["diff", str(a.path), str(b.path)]).stdout
+    assert "data.noise: 0.5 → 0.9" in text and "Traceback" not in text
