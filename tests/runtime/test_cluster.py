@@ -1,0 +1,222 @@
+"""Groups on a Dask cluster (two worker processes on loopback) against the same study in process.
+
+The reference is the in-process run: a run's bits are a function of (variant, seed, lane width,
+software, machine) — measured fact, /work/shared/measured.md — so the same groups at the same
+widths on workers of the same environment must give the same bits, whoever computes them.
+"""
+
+import json
+import os
+import signal
+import threading
+import time
+
+import numpy as np
+import pytest
+from distributed import Client, LocalCluster
+from typer.testing import CliRunner
+
+import runtime.cluster
+from compiler.loader import load_study
+from runtime import environment
+from runtime.cli import app
+from runtime.cluster import ClusterError, DaskExecutor, parse_address
+from runtime.replay import replay
+from runtime.runner import run_study
+from runtime.store import open_result_set
+
+
+@pytest.fixture(scope="module")
+def cluster():
+    # Loopback only, one thread per worker process: the set-up `--cluster local:2` makes.
+    with LocalCluster(n_workers=2, processes=True, threads_per_worker=1, host="127.0.0.1",
+                      dashboard_address=":0") as lc, Client(lc) as client:
+        yield lc, client
+
+
+def _by_run(rs):
+    runs = rs.runs.sort_by("run_id")
+    curves = rs.curves.sort_by([("run_id", "ascending"), ("epoch", "ascending")])
+    return runs, curves
+
+
+def _assert_same_bits(a, b):
+    ra, ca = _by_run(a)
+    rb, cb = _by_run(b)
+    assert ra.column("run_id").to_pylist() == rb.column("run_id").to_pylist()
+    assert ra.column("param_digest").to_pylist() == rb.column("param_digest").to_pylist()
+    assert ra.column("lane_width").to_pylist() == rb.column("lane_width").to_pylist()
+    metrics = [c for c in ca.column_names if c not in ("run_id", "variant_label", "seed", "epoch")]
+    assert metrics
+    for m in metrics:
+        # float32 bit patterns, not a tolerance
+        x = ca.column(m).to_numpy().astype(np.float32).view(np.uint32)
+        y = cb.column(m).to_numpy().astype(np.float32).view(np.uint32)
+        np.testing.assert_array_equal(x, y, err_msg=m)
+
+
+@pytest.fixture(scope="module")
+def on_cluster(cluster, tmp_path_factory, tiny_spec):
+    lc, _ = cluster
+    tmp = tmp_path_factory.mktemp("cluster")
+    loaded = load_study(tiny_spec(tmp, "spread", seeds=3, epochs=4, rates="[0.03, 0.3]"))
+    here = run_study(loaded, tmp / "here", lanes=2)
+    with DaskExecutor(lc.scheduler_address) as ex:
+        there = run_study(loaded, tmp / "there", lanes=2, executor=ex)
+    return loaded, open_result_set(here.path), open_result_set(there.path), there
+
+
+def test_cluster_result_set_is_bit_identical_to_in_process(on_cluster):
+    loaded, here, there, report = on_cluster
+    assert report.computed == 6 and report.groups == 3
+    assert there.runs.num_rows == 6 and there.curves.num_rows == 6 * 4
+    _assert_same_bits(here, there)
+
+
+def test_runs_record_the_workers_environment(on_cluster, cluster):
+    _, client = cluster
+    _, _, there, _ = on_cluster
+    workers = client.run(runtime.cluster.worker_environment)
+    recorded = {environment.fingerprint(json.loads(e))
+                for e in there.runs.column("environment").to_pylist()}
+    assert recorded == {environment.fingerprint(e) for e in workers.values()}
+    assert set(there.runs.column("env_fingerprint").to_pylist()) == recorded
+
+
+def test_resume_on_the_cluster_computes_nothing(on_cluster, cluster):
+    lc, _ = cluster
+    loaded, _, there, _ = on_cluster
+    with DaskExecutor(lc.scheduler_address) as ex:
+        again = run_study(loaded, there.path.parent, lanes=2, executor=ex)
+    assert again.computed == 0 and again.reused == 6
+
+
+def test_replay_of_worker_runs_succeeds_here(on_cluster):
+    _, _, there, _ = on_cluster
+    report = replay(there.path, everything=True)
+    assert len(report.rows) == 6 and report.identical, [r.as_dict() for r in report.rows]
+    assert report.environment_changes == []
+
+
+def _set_worker_env(client, workers, change):
+    def patch():
+        runtime.cluster._worker_env = None
+        runtime.cluster._worker_env = {**runtime.cluster.worker_environment(), **change}
+    client.run(patch, workers=workers)
+
+
+def _reset_worker_env(client):
+    client.run(lambda: setattr(runtime.cluster, "_worker_env", None))
+
+
+def test_workers_with_different_software_are_refused(cluster):
+    lc, client = cluster
+    first = sorted(client.scheduler_info()["workers"])[0]
+    _set_worker_env(client, [first], {"jax": "0.0.1"})
+    try:
+        with pytest.raises(ClusterError) as err:
+            DaskExecutor(lc.scheduler_address).open()
+    finally:
+        _reset_worker_env(client)
+    msg = str(err.value)
+    assert "\n" not in msg and first in msg and "jax: 0.0.1" in msg
+
+
+def test_workers_unlike_this_machine_are_only_a_warning(cluster):
+    lc, client = cluster
+    _set_worker_env(client, None, {"xla_flags": "--xla_cpu_max_isa=AVX"})
+    said = []
+    try:
+        with DaskExecutor(lc.scheduler_address, on_warning=said.append) as ex:
+            assert ex.compute_environment["xla_flags"] == "--xla_cpu_max_isa=AVX"
+    finally:
+        _reset_worker_env(client)
+    assert len(said) == 1 and "xla_flags" in said[0] and "replay" in said[0]
+
+
+@pytest.mark.parametrize("text,expected", [
+    ("local:3", ("local", 3)),
+    ("tcp://127.0.0.1:8786", ("remote", "tcp://127.0.0.1:8786")),
+    ("localhost:8786", ("remote", "tcp://localhost:8786")),
+])
+def test_cluster_addresses(text, expected):
+    assert parse_address(text) == expected
+
+
+@pytest.mark.parametrize("text", ["local", "local:0", "local:two", "nowhere"])
+def test_bad_cluster_address_exits_2_with_one_line(text, tmp_path, tiny_spec):
+    out = CliRunner().invoke(app, ["run", str(tiny_spec(tmp_path)), "--cluster", text, "--quiet",
+                                   "--out", str(tmp_path / "r")])
+    assert out.exit_code == 2, out.output
+    lines = out.stderr.strip().splitlines()
+    assert len(lines) == 1 and "local:N" in lines[0] and "tcp://HOST:PORT" in lines[0]
+    assert not (tmp_path / "r").exists()
+
+
+def _free_loopback_port() -> int:
+    import socket
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def test_unreachable_scheduler_is_a_one_line_cluster_error():
+    ex = DaskExecutor(f"tcp://127.0.0.1:{_free_loopback_port()}", connect_seconds=1)
+    with pytest.raises(ClusterError) as err:
+        ex.open()
+    assert "cannot reach the scheduler" in str(err.value) and "\n" not in str(err.value)
+    assert ex.client is None
+
+
+def test_a_scheduler_without_workers_is_a_cluster_error():
+    with LocalCluster(n_workers=0, processes=True, host="127.0.0.1", dashboard_address=":0") as lc:
+        with pytest.raises(ClusterError, match="no worker joined"):
+            DaskExecutor(lc.scheduler_address, worker_seconds=0.5).open()
+
+
+def test_cli_local_cluster_matches_in_process(tmp_path, tiny_spec, on_cluster):
+    # `--cluster local:2` starts its own loopback cluster; same study, same widths, same bits
+    _, here, _, _ = on_cluster
+    spec = tiny_spec(tmp_path, "spread", seeds=3, epochs=4, rates="[0.03, 0.3]")
+    out = CliRunner().invoke(app, ["run", str(spec), "--cluster", "local:2", "--lanes", "2", "--quiet",
+                                   "--out", str(tmp_path / "r")])
+    assert out.exit_code == 0, out.output
+    _assert_same_bits(here, open_result_set(out.stdout.strip().splitlines()[-1]))
+
+
+def _kill_a_busy_worker(client, killed: dict, stop: threading.Event):
+    while not stop.is_set():
+        for worker, keys in client.processing().items():
+            if any(str(k).startswith("lesion-") for k in keys):
+                pid = client.run(os.getpid, workers=[worker])[worker]
+                os.kill(pid, signal.SIGKILL)
+                killed.update(worker=worker, pid=pid, keys=list(keys))
+                return
+        time.sleep(0.005)
+
+
+def test_a_worker_killed_mid_study_loses_nothing_and_writes_nothing_twice(cluster, tmp_path, tiny_spec):
+    # Dask recomputes the tasks of a lost worker elsewhere (distributed scheduler docs, "Resilience")
+    lc, client = cluster
+    loaded = load_study(tiny_spec(tmp_path, "killed", seeds=3, epochs=12, rates="[0.03, 0.3]"))
+    here = open_result_set(run_study(loaded, tmp_path / "here", lanes=1).path)
+    killed, stop = {}, threading.Event()
+    stored = []
+    killer = threading.Thread(target=_kill_a_busy_worker, args=(client, killed, stop), daemon=True)
+    with DaskExecutor(lc.scheduler_address) as ex:
+        killer.start()
+        try:
+            report = run_study(loaded, tmp_path / "there", lanes=1, executor=ex,
+                               progress=lambda event, **info: stored.append(info["group"].group_id)
+                               if event == "stored" else None)
+        finally:
+            stop.set()
+            killer.join()
+    assert killed, "no worker was seen busy with a group"
+    assert killed["pid"] not in client.run(os.getpid).values()
+    assert report.computed == 6 and sorted(stored) == sorted(set(stored)) and len(stored) == 6
+    there = open_result_set(report.path)
+    ids = there.runs.column("run_id").to_pylist()
+    assert len(ids) == len(set(ids)) == 6
+    assert there.curves.num_rows == 6 * 12
+    _assert_same_bits(here, there)
