@@ -7,7 +7,8 @@ Contract:
   problem of the file (all field errors at once, then, if the fields are valid, every expansion
   problem), each rendered ``FILE:LINE: dotted.key: what is wrong``.
 - Bad files (missing, a directory, over :data:`MAX_SPEC_BYTES`, binary, not UTF-8) are problems
-  too, never tracebacks.
+  too, never tracebacks; so are key paths of more than :data:`MAX_KEY_PARTS` parts and values
+  nested deeper than Python's stack allows.
 - ``tomllib`` keeps no positions, so :func:`line_of` finds the line of a key path in the source
   with a small scanner of its own. It is best-effort: a path it cannot find falls back to the
   nearest enclosing key or table header written in the file, else line 1; it never raises.
@@ -31,10 +32,17 @@ from compiler.expand import Variant, expand, pydantic_problems
 from compiler.hashing import study_hash
 from compiler.spec import Spec
 
-__all__ = ["LoadedStudy", "load_study", "load_text", "line_of", "key_lines", "MAX_SPEC_BYTES"]
+__all__ = ["LoadedStudy", "load_study", "load_text", "line_of", "key_lines", "MAX_SPEC_BYTES", "MAX_KEY_PARTS"]
 
 # A spec is a page of settings; anything this large is a wrong path (a data file, a log).
 MAX_SPEC_BYTES = 1 << 20
+# A spec's keys are a few levels deep. tomllib's cost grows with the square of a dotted key's
+# length (a 120 KB key took 22 s here) and so does the locator's, so longer keys are refused
+# before parsing.
+MAX_KEY_PARTS = 32
+# Possessive and anchored at a word start, so the search stays linear on any text.
+_KEY_PART = r"(?:(?<![A-Za-z0-9_-])[A-Za-z0-9_-]++|\"(?:[^\"\\\n]|\\.)*+\"|'[^'\n]*+')"
+_DEEP_KEY = re.compile(rf"(?>{_KEY_PART}[ \t]*+\.[ \t]*+){{{MAX_KEY_PARTS}}}{_KEY_PART}")
 
 
 @dataclass(frozen=True)
@@ -97,6 +105,31 @@ _TOML_END = re.compile(r"\s*\(at end of document\)$")
 
 def load_text(text: str, name: str = "<spec>") -> LoadedStudy:
     """Load a spec from its source text; ``name`` is used in error messages."""
+    if m := _DEEP_KEY.search(text):
+        raise _fail(name, f"a key path of more than {MAX_KEY_PARTS} parts; spec keys are a few levels deep "
+                          "(such as optimizer.schedule.kind)", text.count("\n", 0, m.start()) + 1)
+    try:
+        return _load(text, name)
+    except RecursionError:
+        raise _fail(name, "values nested too deeply (arrays or inline tables inside each other hundreds of "
+                          "levels down); a spec's values are numbers, strings and short lists",
+                    _deepest_line(text)) from None
+
+
+def _deepest_line(text: str) -> int:
+    # Brackets inside strings count too: this only points at a line, it decides nothing.
+    depth = best = where = 0
+    for i, c in enumerate(text):
+        if c in "[{":
+            depth += 1
+            if depth > best:
+                best, where = depth, i
+        elif c in "]}":
+            depth -= 1
+    return text.count("\n", 0, where) + 1
+
+
+def _load(text: str, name: str) -> LoadedStudy:
     try:
         doc = tomllib.loads(text)
     except tomllib.TOMLDecodeError as err:
