@@ -7,6 +7,7 @@ they are reported together, not one per attempt.
 
 from __future__ import annotations
 
+import re
 from dataclasses import dataclass, field
 
 __all__ = ["Problem", "SpecError", "dotted"]
@@ -22,7 +23,7 @@ class Problem:
     def render(self) -> str:
         where = f"{self.file or '<spec>'}:{self.line if self.line is not None else 1}"
         key = dotted(self.loc)
-        return f"{where}: {key}: {self.message}" if key else f"{where}: {self.message}"
+        return _one_line(f"{where}: {key}: {self.message}" if key else f"{where}: {self.message}")
 
 
 @dataclass
@@ -31,6 +32,15 @@ class SpecError(Exception):
 
     def __str__(self) -> str:
         return "\n".join(p.render() for p in self.problems)
+
+
+# Control characters and line separators (what str.splitlines splits on) from a quoted key or a
+# value: escaped, so that one problem stays one line.
+_BREAKS = re.compile(r"[\x00-\x08\x0a-\x1f\x7f-\x9f\u2028\u2029]")
+
+
+def _one_line(text: str) -> str:
+    return _BREAKS.sub(lambda m: m.group().encode("unicode_escape").decode("ascii"), text)
 
 
 def dotted(loc: tuple[str | int, ...]) -> str:
