@@ -1,0 +1,73 @@
+"""Bad input that cannot live in tests/fixtures/bad_specs/ (too large to commit, not a regular
+file) and the corpus' own size: every case ends in exit code 2, a located one-line problem per
+line of stderr and no traceback, through a real ``lesion`` process."""
+
+from __future__ import annotations
+
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).parent.parent
+BAD = ROOT / "tests" / "fixtures" / "bad_specs"
+
+
+def _lesion(*args: str, cwd: Path = ROOT) -> subprocess.CompletedProcess:
+    return subprocess.run([sys.executable, "-m", "runtime.cli", *args], cwd=cwd, capture_output=True, text=True)
+
+
+def _refused(out: subprocess.CompletedProcess, where: str, fragment: str) -> None:
+    assert out.returncode == 2, out
+    assert out.stdout == "" and "Traceback" not in out.stderr
+    lines = out.stderr.splitlines()
+    assert lines and all(line.startswith(f"{where}:") for line in lines), out.stderr
+    assert any(fragment in line for line in lines), out.stderr
+
+
+def test_the_corpus_holds_at_least_100_cases_each_with_its_sidecar():
+    cases = {p.stem for p in BAD.glob("*.toml")}
+    assert len(cases) >= 100
+    assert cases == {p.stem for p in BAD.glob("*.expect")}
+
+
+@pytest.mark.parametrize("body", [b"# padding\n", b"x" * 1023 + b"\n", b'[study]\nname = "a"\n' * 1000])
+def test_a_10_mb_file_is_refused_before_it_is_parsed(tmp_path, body):
+    path = tmp_path / "huge.toml"
+    path.write_bytes(body * (10 * 2**20 // len(body) + 1))
+    assert path.stat().st_size >= 10 * 2**20
+    _refused(_lesion("check", str(path)), str(path), "larger than 1024 KiB")
+
+
+def test_a_directory_named_as_the_spec(tmp_path):
+    (tmp_path / "study.toml").mkdir()
+    _refused(_lesion("check", str(tmp_path / "study.toml")), str(tmp_path / "study.toml"), "is a directory")
+
+
+def test_a_device_that_never_ends_is_read_boundedly():
+    # /dev/zero has no size: reading it whole would never return.
+    _refused(_lesion("check", "/dev/zero"), "/dev/zero", "larger than 1024 KiB")
+
+
+def test_a_missing_file(tmp_path):
+    _refused(_lesion("check", str(tmp_path / "nope.toml")), str(tmp_path / "nope.toml"), "no such file")
+
+
+@pytest.mark.skipif(os.geteuid() == 0, reason="root reads any file")
+def test_an_unreadable_file(tmp_path):
+    path = tmp_path / "locked.toml"
+    path.write_text('[study]\nname = "x"\n')
+    path.chmod(0)
+    _refused(_lesion("check", str(path)), str(path), "cannot read")
+
+
+@pytest.mark.parametrize("case", ["deeply_nested_arrays", "deep_table_header", "utf16_file", "latin1_file",
+                                  "kind_os_system"])
+def test_run_refuses_a_bad_spec_before_importing_jax(case, tmp_path):
+    # `lesion run` loads the spec first: the same located problem, and nothing written under --out.
+    rel = f"tests/fixtures/bad_specs/{case}.toml"
+    out = _lesion("run", rel, "--out", str(tmp_path / "results"), "--quiet")
+    _refused(out, rel, "")
+    assert not (tmp_path / "results").exists()
