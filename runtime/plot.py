@@ -137,7 +137,7 @@ def _direction_text(metric: str) -> str:
 def _suptitle(fig: Figure, title: str, subtitle: str) -> None:
     # About 11 characters of 11-point text per inch: wrap so that no line is cut at the edges.
     width = max(40, int(fig.get_figwidth() * 11))
-    lines = [title] + [w for part in subtitle.split("\n") for w in textwrap.wrap(part, width)]
+    lines = [w for part in [title, *subtitle.split("\n")] for w in textwrap.wrap(part, width)]
     fig.suptitle("\n".join(lines), fontsize=11, linespacing=1.5)
 
 
@@ -181,7 +181,11 @@ def _metrics_of(rs: ResultSet, metrics: list[str] | None) -> list[str]:
 
 
 def _legend_below(fig: Figure, handles: list, ncols: int, title: str | None = None) -> None:
-    fig.legend(handles=handles, loc="outside lower center", ncols=max(1, min(ncols, len(handles))),
+    # As many columns as fit across the figure: 8.5-point text takes about 0.07 in per character,
+    # the handle and gaps about 0.8 in.
+    longest = max(len(line) for h in handles for line in h.get_label().split("\n"))
+    fit = max(1, int(fig.get_figwidth() // (0.8 + 0.07 * longest)))
+    fig.legend(handles=handles, loc="outside lower center", ncols=max(1, min(ncols, fit, len(handles))),
                frameon=False, fontsize=8.5, title=title, title_fontsize=8.5)
 
 
@@ -212,6 +216,7 @@ def plot_curves(rs: ResultSet, metrics: list[str] | None = None) -> Figure:
     runs = _runs_by_variant(rs)
     ok_ids = {r["run_id"] for rr in runs.values() for r in rr if r["status"] == "ok"}
     diverged = sum(r["status"] != "ok" for rr in runs.values() for r in rr)
+    bad_variants = [label for label in labels if any(r["status"] != "ok" for r in runs[label])]
     curves = rs.curves.to_pydict()
     ok_rows: dict[tuple[str, int], list[int]] = {}
     for i, (label, epoch, rid) in enumerate(zip(curves["variant_label"], curves["epoch"], curves["run_id"])):
@@ -241,12 +246,14 @@ def plot_curves(rs: ResultSet, metrics: list[str] | None = None) -> Figure:
                         lo = np.maximum(lo, 0.5 * min(v for v in y if v > 0)) if min(y) > 0 else lo
                         ax.fill_between(x, lo, hi, color=colour, alpha=0.15, linewidth=0)
             stops = sorted(r["diverged_at"] for r in runs[label] if r["status"] != "ok" and r["diverged_at"])
-            # Just above the data area: diverged values are unbounded and would crush the scale.
+            # Just above the data area (diverged values are unbounded and would crush the scale),
+            # one row per variant so that runs stopping at the same epoch do not hide each other.
+            row = 1.03 + 0.05 * bad_variants.index(label) if stops else 0.0
             for epoch in dict.fromkeys(stops):
-                ax.plot([epoch], [1.03], "x", color=colour, markersize=8, markeredgewidth=2,
+                ax.plot([epoch], [row], "x", color=colour, markersize=8, markeredgewidth=2,
                         transform=top, clip_on=False, gid=f"diverged:{label}:{epoch}")
                 if stops.count(epoch) > 1:
-                    ax.annotate(f"×{stops.count(epoch)}", (epoch, 1.03), xycoords=top, xytext=(6, 0),
+                    ax.annotate(f"×{stops.count(epoch)}", (epoch, row), xycoords=top, xytext=(6, 0),
                                 textcoords="offset points", va="center", fontsize=7.5, color=colour,
                                 annotation_clip=False)
         positive = [v for v in values if v > 0]
@@ -256,7 +263,7 @@ def plot_curves(rs: ResultSet, metrics: list[str] | None = None) -> Figure:
         ax.set_xlabel("epoch")
         ax.set_ylabel(fam + (" (log scale)" if log else ""))
         styles = " and ".join(f"{m} ({'dashed' if _style(m) == '--' else 'solid'})" for m in panel)
-        ax.set_title(styles, fontsize=9.5, pad=14 if diverged else 6)
+        ax.set_title(styles, fontsize=9.5, pad=6 + 14 * len(bad_variants))
         ax.grid(True, alpha=0.25, linewidth=0.6)
         ax.xaxis.get_major_locator().set_params(integer=True)
         for side in ("top", "right"):
@@ -307,12 +314,12 @@ def _seed_rows(n: int) -> np.ndarray:
     return np.full(1, -0.22) if n == 1 else np.linspace(-0.12, -0.34, n)
 
 
-def _arm_tick(name: str, row: dict, is_base: bool) -> str:
+def _arm_tick(name: str, row: dict, is_base: bool, single: bool) -> str:
     notes = ["baseline"] if is_base else []
     if row["diverged"]:
         total = row["ok"] + row["diverged"]
         notes.append(f"all {total} diverged" if not row["ok"] else f"{row['diverged']} of {total} diverged")
-    if row["ok"] == 1:
+    if row["ok"] == 1 and not single:  # when every variant has one seed, the subtitle says so once
         notes.append("n=1")
     return name + (f"\n({', '.join(notes)})" if notes else "")
 
@@ -350,7 +357,8 @@ def plot_arms(rs: ResultSet, metrics: list[str] | None = None, baseline: str | N
         ax.set_ylim(-0.6, len(order) - 0.4)
         for side in ("top", "right"):
             ax.spines[side].set_visible(False)
-    axes[0].set_yticks([ys[label] for label in order], [_arm_tick(names[label], tables[metrics[0]][label], label == base)
+    single = _seed_counts(runs) == "one seed per variant"
+    axes[0].set_yticks([ys[label] for label in order], [_arm_tick(names[label], tables[metrics[0]][label], label == base, single)
                                                          for label in order], fontsize=8.5)
     for tick, label in zip(axes[0].get_yticklabels(), order):
         if label == base:
@@ -359,13 +367,15 @@ def plot_arms(rs: ResultSet, metrics: list[str] | None = None, baseline: str | N
                Line2D([], [], color=PALETTE[0], linewidth=2.2, label="95 % t interval of the mean"),
                Line2D([], [], color=PALETTE[0], marker="o", markerfacecolor="none", linestyle="none",
                       label="one seed's final value")]
+    if single:
+        del handles[1]
     if base is not None:
         handles.append(Line2D([], [], color=PALETTE[1], linestyle=":", label=f"baseline mean ({names[base]})"))
     _legend_below(fig, handles, 4)
     head = metrics[0]
     sub = (f"final-epoch {', '.join(metrics)}, sorted best first by {head}; {_seed_counts(runs)}; "
            f"{_diverged_text(runs)}")
-    if _seed_counts(runs) == "one seed per variant":
+    if single:
         sub += "; one seed: no interval (run more seeds)"
     _suptitle(fig, _title(rs, "arms compared"), sub)
     return fig
@@ -438,7 +448,7 @@ def plot_grid(rs: ResultSet, metrics: list[str] | None = None) -> Figure:
         for spine in ax.spines.values():
             spine.set_visible(False)
         bar = fig.colorbar(image, ax=ax, shrink=0.9)
-        bar.set_label(f"final {m} ({_direction_text(m)}; darker = better)", fontsize=8.5)
+        bar.set_label(f"final {m}\n({_direction_text(m)}; darker = better)", fontsize=8.5)
     _suptitle(fig, _title(rs, f"final {', '.join(metrics)} over {ax_y['key']} × {ax_x['key']}"),
               f"cells: mean ± sd of the final epoch over ok seeds, best outlined; "
               f"{_seed_counts(runs)}; {_diverged_text(runs)}")
