@@ -69,10 +69,11 @@ app = typer.Typer(
 
 
 def _loaded_user_errors() -> tuple[type[Exception], ...]:
-    # compiler.data and runtime.cluster are only in sys.modules when a command needed data or a
-    # cluster; then their errors count too.
+    # compiler.data, runtime.cluster and runtime.guard are only in sys.modules when a command
+    # needed data, a cluster or a resource estimate; then their errors count too.
     found = [getattr(sys.modules[name], error) for name, error in
-             (("compiler.data", "DataError"), ("runtime.cluster", "ClusterError")) if name in sys.modules]
+             (("compiler.data", "DataError"), ("runtime.cluster", "ClusterError"),
+              ("runtime.guard", "ResourceError")) if name in sys.modules]
     return tuple(found)
 
 
@@ -272,6 +273,8 @@ class _RunProgress:
             self.total, self.groups = info["runs"], info["groups"]
             if info["runs"] == 0:
                 self.progress.console.print(f"all {info['planned']} runs already stored")
+            elif info.get("estimate") is not None:
+                self.progress.console.print(f"{info['runs']} runs to compute: needs {info['estimate'].describe()}")
         elif event == "group":
             g = info["group"]
             self.index += 1
