@@ -19,7 +19,7 @@ import pyarrow as pa
 
 from compiler.hashing import canonical_json, lookup, variant_payload
 from compiler.spec import METRICS
-from runtime import __version__, environment
+from runtime import __version__, environment, guard
 from runtime.execute import GroupResult, InProcess, enable_compile_cache
 from runtime.plan import Group, plan
 from runtime.store import ResultSet, ResultSetError, open_result_set, result_dir, write_results, writer_lock
@@ -81,11 +81,12 @@ def _key_columns(variants, keys: list[str]) -> dict[str, tuple[pa.DataType, dict
     return out
 
 
-def datasets_for(groups: list[Group], base_dir: Path) -> dict[str, object]:
-    """One data set per distinct data section (loaded once, shared by its groups)."""
+def datasets_for(groups: list[Group], base_dir: Path, cache: dict | None = None) -> dict[str, object]:
+    """One data set per distinct data section (loaded once, shared by its groups; ``cache``
+    keeps them across calls)."""
     from compiler.data import load_data
 
-    cache: dict[str, object] = {}
+    cache = {} if cache is None else cache
     out = {}
     for g in groups:
         spec = g.runs[0].variant.spec
@@ -197,6 +198,15 @@ def _stored(path: Path) -> ResultSet | None:
     return open_result_set(path)
 
 
+def _missing(groups: list[Group], done: set) -> list[Group]:
+    todo = []
+    for g in groups:
+        missing = tuple(r for r in g.runs if r.run_id not in done)
+        if missing:
+            todo.append(Group(g.group_id, g.structure, g.lane_width, missing))
+    return todo
+
+
 def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = False,
               progress: Callable | None = None, on_wait: Callable | None = None, executor=None) -> RunReport:
     """Compute every run of the study not already stored; write each group as it finishes.
@@ -204,7 +214,12 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
     ``executor`` runs the groups (default :class:`runtime.execute.InProcess`); whatever it is,
     this process stays the single writer of the result set.
 
-    ``progress(event, **info)`` receives ("plan", groups=…, runs=…), ("group", group=…,
+    In this process (no ``executor``), the resource guard sees every group first: structures
+    whose lanes would not fit the machine get a narrower width (unless ``lanes`` forces one), and
+    a study that still does not fit raises :class:`runtime.guard.ResourceError` before anything
+    is compiled.
+
+    ``progress(event, **info)`` receives ("plan", groups=…, runs=…, estimate=…), ("group", group=…,
     todo=…), ("epoch", done=…, total=…), ("stored", group=…, result=…)."""
     enable_compile_cache()
     env = environment.capture()
@@ -227,16 +242,23 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
                 if fp == env_fp:
                     done.add(rid)
         groups = plan(loaded.variants, seeds, lanes=lanes)
-        todo = []
-        for g in groups:
-            missing = tuple(r for r in g.runs if r.run_id not in done)
-            if missing:
-                todo.append(Group(g.group_id, g.structure, g.lane_width, missing))
+        todo = _missing(groups, done)
+        base_dir = Path(loaded.path).resolve().parent if loaded.path else Path.cwd()
+        loaded_data: dict = {}
+        data = datasets_for(todo, base_dir, loaded_data)
+        estimate = None
+        if executor is None:  # the memory checked is this machine's
+            budget = guard.lane_budget(todo, data)
+            if lanes is None and any(g.lane_width > budget[g.structure] for g in todo):
+                groups = plan(loaded.variants, seeds, lane_budget=budget)
+                todo = _missing(groups, done)
+                data = datasets_for(todo, base_dir, loaded_data)
+            estimate = guard.estimate(todo, data)
+            guard.check(estimate, lanes_given=lanes is not None, where=loaded.path or loaded.spec.study.name)
         planned = sum(len(g.runs) for g in groups)
         if progress:
-            progress("plan", groups=len(todo), runs=sum(len(g.runs) for g in todo), planned=planned)
-        base_dir = Path(loaded.path).resolve().parent if loaded.path else Path.cwd()
-        data = datasets_for(todo, base_dir)
+            progress("plan", groups=len(todo), runs=sum(len(g.runs) for g in todo), planned=planned,
+                     estimate=estimate)
         key_columns = _key_columns(loaded.variants, varied_keys(loaded.variants))
         diverged, warnings = 0, []
         compile_s = run_s = 0.0

@@ -1,0 +1,204 @@
+"""Resource guard: what a study will need, checked before anything is compiled.
+
+Contract:
+
+- :func:`estimate` ``(groups, data) -> Estimate``: peak bytes and order-of-magnitude seconds of
+  executing ``groups`` (``data`` maps a group id to its :class:`compiler.data.Dataset`), without
+  compiling or running anything;
+- :func:`lane_budget` ``(groups, data, budget_bytes=None) -> {structure: lanes}``: for each
+  structure, the most lanes whose estimate fits in ``budget_bytes`` (default
+  :func:`memory_budget`), for :func:`runtime.plan.plan`'s ``lane_budget``;
+- :func:`check` ``(estimate, lanes_given, where, available=None)`` raises :class:`ResourceError`,
+  one line naming the estimate, what is available and the knob to turn, when the peak exceeds
+  :func:`available_bytes`.
+
+Memory model (float32 everywhere; a run's state is its lane's share of a vmapped program):
+
+- data: the host arrays and one device copy per (structure, data set), since compiled programs
+  keep theirs for the whole invocation;
+- per lane: :func:`runtime.plan.lane_bytes` (parameters, gradients, up to three optimizer slots,
+  one batch of activations) plus what grows with the data: the split indices, the epoch's
+  shuffled order, the larger of the gathered training rows (standardization is fitted on them)
+  and the validation split's forward pass, and the per-step metrics of one epoch;
+- × :data:`XLA_SLACK` for temporaries XLA allocates beside the live values, plus
+  :data:`RUNTIME_BYTES` for the interpreter, jax and the compiled programs.
+
+Time model: ``2·MACs`` FLOPs per example forward, ``6·MACs`` forward and backward, at
+:data:`FLOPS_PER_SECOND`; a fixed cost per vmapped step and per compiled structure. Both are
+rounded facts of this machine (see /work/shared/measured.md), good for the order of magnitude.
+
+The lane budget is taken from a fixed share of the machine's *total* memory, not from what
+happens to be free, so the lane width of a structure (which decides a run's bits) is the same on
+every invocation on one machine; only the refusal looks at the memory free right now.
+"""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass
+
+from compiler.spec import train_size
+from runtime.plan import Group, lane_bytes
+
+__all__ = ["Estimate", "ResourceError", "estimate", "lane_budget", "check", "available_bytes",
+           "memory_budget", "total_bytes", "XLA_SLACK", "RUNTIME_BYTES", "FLOPS_PER_SECOND"]
+
+XLA_SLACK = 1.5
+RUNTIME_BYTES = 512 * 2**20
+# XLA:CPU on small matrix products reached 25-28 % of a ≈117 GFLOP/s f32 peak here.
+FLOPS_PER_SECOND = 30e9
+STEP_SECONDS = 1e-3        # small grid: ~0.7 s for 480 vmapped steps of a tiny model
+COMPILE_SECONDS = 2.0      # one per-epoch program
+BUDGET_SHARE = 0.75        # of total memory, for choosing lane widths
+
+
+class ResourceError(Exception):
+    """A study that cannot fit this machine as asked; the message says what to change."""
+
+
+@dataclass(frozen=True)
+class Estimate:
+    peak_bytes: int
+    data_bytes: int
+    lane_bytes: int        # of the widest-footprint group, per lane
+    lanes: int             # that group's lane width
+    seconds: float
+
+    def describe(self) -> str:
+        return f"about {_size(self.peak_bytes)} of memory and {_duration(self.seconds)}"
+
+
+def _outputs(variant, dataset) -> int:
+    if dataset.task == "regression":
+        return dataset.y.shape[1]
+    return 1 if variant.spec.divergence.kind == "bce" else dataset.classes
+
+
+def _shape(group: Group, dataset):
+    v = group.runs[0].variant
+    n, features = dataset.x.shape
+    widths = [features, *v.spec.model.widths, _outputs(v, dataset)]
+    n_train = train_size(n, v.spec.data.validation)
+    batch = v.spec.training.batch_size
+    steps = n_train // batch if v.spec.training.drop_last else -(-n_train // batch)
+    return v, n, n_train, widths, steps
+
+
+def per_lane_bytes(group: Group, dataset) -> int:
+    v, n, n_train, widths, steps = _shape(group, dataset)
+    n_val, features = n - n_train, widths[0]
+    grows = (n + n_train + max(n_train * features, n_val * (features + 2 * sum(widths)))
+             + steps * (len(widths) + 6))
+    return lane_bytes(v, features, widths[-1]) + 4 * grows
+
+
+def _group_seconds(group: Group, dataset) -> float:
+    v, n, n_train, widths, steps = _shape(group, dataset)
+    macs = sum(a * b for a, b in zip(widths[:-1], widths[1:]))
+    flops = group.lane_width * (6 * macs * n_train + 2 * macs * (n - n_train))
+    epochs = v.spec.training.epochs
+    return epochs * (flops / FLOPS_PER_SECOND + steps * STEP_SECONDS)
+
+
+def estimate(groups: list[Group], data: dict) -> Estimate:
+    """Peak memory and rough time of executing ``groups`` one after another in this process."""
+    host = {id(data[g.group_id]): data[g.group_id] for g in groups}
+    device = {(g.structure, id(data[g.group_id])): data[g.group_id] for g in groups}
+    data_bytes = sum(d.x.nbytes + d.y.nbytes for d in [*host.values(), *device.values()])
+    widest, lanes, lane = 0, 1, 0
+    for g in groups:
+        b = per_lane_bytes(g, data[g.group_id])
+        if b * g.lane_width >= widest:
+            widest, lanes, lane = b * g.lane_width, g.lane_width, b
+    seconds = sum(_group_seconds(g, data[g.group_id]) for g in groups) + COMPILE_SECONDS * len(device)
+    peak = RUNTIME_BYTES + data_bytes + int(XLA_SLACK * widest)
+    return Estimate(peak, data_bytes, lane, lanes, seconds)
+
+
+def lane_budget(groups: list[Group], data: dict, budget_bytes: int | None = None) -> dict[str, int]:
+    """Most lanes per structure (at least 1) whose estimate, with its own data set, fits
+    ``budget_bytes``. It depends on nothing but the structure, its data and the machine, so a
+    resumed study gets the widths its first invocation had."""
+    budget = memory_budget() if budget_bytes is None else budget_bytes
+    out: dict[str, int] = {}
+    for g in groups:
+        d = data[g.group_id]
+        room = budget - RUNTIME_BYTES - 2 * (d.x.nbytes + d.y.nbytes)
+        fits = max(1, int(room // (XLA_SLACK * per_lane_bytes(g, d))))
+        out[g.structure] = min(out.get(g.structure, fits), fits)
+    return out
+
+
+def check(est: Estimate, *, lanes_given: bool, where: str, available: int | None = None) -> None:
+    """Raise :class:`ResourceError` when ``est`` does not fit the memory available now."""
+    free = available_bytes() if available is None else available
+    if est.peak_bytes <= free:
+        return
+    room = free - RUNTIME_BYTES - est.data_bytes
+    fits = int(room // (XLA_SLACK * est.lane_bytes)) if room > 0 else 0
+    if fits >= 1:
+        knob = f"run with --lanes {min(fits, est.lanes - 1)}" + ("" if lanes_given else " (or free some memory)")
+    else:
+        knob = "even one lane does not fit: lower training.batch_size, model.hidden or the data size"
+    raise ResourceError(f"{where}: needs {est.describe()} ({est.lanes} lanes × {_size(est.lane_bytes)} per lane, "
+                        f"data {_size(est.data_bytes)}), but {_size(free)} is available; {knob}")
+
+
+# ── this machine ────────────────────────────────────────────────────────────────────────────────
+def _meminfo() -> dict[str, int]:
+    out = {}
+    try:
+        with open("/proc/meminfo") as fh:
+            for line in fh:
+                name, _, rest = line.partition(":")
+                out[name] = int(rest.split()[0]) * 1024
+    except (OSError, ValueError, IndexError):
+        pass
+    return out
+
+
+def _cgroup() -> tuple[int, int] | None:
+    # A container's limit (cgroup v2) can be far below the machine's memory: (limit, in use).
+    try:
+        with open("/sys/fs/cgroup/memory.max") as fh:
+            limit = fh.read().strip()
+        if limit == "max":
+            return None
+        with open("/sys/fs/cgroup/memory.current") as fh:
+            return int(limit), int(fh.read().strip())
+    except (OSError, ValueError):
+        return None
+
+
+def total_bytes() -> int:
+    """The machine's memory, or the container's limit when that is lower."""
+    info = _meminfo()
+    total = info.get("MemTotal") or os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+    cg = _cgroup()
+    return total if cg is None else min(total, cg[0])
+
+
+def available_bytes() -> int:
+    """Memory this process can use now: MemAvailable, capped by what a cgroup limit leaves."""
+    free = _meminfo().get("MemAvailable") or total_bytes()
+    cg = _cgroup()
+    return free if cg is None else min(free, cg[0] - cg[1])
+
+
+def memory_budget() -> int:
+    return int(BUDGET_SHARE * total_bytes())
+
+
+def _size(n: int) -> str:
+    for unit, scale in (("GB", 2**30), ("MB", 2**20), ("KB", 2**10)):
+        if n >= scale:
+            return f"{n / scale:.1f} {unit}"
+    return f"{n} B"
+
+
+def _duration(s: float) -> str:
+    if s < 60:
+        return f"~{max(1, round(s))} s"
+    if s < 3600:
+        return f"~{round(s / 60)} min"
+    return f"~{s / 3600:.1f} h"
