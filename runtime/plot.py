@@ -44,7 +44,7 @@ import numpy as np  # noqa: E402
 from matplotlib.colors import LinearSegmentedColormap  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
 from matplotlib.lines import Line2D  # noqa: E402
-from matplotlib.patches import Patch, Rectangle  # noqa: E402
+from matplotlib.patches import Rectangle  # noqa: E402
 from matplotlib.transforms import blended_transform_factory  # noqa: E402
 
 from compiler.expand import format_value  # noqa: E402
@@ -185,6 +185,8 @@ def _legend_below(fig: Figure, handles: list, ncols: int, title: str | None = No
     # the handle and gaps about 0.8 in.
     longest = max(len(line) for h in handles for line in h.get_label().split("\n"))
     fit = max(1, int(fig.get_figwidth() // (0.8 + 0.07 * longest)))
+    if title:
+        title = "\n".join(textwrap.wrap(title, int(fig.get_figwidth() / 0.07)))
     fig.legend(handles=handles, loc="outside lower center", ncols=max(1, min(ncols, fit, len(handles))),
                frameon=False, fontsize=8.5, title=title, title_fontsize=8.5)
 
@@ -276,14 +278,15 @@ def plot_curves(rs: ResultSet, metrics: list[str] | None = None) -> Figure:
         tail = f" ({ok} ok, {bad} diverged)" if bad else f" (n={ok})"
         handles.append(Line2D([], [], color=PALETTE[vi % len(PALETTE)], marker=MARKERS[vi % len(MARKERS)],
                               markersize=4, label=names[label].replace("\n", ", ") + tail))
+    # The key to styles goes in the legend's title: in a column of its own it would be read as a variant.
+    key = []
     if any(m.startswith("train_") for m in metrics) and any(not m.startswith("train_") for m in metrics):
-        handles += [Line2D([], [], color="black", linestyle="--", label="train"),
-                    Line2D([], [], color="black", linestyle="-", label="validation")]
-    handles.append(Patch(color="black", alpha=0.15, label="±1 sd across ok seeds"))
+        key.append("dashed = train, solid = validation")
+    if _seed_counts(runs) != "one seed per variant":
+        key.append("shaded band = ±1 sd across ok seeds")
     if diverged:
-        handles.append(Line2D([], [], color="black", marker="x", linestyle="none", markeredgewidth=2,
-                              label="diverged run, at the epoch it stopped"))
-    _legend_below(fig, handles, 3)
+        key.append("× = a diverged run, at the epoch it stopped")
+    _legend_below(fig, handles, 3, title="   ·   ".join(key) or None)
     one = _seed_counts(runs) == "one seed per variant"
     what = ("lines are single runs (one seed per variant: no spread to show)" if one else
             f"mean over ok seeds with a ±1 sd band; {_seed_counts(runs)}")
