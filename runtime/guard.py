@@ -8,6 +8,8 @@ Contract:
 - :func:`lane_budget` ``(groups, data, budget_bytes=None) -> {structure: lanes}``: for each
   structure, the most lanes whose estimate fits in ``budget_bytes`` (default
   :func:`memory_budget`), for :func:`runtime.plan.plan`'s ``lane_budget``;
+- :func:`check_data` ``(groups, where, available=None)`` raises :class:`ResourceError` before a
+  built-in data set too large to generate is drawn;
 - :func:`check` ``(estimate, lanes_given, where, available=None)`` raises :class:`ResourceError`,
   one line naming the estimate, what is available and the knob to turn, when the peak exceeds
   :func:`available_bytes`.
@@ -40,7 +42,7 @@ from dataclasses import dataclass
 from compiler.spec import train_size
 from runtime.plan import Group, lane_bytes
 
-__all__ = ["Estimate", "ResourceError", "estimate", "lane_budget", "check", "available_bytes",
+__all__ = ["Estimate", "ResourceError", "estimate", "lane_budget", "check", "check_data", "available_bytes",
            "memory_budget", "total_bytes", "XLA_SLACK", "RUNTIME_BYTES", "FLOPS_PER_SECOND"]
 
 XLA_SLACK = 1.5
@@ -142,6 +144,21 @@ def check(est: Estimate, *, lanes_given: bool, where: str, available: int | None
         knob = "even one lane does not fit: lower training.batch_size, model.hidden or the data size"
     raise ResourceError(f"{where}: needs {est.describe()} ({est.lanes} lanes × {_size(est.lane_bytes)} per lane, "
                         f"data {_size(est.data_bytes)}), but {_size(free)} is available; {knob}")
+
+
+def check_data(groups: list[Group], *, where: str, available: int | None = None) -> None:
+    """Before generating anything: raise :class:`ResourceError` when a built-in data set alone
+    (drawn in float64, then kept in float32) would not fit. File data is bounded by its file."""
+    free = available_bytes() if available is None else available
+    for g in groups:
+        data = g.runs[0].variant.spec.data
+        if data.kind != "synthetic":
+            continue
+        need = RUNTIME_BYTES + 12 * data.samples * (data.features + 1)
+        if need > free:
+            raise ResourceError(f"{where}: data.samples = {data.samples} × data.features = {data.features} needs "
+                                f"about {_size(need)} of memory just to generate, but {_size(free)} is available; "
+                                "lower data.samples or data.features")
 
 
 # ── this machine ────────────────────────────────────────────────────────────────────────────────

@@ -244,17 +244,20 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
         groups = plan(loaded.variants, seeds, lanes=lanes)
         todo = _missing(groups, done)
         base_dir = Path(loaded.path).resolve().parent if loaded.path else Path.cwd()
+        where = loaded.path or loaded.spec.study.name
+        if executor is None:  # the memory checked is this machine's
+            guard.check_data(todo, where=where)
         loaded_data: dict = {}
         data = datasets_for(todo, base_dir, loaded_data)
         estimate = None
-        if executor is None:  # the memory checked is this machine's
+        if executor is None:
             budget = guard.lane_budget(todo, data)
             if lanes is None and any(g.lane_width > budget[g.structure] for g in todo):
                 groups = plan(loaded.variants, seeds, lane_budget=budget)
                 todo = _missing(groups, done)
                 data = datasets_for(todo, base_dir, loaded_data)
             estimate = guard.estimate(todo, data)
-            guard.check(estimate, lanes_given=lanes is not None, where=loaded.path or loaded.spec.study.name)
+            guard.check(estimate, lanes_given=lanes is not None, where=where)
         planned = sum(len(g.runs) for g in groups)
         if progress:
             progress("plan", groups=len(todo), runs=sum(len(g.runs) for g in todo), planned=planned,

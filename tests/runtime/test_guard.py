@@ -1,0 +1,192 @@
+"""The resource guard (runtime/guard.py): its time model against the grids measured on this
+machine, its memory model against the operating system's own accounting, narrower lanes when a
+structure would not fit, and a one-line refusal (exit 2) naming the knob to turn."""
+
+from __future__ import annotations
+
+import os
+import subprocess
+import sys
+import textwrap
+import time
+from pathlib import Path
+
+import pytest
+
+from compiler.expand import expand
+from compiler.loader import load_study
+from compiler.spec import Spec
+from runtime import guard, runner
+from runtime.plan import plan
+from runtime.store import open_result_set
+
+ROOT = Path(__file__).parents[2]
+
+
+def _grid(samples, features, hidden, classes, batch, epochs):
+    spec = Spec.model_validate({
+        "study": {"name": "timing", "seeds": 4},
+        "data": {"generator": "blobs", "samples": samples, "features": features, "classes": classes},
+        "model": {"hidden": hidden},
+        "optimizer": {"kind": "sgd", "momentum": 0.9},
+        "training": {"epochs": epochs, "batch_size": batch},
+        "ablation": {"axis": [{"key": "optimizer.learning_rate", "values": [0.01, 0.03, 0.1, 0.3]}]},
+    })
+    variants = expand(spec)
+    groups = plan(variants, spec.study.seed_list)
+    return groups, runner.datasets_for(groups, ROOT)
+
+
+@pytest.mark.parametrize("shape, measured", [
+    # /work/shared/measured.md, "Baselines for the same 16-run grid": fused (vmap × scan),
+    # execution only, 4 learning rates × 4 seeds, SGD momentum 0.9.
+    ((2048, 16, [32, 32], 4, 64, 20), 0.7),
+    ((10240, 32, [128, 128], 10, 128, 10), 7.3),
+])
+def test_time_model_is_within_a_factor_two_of_the_measured_grids(shape, measured):
+    groups, data = _grid(*shape)
+    assert [g.lane_width for g in groups] == [16]
+    seconds = guard.estimate(groups, data).seconds - guard.COMPILE_SECONDS
+    assert measured / 2 <= seconds <= measured * 2, seconds
+
+
+def test_per_lane_memory_grows_with_the_validation_split():
+    # Each lane gathers and standardizes its own validation rows (compiler/build.py contract),
+    # so a lane needs at least n_val × features float32 of them.
+    groups, data = _grid(40_000, 32, [16], 3, 64, 1)
+    n_val = 40_000 // 4
+    per_lane = guard.per_lane_bytes(groups[0], data[groups[0].group_id])
+    assert per_lane >= 4 * n_val * 32
+    est = guard.estimate(groups, data)
+    assert est.data_bytes == 2 * (data[groups[0].group_id].x.nbytes + data[groups[0].group_id].y.nbytes)
+    assert est.peak_bytes == guard.RUNTIME_BYTES + est.data_bytes + int(guard.XLA_SLACK * 16 * per_lane)
+
+
+def test_lane_budget_gives_the_widest_that_fits():
+    groups, data = _grid(2048, 16, [32, 32], 4, 64, 1)
+    g = groups[0]
+    d = data[g.group_id]
+    per_lane = guard.per_lane_bytes(g, d)
+    fixed = guard.RUNTIME_BYTES + 2 * (d.x.nbytes + d.y.nbytes)
+    for lanes in (1, 3, 7):
+        budget = fixed + int(guard.XLA_SLACK * per_lane * lanes) + 1
+        assert guard.lane_budget(groups, data, budget) == {g.structure: lanes}
+    assert guard.lane_budget(groups, data, 0) == {g.structure: 1}
+
+
+def test_this_machines_memory_matches_the_operating_system():
+    # os.sysconf reports the physical pages the kernel manages, as /proc/meminfo's MemTotal does.
+    physical = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+    assert 0 < guard.available_bytes() <= guard.total_bytes() <= physical * 1.01
+    assert guard.memory_budget() == int(guard.BUDGET_SHARE * guard.total_bytes())
+
+
+def test_check_passes_what_fits_and_names_the_lanes_knob_otherwise():
+    est = guard.Estimate(peak_bytes=guard.RUNTIME_BYTES + 100 + int(guard.XLA_SLACK * 8 * 1000),
+                         data_bytes=100, lane_bytes=1000, lanes=8, seconds=90)
+    guard.check(est, lanes_given=True, where="s.toml", available=est.peak_bytes)
+    room = guard.RUNTIME_BYTES + 100 + int(guard.XLA_SLACK * 3 * 1000)
+    with pytest.raises(guard.ResourceError) as err:
+        guard.check(est, lanes_given=True, where="s.toml", available=room)
+    assert str(err.value).startswith("s.toml: needs about ")
+    assert "~2 min" in str(err.value) and "run with --lanes 3" in str(err.value) and "\n" not in str(err.value)
+    with pytest.raises(guard.ResourceError, match="even one lane does not fit: lower training.batch_size"):
+        guard.check(est, lanes_given=False, where="s.toml", available=guard.RUNTIME_BYTES)
+
+
+@pytest.fixture(scope="module")
+def narrowed(tmp_path_factory, tiny_spec):
+    """The tiny study (6 runs of one structure) run with a memory budget that fits 2 lanes."""
+    tmp = tmp_path_factory.mktemp("narrow")
+    loaded = load_study(tiny_spec(tmp, "narrow"))
+    groups = plan(loaded.variants, loaded.seeds)
+    data = runner.datasets_for(groups, tmp)
+    d = data[groups[0].group_id]
+    budget = (guard.RUNTIME_BYTES + 2 * (d.x.nbytes + d.y.nbytes)
+              + int(guard.XLA_SLACK * guard.per_lane_bytes(groups[0], d) * 2.5))
+    mp = pytest.MonkeyPatch()
+    mp.setattr(guard, "memory_budget", lambda: budget)
+    events = []
+    try:
+        first = runner.run_study(loaded, tmp / "r", progress=lambda e, **info: events.append((e, info)))
+        again = runner.run_study(loaded, tmp / "r")
+    finally:
+        mp.undo()
+    return loaded, first, again, events
+
+
+def test_a_structure_that_does_not_fit_gets_narrower_lanes(narrowed):
+    loaded, first, again, events = narrowed
+    rs = open_result_set(first.path)
+    assert set(rs.runs.column("lane_width").to_pylist()) == {2}
+    assert first.groups == 3 and first.computed == 6
+    # The budget depends on the machine, not on what is missing: a re-run reuses every run.
+    assert again.computed == 0 and again.reused == 6
+    plan_event = next(info for e, info in events if e == "plan")
+    assert plan_event["estimate"].lanes == 2
+
+
+def test_a_study_that_cannot_fit_is_refused_before_compiling(tmp_path, tiny_spec, monkeypatch):
+    loaded = load_study(tiny_spec(tmp_path, "refused"))
+    # Enough to generate its 240 × 4 data set (float64 while drawn), not enough for one lane.
+    monkeypatch.setattr(guard, "available_bytes", lambda: guard.RUNTIME_BYTES + 12 * 240 * 5 + 10)
+    t0 = time.perf_counter()
+    with pytest.raises(guard.ResourceError, match="even one lane does not fit"):
+        runner.run_study(loaded, tmp_path / "r")
+    assert time.perf_counter() - t0 < 5  # no compile happened (a compile takes seconds here)
+    assert not list((tmp_path / "r").rglob("*.parquet"))
+
+
+@pytest.mark.parametrize("sections, fragment", [
+    # 65,536² weights per layer: tens of GB per lane, more than this 24 GB machine has.
+    ("[model]\nhidden = [65536, 65536]\n", "even one lane does not fit: lower training.batch_size"),
+    ("[data]\nsamples = 50000000\nfeatures = 4096\n", "lower data.samples or data.features"),
+])
+def test_lesion_run_refuses_with_one_line_and_exit_2(tmp_path, sections, fragment):
+    spec = tmp_path / "big.toml"
+    spec.write_text('[study]\nname = "big"\nseeds = 2\n' + sections)
+    out = subprocess.run([sys.executable, "-m", "runtime.cli", "run", str(spec), "--out", str(tmp_path / "r")],
+                         cwd=ROOT, capture_output=True, text=True, timeout=120)
+    assert out.returncode == 2, out.stderr
+    assert "Traceback" not in out.stderr and out.stdout == ""
+    (line,) = [x for x in out.stderr.splitlines() if x.strip()]
+    assert line.startswith(f"{spec}: ") and fragment in line and " is available" in line, line
+
+
+@pytest.mark.slow
+def test_memory_model_bounds_the_measured_peak(tmp_path):
+    # The kernel's peak resident set (getrusage ru_maxrss) of a real run must stay under the
+    # estimate, and the estimate within 3× of it (a guard that refuses everything is no guard).
+    spec = tmp_path / "probe.toml"
+    spec.write_text(textwrap.dedent("""\
+        [study]
+        name = "probe"
+        seeds = 8
+        [data]
+        generator = "blobs"
+        samples = 200000
+        features = 32
+        classes = 3
+        [model]
+        hidden = [256, 256]
+        [optimizer]
+        kind = "adam"
+        [training]
+        epochs = 1
+        batch_size = 512
+        """))
+    code = textwrap.dedent(f"""\
+        import resource
+        from pathlib import Path
+        from compiler.loader import load_study
+        from runtime import guard, runner
+        from runtime.plan import plan
+        st = load_study({str(spec)!r})
+        groups = plan(st.variants, st.seeds)
+        est = guard.estimate(groups, runner.datasets_for(groups, Path({str(tmp_path)!r})))
+        runner.run_study(st, Path({str(tmp_path / 'r')!r}))
+        print(est.peak_bytes, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024)
+        """)
+    out = subprocess.run([sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True, check=True)
+    estimate, peak = map(int, out.stdout.split())
+    assert peak <= estimate <= 3 * peak, (estimate, peak)
