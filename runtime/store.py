@@ -33,6 +33,7 @@ __all__ = ["ResultSet", "ResultSetError", "open_result_set", "result_dir", "writ
            "META_KEYS", "RUNS", "CURVES"]
 
 RUNS = "runs.parquet"
+_TMP = ".parquet-tmp"
 CURVES = "curves.parquet"
 META_KEYS = ("spec_source", "spec_path", "canonical_json", "study_hash", "version", "environment")
 
@@ -114,8 +115,22 @@ def open_result_set(path: str | Path) -> ResultSet:
     return ResultSet(path, runs, curves.filter(keep), meta)
 
 
+# Errors of the disk or the folder, not of lesion: reported as a ResultSetError (exit 2).
+_DISK_ERRORS = (errno.ENOSPC, errno.EDQUOT, errno.EACCES, errno.EPERM, errno.EROFS, errno.EIO)
+
+
+def _cannot_write(target: Path, err: OSError) -> ResultSetError:
+    return ResultSetError(f"{target}: cannot write ({err.strerror or os.strerror(err.errno)}); "
+                          "the result set keeps its previous complete state")
+
+
 def _atomic_write(table: pa.Table, target: Path) -> None:
-    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
+    try:
+        fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=_TMP, dir=target.parent)
+    except OSError as err:
+        if err.errno in _DISK_ERRORS:
+            raise _cannot_write(target, err) from None
+        raise
     try:
         with os.fdopen(fd, "wb") as fh:
             pq.write_table(table, fh, compression="zstd")
@@ -127,9 +142,8 @@ def _atomic_write(table: pa.Table, target: Path) -> None:
             os.unlink(tmp)
         except FileNotFoundError:
             pass
-        if isinstance(err, OSError) and err.errno in (errno.ENOSPC, errno.EDQUOT, errno.EACCES, errno.EROFS):
-            raise ResultSetError(f"{target}: cannot write ({os.strerror(err.errno)}); "
-                                 "the result set keeps its previous complete state") from None
+        if isinstance(err, OSError) and err.errno in _DISK_ERRORS:
+            raise _cannot_write(target, err) from None
         raise
     dir_fd = os.open(target.parent, os.O_RDONLY)
     try:
@@ -171,14 +185,19 @@ class writer_lock:
 
     A second process on the same result set waits for the first, then finds the runs already
     stored and computes only what is still missing: no run is computed or stored twice. The lock
-    is released by the kernel when the holder dies, so a killed run never leaves a stale lock."""
+    is released by the kernel when the holder dies, so a killed run never leaves a stale lock;
+    the next holder removes the temporary file such a run may have left mid-write."""
 
     def __init__(self, path: Path, on_wait=None):
         self.path, self.on_wait, self.fh = Path(path), on_wait, None
 
     def __enter__(self):
-        self.path.mkdir(parents=True, exist_ok=True)
-        self.fh = open(self.path / ".lock", "a+")
+        try:
+            self.path.mkdir(parents=True, exist_ok=True)
+            self.fh = open(self.path / ".lock", "a+")
+        except OSError as err:
+            raise ResultSetError(f"{self.path}: cannot create the result set folder or its lock "
+                                 f"({err.strerror or err}); choose a writable --out") from None
         try:
             fcntl.flock(self.fh, fcntl.LOCK_EX | fcntl.LOCK_NB)
         except BlockingIOError:
@@ -189,6 +208,9 @@ class writer_lock:
         self.fh.truncate()
         self.fh.write(str(os.getpid()))
         self.fh.flush()
+        # Holding the lock, any temporary file here is left by a writer that was killed mid-write.
+        for stale in self.path.glob(f".*{_TMP}"):
+            stale.unlink(missing_ok=True)
         return self
 
     def __exit__(self, *exc):
