@@ -11,6 +11,7 @@ A *study* is a :class:`Spec` with an ``[ablation]`` table; ``compiler.expand`` t
 from __future__ import annotations
 
 import math
+import posixpath
 import re
 from typing import Annotated, Literal, Union
 
@@ -114,7 +115,9 @@ class SyntheticData(Strict):
 
 
 class FileData(Strict):
-    """A table on disk (Parquet, CSV or NPZ). ``path`` is relative to the spec file."""
+    """A table on disk (Parquet, CSV or NPZ). ``path`` is relative to the spec file's folder and
+    may not leave it (no absolute path, no ``..`` climbing out): a spec reads only files beside
+    or below it. A symbolic link placed there is followed; whoever placed it chose the target."""
 
     kind: Literal["file"]
     path: Annotated[str, Field(min_length=1, max_length=4096)]
@@ -130,6 +133,9 @@ class FileData(Strict):
             raise ValueError(f"data file must end in .parquet, .csv or .npz (got {v!r})")
         if "\x00" in v:
             raise ValueError("data path contains a NUL character")
+        if posixpath.isabs(v) or posixpath.normpath(v).split("/")[0] == "..":
+            raise ValueError(f"data path {v!r} leaves the spec's folder; paths are relative to the spec file "
+                             "and stay inside its folder (copy or link the file there)")
         return v
 
 
