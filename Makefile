@@ -23,11 +23,13 @@ demo: $(STAMP)
 	  $(BIN)/lesion plot "$$path" --kind arms && \
 	  echo "result set: $$path  (try: $(BIN)/lesion replay $$path)"
 
+# Branch coverage of the package, measured in the test process (subprocesses are not counted).
 test: $(STAMP)
-	$(BIN)/python -m pytest
+	$(BIN)/python -m coverage run --branch --source=compiler,runtime -m pytest
+	$(BIN)/python -m coverage report --show-missing
 
 test-long: $(STAMP)
 	$(BIN)/python -m pytest -m slow
 
 clean:
-	rm -rf $(VENV) .pytest_cache .hypothesis
+	rm -rf $(VENV) .pytest_cache .hypothesis .coverage
