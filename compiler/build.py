@@ -20,6 +20,12 @@ objective's gradient, all of it or one layer's, averaged over steps); ``weight_n
 the weight matrices at the end of the epoch); ``learning_rate`` at the epoch's last step.
 ``evaluate`` returns ``divergence`` and ``accuracy`` or ``rmse``.
 
+``zero_knobs`` names knobs the caller guarantees are 0 in every lane the program will run. Where
+a zero knob makes a component exactly the identity, the program leaves that work out: a dropout
+rate of 0 on activations (inverted or scaled) keeps every unit with scale 1, so no masks are
+drawn — the same bits, without a threefry draw the size of every hidden activation per step.
+DropConnect keeps its masks: its per-example product is a different computation than ``x W``.
+
 Randomness: one root key per seed; fixed tags derive independent streams
 (``fold_in(root, tag)``): the split, the initial weights, the per-epoch shuffle
 (``fold_in(stream, epoch)``) and dropout (``fold_in(fold_in(stream, epoch), step)``). Two variants
@@ -126,8 +132,9 @@ def _all_finite(tree) -> jax.Array:
     return jnp.all(jnp.stack([jnp.all(jnp.isfinite(leaf)) for leaf in jax.tree.leaves(tree)]))
 
 
-def compile_variant(variant: Spec, dataset: Dataset) -> Program:
-    """Pure training functions for one resolved variant (``model.hidden`` a list) and its data."""
+def compile_variant(variant: Spec, dataset: Dataset, zero_knobs: frozenset[str] = frozenset()) -> Program:
+    """Pure training functions for one resolved variant (``model.hidden`` a list) and its data;
+    ``zero_knobs`` as in the module contract."""
     n, features = dataset.x.shape
     classification = dataset.task == "classification"
     n_train = train_size(n, variant.data.validation)
@@ -145,12 +152,16 @@ def compile_variant(variant: Spec, dataset: Dataset) -> Program:
     widths = list(variant.model.widths)
     names = model.layer_names(len(widths) + 1)
     knob_names = tuple(knobs_of(variant))
+    no_dropout_masks = ("regularization.dropout.rate" in zero_knobs
+                        and variant.regularization.dropout.kind in ("inverted", "scaled"))
 
     def parts(knobs) -> _Parts:
         divergence = divergences.REGISTRY[variant.divergence.kind](**_fields(knobs, "divergence."))
         normalizer = normalization.REGISTRY[variant.normalization.kind](**_fields(knobs, "normalization."))
         dropout = regularization.REGISTRY[variant.regularization.dropout.kind](
             **_fields(knobs, "regularization.dropout."))
+        if no_dropout_masks:
+            dropout = dropout._replace(activation=lambda key, h, train: h)
         out_width = divergence.width(dataset.classes, targets)
         network = model.mlp(widths, out_width, variant.model.activation, variant.model.init, normalizer, dropout)
         schedule = optimizers.SCHEDULES[schedule_spec.kind](
