@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import os
 import time
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable
@@ -81,9 +82,14 @@ def enable_compile_cache() -> None:
     _cache_enabled = True
 
 
-# Compiled (init, epoch) per (structure, lane width, data shape), reused by every group of a
-# structure within one process.
+# Compiled (init, epoch) per (structure, lane width, data shape, knobs zero in every lane), reused
+# by every group of a structure within one process.
 _programs: dict[tuple, tuple] = {}
+
+
+def _zero_knobs(knobs: dict) -> frozenset[str]:
+    """Knobs that are 0 in every lane (padding copies a real lane, so it never adds a non-zero)."""
+    return frozenset(name for name, values in knobs.items() if not np.any(np.asarray(values)))
 
 
 def _compiled(group: Group, dataset, knobs, keys, reuse: bool):
@@ -91,19 +97,23 @@ def _compiled(group: Group, dataset, knobs, keys, reuse: bool):
 
     from compiler.build import compile_variant
 
-    key = (group.structure, group.lane_width, dataset.x.shape, dataset.fingerprint)
+    zero = _zero_knobs(knobs)
+    key = (group.structure, group.lane_width, dataset.x.shape, dataset.fingerprint, zero)
     if reuse and key in _programs:
         return _programs[key] + (0.0,)
-    program = compile_variant(group.runs[0].variant.spec, dataset)
+    program = compile_variant(group.runs[0].variant.spec, dataset, zero_knobs=zero)
     t0 = time.perf_counter()
-    init = jax.jit(jax.vmap(program.init, in_axes=(0, 0, None, None)))
-    epoch = jax.jit(jax.vmap(program.epoch, in_axes=(0, 0, None, None)))
     x, y = jax.device_put(dataset.x), jax.device_put(dataset.y)
-    init_c = init.lower(knobs, keys, x, y).compile()
-    carry_shape = jax.eval_shape(jax.vmap(program.init, in_axes=(0, 0, None, None)), knobs, keys, x, y)
-    epoch_c = epoch.lower(carry_shape, knobs, x, y).compile()
-    status = jax.jit(jax.vmap(program.status))
-    params = jax.jit(jax.vmap(program.params))
+    init = jax.jit(jax.vmap(program.init, in_axes=(0, 0, None, None))).lower(knobs, keys, x, y)
+    epoch = jax.jit(jax.vmap(program.epoch, in_axes=(0, 0, None, None))).lower(init.out_info, knobs, x, y)
+    # XLA compiles one program on one core and releases the GIL meanwhile: the two programs
+    # compile side by side, so a cold start waits for the larger one, not for both.
+    with ThreadPoolExecutor(max_workers=1) as pool:
+        pending = pool.submit(init.compile)
+        epoch_c = epoch.compile()
+        init_c = pending.result()
+    # Picking fields of the carry needs no program: vmap without jit compiles nothing.
+    status, params = jax.vmap(program.status), jax.vmap(program.params)
     seconds = time.perf_counter() - t0
     _programs[key] = (program, init_c, epoch_c, status, params, x, y)
     return _programs[key] + (seconds,)
