@@ -1,0 +1,242 @@
+"""The speed benchmark: lesion against the training loops a practitioner writes, side by side.
+
+Usage (from the repository root; see tests/bench/README.md)::
+
+    .venv/bin/python tests/bench/bench.py [--repeats 3] [--workloads small medium] [--no-torch]
+
+For each workload of ``specs/`` (16 runs: 4 learning rates × 4 seeds) and each repeat, in
+interleaved order (every way once, then again), it times as subprocesses, wall clock from spawn
+to exit, with peak resident memory from ``os.wait4``:
+
+- ``lesion_cold``: ``lesion run`` with a fresh, empty ``LESION_CACHE_DIR``;
+- ``lesion_warm``: the same command again on that cache, with ``--fresh``;
+- ``hand_jax``: :mod:`hand_jax` (jitted step, Python loop over batches, runs one after another);
+- ``hand_torch``: :mod:`hand_torch` (PyTorch CPU, same model and loop), if torch is installed.
+
+It then reports medians, the ratios lesion ÷ each other way, the study's matmul FLOPs divided by
+this machine's float32 matmul throughput (a 2048² ``jnp.dot``, measured before and after) as the
+physical limit, lesion's fraction of that limit (execution only: the result set's
+``run_seconds``), each way's final training loss per learning rate, and the peak memory of a
+64-run small study. The table goes to stdout and, with the machine's description, to
+``results/bench-<UTC time>.json``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib.metadata
+import importlib.util
+import json
+import os
+import platform
+import shutil
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+from datetime import datetime, timezone
+from pathlib import Path
+
+import numpy as np
+
+HERE = Path(__file__).resolve().parent
+ROOT = HERE.parents[1]
+sys.path.insert(0, str(HERE))
+import workload as wl  # noqa: E402
+
+PYTHON = sys.executable
+LESION = str(Path(PYTHON).with_name("lesion"))
+
+
+def child(cmd: list[str], env: dict | None = None) -> dict:
+    """Run a subprocess to completion: wall seconds, peak RSS (MiB) and its stdout."""
+    with tempfile.TemporaryFile() as out, tempfile.TemporaryFile() as err:
+        t0 = time.perf_counter()
+        proc = subprocess.Popen(cmd, stdout=out, stderr=err, env={**os.environ, **(env or {})}, cwd=ROOT)
+        # wait4, not wait: the peak RSS of this child alone (ru_maxrss is in KiB on Linux).
+        _, status, usage = os.wait4(proc.pid, 0)
+        seconds = time.perf_counter() - t0
+        proc.returncode = os.waitstatus_to_exitcode(status)
+        out.seek(0), err.seek(0)
+        text = out.read().decode()
+        if proc.returncode != 0:
+            raise SystemExit(f"{' '.join(cmd)} failed (exit {proc.returncode}):\n{err.read().decode()[-3000:]}")
+    return {"seconds": seconds, "rss_mib": usage.ru_maxrss / 1024, "stdout": text}
+
+
+def result_set_numbers(path: str, w: dict) -> dict:
+    import pyarrow.parquet as pq
+
+    runs = pq.read_table(Path(path) / "runs.parquet").to_pydict()
+    groups = dict(zip(runs["group_id"], runs["compile_seconds"]))
+    order = sorted(range(len(runs["run_id"])),
+                   key=lambda i: (w["learning_rates"].index(runs["optimizer.learning_rate"][i]), runs["seed"][i]))
+    return {"execution_seconds": float(sum(runs["run_seconds"])),
+            "compile_seconds": float(sum(groups.values())),
+            "final_train_loss": [float(runs["final_train_divergence"][i]) for i in order],
+            "final_val_accuracy": [float(runs["final_val_accuracy"][i]) for i in order]}
+
+
+def lesion(spec: Path, cache: Path, out: Path, fresh: bool, w: dict) -> dict:
+    cmd = [LESION, "run", str(spec), "--out", str(out), "--quiet"] + (["--fresh"] if fresh else [])
+    r = child(cmd, {"LESION_CACHE_DIR": str(cache)})
+    r.update(result_set_numbers(r.pop("stdout").strip().splitlines()[-1], w))
+    return r
+
+
+def baseline(script: str, spec: Path) -> dict:
+    r = child([PYTHON, str(HERE / script), str(spec)])
+    r.update(json.loads(r.pop("stdout").strip().splitlines()[-1]))
+    return r
+
+
+def matmul_throughput(n: int = 2048, reps: int = 5) -> float:
+    """Best float32 GFLOP/s of an n×n matmul over ``reps`` timed batches of three."""
+    import jax
+    import jax.numpy as jnp
+
+    a = jax.random.normal(jax.random.key(0), (n, n), jnp.float32)
+    f = jax.jit(lambda a: a @ a)
+    f(a).block_until_ready()
+    best = float("inf")
+    for _ in range(reps):
+        t0 = time.perf_counter()
+        for _ in range(3):
+            r = f(a)
+        r.block_until_ready()
+        best = min(best, (time.perf_counter() - t0) / 3)
+    return 2 * n ** 3 / best / 1e9
+
+
+def machine() -> dict:
+    model = platform.processor()
+    try:
+        for line in Path("/proc/cpuinfo").read_text().splitlines():
+            if line.startswith("model name"):
+                model = line.split(":", 1)[1].strip()
+                break
+    except OSError:
+        pass
+    versions = {}
+    for dist in ("jax", "jaxlib", "optax", "numpy", "torch", "lesion"):
+        try:
+            versions[dist] = importlib.metadata.version(dist)
+        except importlib.metadata.PackageNotFoundError:
+            versions[dist] = None
+    return {"cpu": model, "cores": os.cpu_count(), "platform": platform.platform(),
+            "python": platform.python_version(), "versions": versions,
+            "xla_flags": os.environ.get("XLA_FLAGS", "")}
+
+
+def per_lr_median(values: list[float], w: dict) -> list[float]:
+    k = len(w["seeds"])
+    return [float(np.median(values[i * k:(i + 1) * k])) for i in range(len(w["learning_rates"]))]
+
+
+def big_study_rss(spec: Path, tmp: Path) -> dict:
+    """Peak RSS of the small workload with 16 seeds (64 runs), cold cache."""
+    text = spec.read_text().replace("seeds = 4\n", "seeds = 16\n").replace('name = "bench-small"',
+                                                                          'name = "bench-small-64"')
+    assert "seeds = 16" in text
+    path = tmp / "small64.toml"
+    path.write_text(text)
+    r = child([LESION, "run", str(path), "--out", str(tmp / "out64"), "--quiet"],
+              {"LESION_CACHE_DIR": str(tmp / "cache64")})
+    return {"runs": 64, "seconds": r["seconds"], "rss_mib": r["rss_mib"]}
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    ap.add_argument("--repeats", type=int, default=3)
+    ap.add_argument("--workloads", nargs="+", default=["small", "medium"])
+    ap.add_argument("--no-torch", action="store_true", help="skip the PyTorch baseline")
+    args = ap.parse_args()
+
+    ways = ["lesion_cold", "lesion_warm", "hand_jax"]
+    if args.no_torch:
+        print("PyTorch baseline skipped (--no-torch)", file=sys.stderr)
+    elif importlib.util.find_spec("torch") is None:
+        print("PyTorch baseline skipped: torch is not installed "
+              "(.venv/bin/pip install torch==2.13.0, or pip install -e '.[bench]')", file=sys.stderr)
+    else:
+        ways.append("hand_torch")
+
+    started = datetime.now(timezone.utc)
+    load_before = os.getloadavg()
+    gflops = [matmul_throughput()]
+    specs = {name: HERE / "specs" / f"{name}.toml" for name in args.workloads}
+    works = {name: wl.workload(p) for name, p in specs.items()}
+    samples: dict[str, dict[str, list[dict]]] = {n: {way: [] for way in ways} for n in specs}
+    tmp = Path(tempfile.mkdtemp(prefix="lesion-bench-"))
+    try:
+        for rep in range(args.repeats):
+            for name, spec in specs.items():
+                w = works[name]
+                cache, out = tmp / f"cache-{name}-{rep}", tmp / f"out-{name}-{rep}"
+                for way in ways:
+                    if way == "lesion_cold":
+                        r = lesion(spec, cache, out, False, w)
+                    elif way == "lesion_warm":
+                        r = lesion(spec, cache, out, True, w)
+                    else:
+                        r = baseline(f"{way}.py", spec)
+                    samples[name][way].append(r)
+                    print(f"[{rep + 1}/{args.repeats}] {name:6s} {way:11s} {r['seconds']:7.2f} s "
+                          f"{r['rss_mib']:6.0f} MiB  load {os.getloadavg()[0]:.1f}", file=sys.stderr)
+        big = big_study_rss(specs["small"], tmp) if "small" in specs else None
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
+    gflops.append(matmul_throughput())
+    peak = max(gflops)
+
+    report = {"started": started.isoformat(timespec="seconds"), "machine": machine(),
+              "load_average_before": load_before, "load_average_after": os.getloadavg(),
+              "repeats": args.repeats, "matmul_gflops": gflops, "workloads": {}, "small_64_runs": big}
+    lines = []
+    for name, w in works.items():
+        med = {way: {k: statistics.median(s[k] for s in runs) for k in ("seconds", "rss_mib")}
+               for way, runs in samples[name].items()}
+        cold, warm = med["lesion_cold"]["seconds"], med["lesion_warm"]["seconds"]
+        exec_s = statistics.median(s["execution_seconds"] for s in samples[name]["lesion_warm"]
+                                   + samples[name]["lesion_cold"])
+        compile_s = statistics.median(s["compile_seconds"] for s in samples[name]["lesion_cold"])
+        flops = wl.matmul_flops(w)
+        limit = flops["total"] / (peak * 1e9)
+        entry = {"workload": w, "flops": flops, "physical_limit_seconds": limit,
+                 "lesion_execution_seconds": exec_s, "lesion_cold_compile_seconds": compile_s,
+                 "lesion_fraction_of_limit_execution": limit / exec_s,
+                 "lesion_cold_fraction_of_limit_end_to_end": limit / cold, "ways": {}}
+        lines.append(f"\n{name}: {len(w['learning_rates']) * len(w['seeds'])} runs, widths {w['widths']}, "
+                     f"{w['n_train']} training rows, batch {w['batch_size']}, {w['epochs']} epochs; "
+                     f"{flops['total'] / 1e9:.1f} GFLOP")
+        lines.append(f"  {'way':12s} {'seconds':>8s} {'peak MiB':>9s} {'cold÷this':>10s} {'warm÷this':>10s}  "
+                     f"final train loss per learning rate {w['learning_rates']} (median over seeds)")
+        for way, m in med.items():
+            losses = per_lr_median(samples[name][way][-1]["final_train_loss"], w)
+            entry["ways"][way] = {**m, "all_seconds": [s["seconds"] for s in samples[name][way]],
+                                  "lesion_cold_over_this": cold / m["seconds"],
+                                  "lesion_warm_over_this": warm / m["seconds"],
+                                  "final_train_loss_per_lr": losses}
+            lines.append(f"  {way:12s} {m['seconds']:8.2f} {m['rss_mib']:9.0f} {cold / m['seconds']:10.3f} "
+                         f"{warm / m['seconds']:10.3f}  " + " ".join(f"{v:.4f}" for v in losses))
+        lines.append(f"  physical limit {limit:.3f} s ({peak:.0f} GFLOP/s); lesion execution {exec_s:.2f} s = "
+                     f"{100 * limit / exec_s:.0f} % of it; cold compile {compile_s:.2f} s; "
+                     f"end to end cold {100 * limit / cold:.1f} %")
+        report["workloads"][name] = entry
+    if big:
+        lines.append(f"\nsmall study with 64 runs: {big['seconds']:.1f} s, peak RSS {big['rss_mib']:.0f} MiB")
+    lines.append(f"\nmatmul {', '.join(f'{g:.0f}' for g in gflops)} GFLOP/s; load average before "
+                 f"{load_before[0]:.1f}, after {os.getloadavg()[0]:.1f} ({os.cpu_count()} cores)")
+    text = "\n".join(lines)
+    print(text)
+    report["table"] = text
+    results = HERE / "results"
+    results.mkdir(exist_ok=True)
+    path = results / f"bench-{started.strftime('%Y%m%dT%H%M%SZ')}.json"
+    path.write_text(json.dumps(report, indent=2) + "\n")
+    print(f"\nsaved {path.relative_to(ROOT)}")
+
+
+if __name__ == "__main__":
+    main()
