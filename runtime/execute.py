@@ -15,7 +15,6 @@ from __future__ import annotations
 
 import os
 import time
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable
@@ -92,10 +91,10 @@ def _zero_knobs(knobs: dict) -> frozenset[str]:
     return frozenset(name for name, values in knobs.items() if not np.any(np.asarray(values)))
 
 
-def _compiled(group: Group, dataset, knobs, keys, reuse: bool):
+def _compiled(group: Group, dataset, knobs, seeds, reuse: bool):
     import jax
 
-    from compiler.build import compile_variant
+    from compiler.build import compile_variant, seed_key
 
     zero = _zero_knobs(knobs)
     key = (group.structure, group.lane_width, dataset.x.shape, dataset.fingerprint, zero)
@@ -104,14 +103,13 @@ def _compiled(group: Group, dataset, knobs, keys, reuse: bool):
     program = compile_variant(group.runs[0].variant.spec, dataset, zero_knobs=zero)
     t0 = time.perf_counter()
     x, y = jax.device_put(dataset.x), jax.device_put(dataset.y)
-    init = jax.jit(jax.vmap(program.init, in_axes=(0, 0, None, None))).lower(knobs, keys, x, y)
+    # The root keys are made inside init: a separate program for them would be one more compile.
+    init = jax.jit(jax.vmap(lambda k, seed, x, y: program.init(k, seed_key(seed), x, y),
+                            in_axes=(0, 0, None, None))).lower(knobs, seeds, x, y)
     epoch = jax.jit(jax.vmap(program.epoch, in_axes=(0, 0, None, None))).lower(init.out_info, knobs, x, y)
-    # XLA compiles one program on one core and releases the GIL meanwhile: the two programs
-    # compile side by side, so a cold start waits for the larger one, not for both.
-    with ThreadPoolExecutor(max_workers=1) as pool:
-        pending = pool.submit(init.compile)
-        epoch_c = epoch.compile()
-        init_c = pending.result()
+    # One after the other: XLA:CPU compiles of one process do not overlap (measured: two threads
+    # took as long as one after the other).
+    init_c, epoch_c = init.compile(), epoch.compile()
     # Picking fields of the carry needs no program: vmap without jit compiles nothing.
     status, params = jax.vmap(program.status), jax.vmap(program.params)
     seconds = time.perf_counter() - t0
@@ -128,17 +126,17 @@ def execute_group(group: Group, dataset, environment: dict,
     import jax
     import jax.numpy as jnp
 
-    from compiler.build import knob_vector, param_digest, seed_key
+    from compiler.build import knob_vector, param_digest
 
     lanes = list(group.runs) + [group.runs[0]] * group.padding
     vectors = [knob_vector(r.variant.spec) for r in lanes]
     names = tuple(vectors[0])
     knobs = {n: jnp.asarray(np.array([v[n] for v in vectors], dtype=np.float32)) for n in names}
-    keys = jax.vmap(seed_key)(jnp.asarray([r.seed for r in lanes], dtype=jnp.int32))
+    seeds = np.array([r.seed for r in lanes], dtype=np.int32)
 
-    program, init_c, epoch_c, status_fn, params_fn, x, y, compile_seconds = _compiled(group, dataset, knobs, keys, reuse)
+    program, init_c, epoch_c, status_fn, params_fn, x, y, compile_seconds = _compiled(group, dataset, knobs, seeds, reuse)
     t0 = time.perf_counter()
-    carry = init_c(knobs, keys, x, y)
+    carry = init_c(knobs, seeds, x, y)
     per_epoch = []
     for e in range(program.epochs):
         carry, metrics = epoch_c(carry, knobs, x, y)
