@@ -162,3 +162,47 @@ def test_the_intact_copy_still_shows(good):
     code, _ = _cli("show", good, "--format", "json")
     assert code == 0
     assert json.loads(CliRunner().invoke(app, ["show", str(good), "--format", "json"]).stdout)
+
+
+def _column(name, edit):
+    def change(table):
+        i = table.column_names.index(name)
+        values = table.column(name).to_pylist()
+        return table.set_column(i, table.field(i), pa.array(edit(values), type=table.field(i).type))
+    return change
+
+
+def _edited_source(table):
+    source = table.schema.metadata[b"lesion.spec_source"].decode()
+    return _meta(b"lesion.spec_source", source.replace("values = [0.03, 0.3]", "values = [0.03, 0.5]").encode())(table)
+
+
+# Edits that keep the files readable (show still works) but break what replay verifies first:
+# the stored spec must re-derive every stored hash, label and run id (runtime/replay.py contract).
+TAMPERED = {
+    "source_no_longer_loads": (_meta(b"lesion.spec_source", b"[study\n"), "the stored spec source no longer loads"),
+    "source_disagrees_with_canonical_json": (_edited_source, "the stored spec source and canonical JSON disagree"),
+    "canonical_json_edited": (_meta(b"lesion.canonical_json", b'{"study":{}}'), "does not hash to the stored study hash"),
+    "seed_changed": (_column("seed", lambda v: [v[0] + 100] + v[1:]), "does not match its variant and seed"),
+    "label_changed": (_column("variant_label", lambda v: ["renamed"] + v[1:]), "which the stored spec does not derive"),
+}
+
+
+@pytest.mark.parametrize("case", list(TAMPERED))
+def test_replay_refuses_a_tampered_result_set_before_running_anything(good, tmp_path, case):
+    rs = tmp_path / good.name
+    shutil.copytree(good, rs)
+    edit, fragment = TAMPERED[case]
+    _rewrite("runs.parquet", edit)(rs)
+    code, err = _cli("replay", rs)
+    assert code == 2, err
+    (line,) = err.splitlines()
+    assert line.startswith(f"{rs}: ") and fragment in line, line
+
+
+@pytest.mark.parametrize("args, fragment", [(["--run", "zzzz"], "no run 'zzzz'"),
+                                            (["--variant", "nope"], "no variant 'nope'"),
+                                            (["--run", "a", "--variant", "b"], "give --run or --variant, not both")])
+def test_replay_selection_errors(good, args, fragment):
+    code, err = _cli("replay", good, *args)
+    assert code == 2 and fragment in err and len(err.splitlines()) == 1, err
