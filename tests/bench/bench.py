@@ -6,7 +6,7 @@ Usage (from the repository root; see tests/bench/README.md)::
 
 For each workload of ``specs/`` (16 runs: 4 learning rates × 4 seeds) and each repeat, in
 interleaved order (every way once, then again), it times as subprocesses, wall clock from spawn
-to exit, with peak resident memory from ``os.wait4``:
+to exit, with peak resident memory from GNU time (``%M``):
 
 - ``lesion_cold``: ``lesion run`` with a fresh, empty ``LESION_CACHE_DIR``;
 - ``lesion_warm``: the same command again on that cache, with ``--fresh``;
@@ -47,22 +47,25 @@ import workload as wl  # noqa: E402
 
 PYTHON = sys.executable
 LESION = str(Path(PYTHON).with_name("lesion"))
+TIME = "/usr/bin/time"  # GNU time, for the peak RSS of each way (%M, KiB)
 
 
 def child(cmd: list[str], env: dict | None = None) -> dict:
     """Run a subprocess to completion: wall seconds, peak RSS (MiB) and its stdout."""
-    with tempfile.TemporaryFile() as out, tempfile.TemporaryFile() as err:
+    with tempfile.TemporaryFile() as out, tempfile.TemporaryFile() as err, \
+            tempfile.NamedTemporaryFile("r") as rss:
+        # GNU time starts the command: a forked child's peak RSS counts the pages it shared with
+        # its parent at fork, and this process holds jax; time's own footprint is a few MiB.
         t0 = time.perf_counter()
-        proc = subprocess.Popen(cmd, stdout=out, stderr=err, env={**os.environ, **(env or {})}, cwd=ROOT)
-        # wait4, not wait: the peak RSS of this child alone (ru_maxrss is in KiB on Linux).
-        _, status, usage = os.wait4(proc.pid, 0)
+        proc = subprocess.run([TIME, "-f", "%M", "-o", rss.name, *cmd], stdout=out, stderr=err,
+                              env={**os.environ, **(env or {})}, cwd=ROOT)
         seconds = time.perf_counter() - t0
-        proc.returncode = os.waitstatus_to_exitcode(status)
         out.seek(0), err.seek(0)
         text = out.read().decode()
         if proc.returncode != 0:
             raise SystemExit(f"{' '.join(cmd)} failed (exit {proc.returncode}):\n{err.read().decode()[-3000:]}")
-    return {"seconds": seconds, "rss_mib": usage.ru_maxrss / 1024, "stdout": text}
+        rss_kib = int(rss.read().split()[-1])
+    return {"seconds": seconds, "rss_mib": rss_kib / 1024, "stdout": text}
 
 
 def result_set_numbers(path: str, w: dict) -> dict:
