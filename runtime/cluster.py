@@ -17,7 +17,14 @@ in any order — whose groups run as tasks of a ``dask.distributed`` scheduler:
   bits do not depend on which worker, or how many, computed it. The task enables the persistent
   compile cache on the worker and calls :func:`runtime.execute.execute_group` with the worker's own
   captured environment, which is what the run records;
-- each distinct data set is scattered once to every worker (``broadcast=True``), not sent per task;
+- each distinct data set is scattered once (``broadcast=True``), not sent per task: it reaches
+  each worker once, by the scatter or from a peer that holds it. Should every worker holding it
+  die, the scheduler cancels the tasks that need it; those groups are resubmitted with the data
+  sent again (a few times, then a :class:`ClusterError`);
+- the first group of each compiled program goes out alone and the program's other groups follow
+  when it is back: workers that share a persistent compile cache (``local:N``, or one
+  ``$LESION_CACHE_DIR`` on a shared disk) then compile each program once and load it elsewhere,
+  instead of every worker compiling it at the same time;
 - results stream back through ``distributed.as_completed``; each group is yielded at most once,
   so the caller (the single writer of the result set) never writes a group twice even when the
   scheduler recomputes a task whose worker died. A worker that joins later with other numerics is
@@ -63,6 +70,9 @@ def parse_address(text: str) -> tuple[str, str | int]:
         return "remote", f"tcp://{text}"
     raise ClusterError(f"--cluster {text!r}: {_USAGE}")
 
+
+# Times a group is submitted again after the scheduler cancelled it for lost data.
+_ATTEMPTS = 3
 
 _worker_env: dict | None = None
 
@@ -182,23 +192,59 @@ class DaskExecutor:
         client = self.client
         agreed = fingerprint(self._env)
         scattered: dict[int, object] = {}
+
+        def scatter(d):
+            # A Dataset is a tuple: wrapped in a list so it travels as one object.
+            scattered[id(d)] = client.scatter([d], broadcast=True, hash=False)[0]
+
         for g in groups:
-            d = data[g.group_id]
-            if id(d) not in scattered:
-                # A Dataset is a tuple: wrapped in a list so it travels as one object.
-                scattered[id(d)] = client.scatter([d], broadcast=True, hash=False)[0]
+            if id(data[g.group_id]) not in scattered:
+                scatter(data[g.group_id])
         tag = uuid.uuid4().hex[:8]
         pending = {}
-        for g in groups:
+        attempts: dict[str, int] = {}
+
+        def submit(g):
+            attempts[g.group_id] = attempts.get(g.group_id, 0) + 1
             fut = client.submit(_execute_on_worker, g, scattered[id(data[g.group_id])],
-                                key=f"lesion-{g.group_id}-{tag}", pure=False)
+                                key=f"lesion-{g.group_id}-{tag}-{attempts[g.group_id]}", pure=False)
             pending[fut.key] = (g, fut)
+            return fut
+
+        # One program per (structure, width, data): its first group goes out alone, the rest when
+        # it is back, so workers sharing a compile cache load that program instead of all
+        # compiling it at once. Different programs still start side by side.
+        waiting: dict[tuple, list] = {}
+        for g in groups:
+            waiting.setdefault((g.structure, g.lane_width, id(data[g.group_id])), []).append(g)
+        program_of = {}
+        for program, members in waiting.items():
+            program_of[submit(members.pop(0)).key] = program
+        # This client's own loop: as_completed would otherwise track the futures on the loop of
+        # whichever client the process made its default, and can wait forever.
+        finished = as_completed([f for _, f in pending.values()], with_results=True, loop=client.loop)
         try:
-            for fut, result in as_completed([f for _, f in pending.values()], with_results=True):
+            for fut, result in finished:
                 if fut.key not in pending:
                     continue  # already yielded (a recomputed task): never hand a group over twice
                 g, _ = pending.pop(fut.key)
-                fut.release()
+                cancelled = fut.status == "cancelled"
+                fut.release()  # the result is here now: the workers may drop it
+                if cancelled:
+                    # Not by us: the scheduler cancels a task whose scattered data was lost with
+                    # every worker that held it. Send the data again and resubmit the group.
+                    if attempts[g.group_id] >= _ATTEMPTS:
+                        raise ClusterError(f"--cluster {self.address}: group {g.group_id} was cancelled "
+                                           f"{_ATTEMPTS} times (its data kept being lost with its workers); "
+                                           "the groups finished so far are stored: run again to resume")
+                    scatter(data[g.group_id])
+                    again = submit(g)
+                    if fut.key in program_of:
+                        program_of[again.key] = program_of.pop(fut.key)
+                    finished.add(again)
+                    continue
+                for later in waiting.pop(program_of.pop(fut.key, None), []):
+                    finished.add(submit(later))
                 if fingerprint(result.environment) != agreed:
                     changes = differences(self._env, result.environment)
                     raise ClusterError(f"--cluster {self.address}: group {g.group_id} was computed by a "
