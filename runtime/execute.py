@@ -23,10 +23,11 @@ from typing import Callable
 
 import numpy as np
 
+from runtime.environment import COMPILE_OPTIONS
 from runtime.plan import Group
 
 __all__ = ["GroupResult", "LaneResult", "execute_group", "InProcess", "enable_compile_cache", "cache_dir",
-           "BN_COLLAPSE_RATIO", "COMPILE_OPTIONS"]
+           "BN_COLLAPSE_RATIO"]
 
 # A batch-normalized layer whose gradient norm falls below this fraction of the output layer's
 # has stopped learning: its batch statistics have (nearly) no spread left.
@@ -83,10 +84,6 @@ def enable_compile_cache() -> None:
     _cache_enabled = True
 
 
-# XLA:CPU's fast-compile preset: about a tenth less compile time (almost all of it is LLVM code
-# generation), no slower execution, and the same bits as the default preset on the benchmark
-# workloads (tests/bench). It decides the compiled code, so it is fixed here, never per run.
-COMPILE_OPTIONS = {"xla_cpu_opt_preset": "CPU_OPT_PRESET_FAST_COMPILE"}
 
 
 # Compiled (init, epoch) per (structure, lane width, data shape, knobs zero in every lane), reused
