@@ -134,6 +134,24 @@ def test_workers_unlike_this_machine_are_only_a_warning(cluster):
     assert len(said) == 1 and "xla_flags" in said[0] and "replay" in said[0]
 
 
+def test_resume_compares_with_the_workers_environment_not_this_machines(cluster, on_cluster, tmp_path):
+    # workers unlike the client: the runs they stored are theirs, and a second invocation on the
+    # same workers must find them instead of recomputing everything
+    lc, client = cluster
+    loaded = on_cluster[0]
+    _set_worker_env(client, None, {"xla_flags": "--xla_cpu_max_isa=AVX"})
+    try:
+        with DaskExecutor(lc.scheduler_address) as ex:
+            first = run_study(loaded, tmp_path, lanes=2, executor=ex)
+        with DaskExecutor(lc.scheduler_address) as ex:
+            again = run_study(loaded, tmp_path, lanes=2, executor=ex)
+    finally:
+        _reset_worker_env(client)
+    assert first.computed == 6 and again.computed == 0 and again.reused == 6
+    recorded = open_result_set(first.path).runs.column("environment").to_pylist()
+    assert all(json.loads(e)["xla_flags"] == "--xla_cpu_max_isa=AVX" for e in recorded)
+
+
 @pytest.mark.parametrize("text,expected", [
     ("local:3", ("local", 3)),
     ("tcp://127.0.0.1:8786", ("remote", "tcp://127.0.0.1:8786")),
@@ -181,7 +199,10 @@ def test_cli_local_cluster_matches_in_process(tmp_path, tiny_spec, on_cluster):
     out = CliRunner().invoke(app, ["run", str(spec), "--cluster", "local:2", "--lanes", "2", "--quiet",
                                    "--out", str(tmp_path / "r")])
     assert out.exit_code == 0, out.output
-    _assert_same_bits(here, open_result_set(out.stdout.strip().splitlines()[-1]))
+    path = out.stdout.strip().splitlines()[-1]
+    _assert_same_bits(here, open_result_set(path))
+    again = CliRunner().invoke(app, ["replay", path, "--all"])
+    assert again.exit_code == 0 and "all 6 replayed run(s) identical" in again.stdout, again.output
 
 
 def _kill_a_busy_worker(client, killed: dict, stop: threading.Event):
