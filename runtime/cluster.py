@@ -29,7 +29,9 @@ in any order — whose groups run as tasks of a ``dask.distributed`` scheduler:
   so the caller (the single writer of the result set) never writes a group twice even when the
   scheduler recomputes a task whose worker died. A worker that joins later with other numerics is
   refused when its first result arrives. Leaving the loop early (an error, an interrupt) cancels
-  the tasks still pending: a crash loses at most the groups in flight.
+  the tasks still pending: a crash loses at most the groups in flight. ``progress`` hears of a
+  group when it is back (a "group" event, then its last "epoch"): epochs are not streamed from
+  the workers.
 
 :attr:`DaskExecutor.compute_environment` is the workers' common environment; the runner compares
 stored runs with it when it resumes.
