@@ -62,8 +62,9 @@ def _variants(rs: ResultSet) -> list[dict]:
     return [{"label": v.label, "hash": v.hash, "payload": variant_payload(v.spec)} for v in loaded.variants]
 
 
-def _values(rs: ResultSet, variant_hash: str, metric: str) -> dict[int, float | None]:
-    cols = rs.runs.to_pydict()
+def _values(rs: ResultSet, cols: dict, variant_hash: str, metric: str) -> dict[int, float | None]:
+    """Final values of a variant's runs by seed (None for a diverged run); ``cols`` is
+    ``rs.runs.to_pydict()``, converted once per result set."""
     col = f"final_{metric}"
     if col not in cols:
         have = sorted(c[len("final_"):] for c in cols if c.startswith("final_") and c[6:] in METRICS)
@@ -82,9 +83,11 @@ def _metrics(rs: ResultSet, metrics: list[str] | None) -> list[str]:
 
 def _rows(pairs, rs_a, rs_b, metrics, correction, alpha) -> list[dict]:
     rows, comps = [], []
+    cols_a = rs_a.runs.to_pydict()
+    cols_b = cols_a if rs_b is rs_a else rs_b.runs.to_pydict()
     for a, b in pairs:
         for m in metrics:
-            c = compare(_values(rs_a, a["hash"], m), _values(rs_b, b["hash"], m))
+            c = compare(_values(rs_a, cols_a, a["hash"], m), _values(rs_b, cols_b, b["hash"], m))
             comps.append((a, b, m, c))
     adjusted = adjust([c.p_value for *_, c in comps], method=correction)
     for (a, b, m, c), p_adj in zip(comps, adjusted):
