@@ -15,21 +15,15 @@ import platform
 import socket
 from importlib import metadata
 
-__all__ = ["capture", "numerics", "fingerprint", "differences", "COMPILE_OPTIONS"]
+__all__ = ["capture", "numerics", "fingerprint", "differences"]
 
 # CPU features that decide which kernels XLA:CPU emits (and so the rounding of matmuls).
 _ISA_FLAGS = ("sse4_1", "sse4_2", "avx", "avx2", "fma", "f16c", "avx512f", "avx512bw", "avx512dq",
               "avx512vl", "avx512_vnni", "avx512_bf16", "amx_tile", "asimd", "sve")
 
-_NUMERICS_KEYS = ("python", "jax", "jaxlib", "optax", "numpy", "xla_flags", "xla_compile_options",
-                  "jax_threefry_partitionable", "jax_default_matmul_precision", "jax_enable_x64", "cpu_model",
-                  "cpu_isa", "machine", "os")
+_NUMERICS_KEYS = ("python", "jax", "jaxlib", "optax", "numpy", "xla_flags", "jax_threefry_partitionable",
+                  "jax_default_matmul_precision", "jax_enable_x64", "cpu_model", "cpu_isa", "machine", "os")
 
-# Options lesion passes to every XLA compile. XLA:CPU's fast-compile preset: about a tenth less
-# compile time (almost all of it is LLVM code generation), no slower execution, and the same bits
-# as the default preset on the benchmark workloads (tests/bench). They decide the compiled code,
-# so they are recorded with every run like XLA_FLAGS.
-COMPILE_OPTIONS = {"xla_cpu_opt_preset": "CPU_OPT_PRESET_FAST_COMPILE"}
 
 
 def _version(dist: str) -> str:
@@ -69,7 +63,6 @@ def capture() -> dict:
         "pyarrow": _version("pyarrow"),
         "lesion": _version("lesion"),
         "xla_flags": os.environ.get("XLA_FLAGS", ""),
-        "xla_compile_options": json.dumps(COMPILE_OPTIONS, sort_keys=True),
         "jax_threefry_partitionable": bool(jax.config.jax_threefry_partitionable),
         "jax_default_matmul_precision": str(jax.config.jax_default_matmul_precision),
         "jax_enable_x64": bool(jax.config.jax_enable_x64),
