@@ -303,11 +303,11 @@ def show(
       lesion show results/cold-chain-7da471c81b78 --curves --format csv
     """
     from runtime.formats import render
-    from runtime.show import SUMMARY_COLUMNS, curve_rows, headline_of, summary_rows
+    from runtime.show import SUMMARY_COLUMNS, curve_rows, summary_rows
     from runtime.store import open_result_set
 
     rs = open_result_set(result)
-    name = json.loads(rs.meta["canonical_json"])["study"]["name"]
+    name = rs.tree["study"]["name"]
     try:
         if curves:
             rows, columns = curve_rows(rs, metric or None)
@@ -315,7 +315,7 @@ def show(
         else:
             if metric and len(metric) > 1:
                 raise UsageError("show summarizes one metric at a time (give --metric once)")
-            m = metric[0] if metric else headline_of(rs)
+            m = metric[0] if metric else rs.headline
             rows, columns = summary_rows(rs, m), SUMMARY_COLUMNS
             title = f"{name} ({rs.study_hash[:12]}): final {m} across seeds (mean, sd, 95% CI)"
     except ValueError as err:

@@ -14,7 +14,6 @@ same study (seeds shared, so paired).
 
 from __future__ import annotations
 
-import json
 import re
 from dataclasses import dataclass, field
 
@@ -74,7 +73,7 @@ def _values(rs: ResultSet, cols: dict, variant_hash: str, metric: str) -> dict[i
 
 
 def _metrics(rs: ResultSet, metrics: list[str] | None) -> list[str]:
-    metrics = metrics or [json.loads(rs.meta["canonical_json"])["study"]["metric"]]
+    metrics = metrics or [rs.headline]
     for m in metrics:
         if m not in METRICS:
             raise ResultSetError(f"--metric {m!r}: no known direction (expected one of {', '.join(METRICS)})")
@@ -122,7 +121,7 @@ def diff_result_sets(rs_a: ResultSet, rs_b: ResultSet, *, metrics: list[str] | N
                      correction: str = "holm", alpha: float = 0.05) -> DiffReport:
     changes = spec_diff(rs_a.meta["canonical_json"], rs_b.meta["canonical_json"])
     va, vb = _variants(rs_a), _variants(rs_b)
-    ignored = _ignored_keys(changes, json.loads(rs_a.meta["canonical_json"]), json.loads(rs_b.meta["canonical_json"]))
+    ignored = _ignored_keys(changes, rs_a.tree, rs_b.tree)
     pairs, only_a, only_b = match_variants(va, vb, ignored)
     rows = _rows([(p.a, p.b) for p in pairs], rs_a, rs_b, _metrics(rs_a, metrics), correction, alpha)
     return DiffReport(changes, rows, [v["label"] for v in only_a], [v["label"] for v in only_b], correction,

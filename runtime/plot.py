@@ -49,7 +49,7 @@ from matplotlib.transforms import blended_transform_factory  # noqa: E402
 
 from compiler.expand import format_value  # noqa: E402
 from compiler.spec import METRICS  # noqa: E402
-from runtime.show import curve_rows, headline_of, summary_rows  # noqa: E402
+from runtime.show import curve_rows, summary_rows  # noqa: E402
 from runtime.stats import summarize  # noqa: E402
 from runtime.store import ResultSet  # noqa: E402
 
@@ -80,10 +80,6 @@ class PlotError(ValueError):
 
 
 # ── labels and titles ───────────────────────────────────────────────────────────────────────────
-def _study(rs: ResultSet) -> dict:
-    return json.loads(rs.meta["canonical_json"])
-
-
 def _short_key(key: str, keys: list[str]) -> str:
     """The shortest dotted suffix of ``key`` that is unique among ``keys`` and says what it is:
     ``normalization.kind`` → ``normalization``, ``regularization.dropout.rate`` → ``dropout.rate``."""
@@ -126,7 +122,7 @@ def _variants(rs: ResultSet) -> list[str]:
 
 
 def _title(rs: ResultSet, what: str) -> str:
-    return f"{_study(rs)['study']['name']} ({rs.study_hash[:12]}) — {what}"
+    return f"{rs.tree['study']['name']} ({rs.study_hash[:12]}) — {what}"
 
 
 def _direction_text(metric: str) -> str:
@@ -173,7 +169,7 @@ def _seed_counts(runs: dict[str, list[dict]]) -> str:
 
 def _metrics_of(rs: ResultSet, metrics: list[str] | None) -> list[str]:
     have = [c[len("final_"):] for c in rs.runs.column_names if c.startswith("final_")]
-    metrics = list(dict.fromkeys(metrics or [headline_of(rs)]))
+    metrics = list(dict.fromkeys(metrics or [rs.headline]))
     for m in metrics:
         if m not in have:
             raise PlotError(f"--metric {m!r} is not in this result set (it has: {', '.join(sorted(have))})")
@@ -386,7 +382,7 @@ def plot_arms(rs: ResultSet, metrics: list[str] | None = None, baseline: str | N
 
 # ── grid ────────────────────────────────────────────────────────────────────────────────────────
 def _grid_axes(rs: ResultSet) -> list[dict]:
-    study = _study(rs)
+    study = rs.tree
     ab = study.get("ablation") or {}
     axes = ab.get("axis") or []
     if ab.get("mode") != "grid" or len(axes) != 2 or ab.get("variant"):
@@ -507,7 +503,7 @@ def plot_diff(rs_a: ResultSet, rs_b: ResultSet, metrics: list[str] | None = None
         spec = "spec changes: " + "; ".join(shown) + (f" (+{len(report.changes) - 2} more)" if len(report.changes) > 2 else "")
     if report.only_a or report.only_b:
         spec += f"; unmatched: {len(report.only_a)} only in A, {len(report.only_b)} only in B"
-    a_name, b_name = _study(rs_a)["study"]["name"], _study(rs_b)["study"]["name"]
+    a_name, b_name = rs_a.tree["study"]["name"], rs_b.tree["study"]["name"]
     title = f"A {a_name} ({rs_a.study_hash[:12]}) → B {b_name} ({rs_b.study_hash[:12]}) — diff"
     _suptitle(fig, title, "\n".join(textwrap.wrap(spec, 110)))
     return fig

@@ -7,21 +7,16 @@ interval of the mean. Diverged runs are counted and left out of the statistics.
 
 from __future__ import annotations
 
-import json
 
 import numpy as np
 
 from runtime.stats import summarize
 from runtime.store import ResultSet
 
-__all__ = ["summary_rows", "curve_rows", "SUMMARY_COLUMNS", "headline_of"]
+__all__ = ["summary_rows", "curve_rows", "SUMMARY_COLUMNS"]
 
 SUMMARY_COLUMNS = ["variant", "ok", "diverged", "mean", "sd", "ci_low", "ci_high",
                    "val_divergence", "val_divergence_sd", "groups", "seconds", "warnings"]
-
-
-def headline_of(rs: ResultSet) -> str:
-    return json.loads(rs.meta["canonical_json"])["study"]["metric"]
 
 
 def _variants(rs: ResultSet) -> list[tuple[int, str]]:
@@ -30,7 +25,7 @@ def _variants(rs: ResultSet) -> list[tuple[int, str]]:
 
 
 def summary_rows(rs: ResultSet, metric: str | None = None) -> list[dict]:
-    metric = metric or headline_of(rs)
+    metric = metric or rs.headline
     cols = rs.runs.to_pydict()
     col = f"final_{metric}"
     if col not in cols:
@@ -58,7 +53,7 @@ def curve_rows(rs: ResultSet, metrics: list[str] | None = None) -> tuple[list[di
     """Per-epoch means across the ok runs of each variant."""
     curves = rs.curves.to_pydict()
     ok_ids = {r for r, s in zip(rs.runs.column("run_id").to_pylist(), rs.runs.column("status").to_pylist()) if s == "ok"}
-    headline = headline_of(rs)
+    headline = rs.headline
     default = [m for m in (headline, "train_divergence", "val_divergence") if m in curves]
     metrics = metrics or list(dict.fromkeys(default))
     for m in metrics:

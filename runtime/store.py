@@ -53,6 +53,16 @@ class ResultSet:
     def study_hash(self) -> str:
         return self.meta["study_hash"]
 
+    @property
+    def tree(self) -> dict:
+        """The stored study as the nested dict of its canonical JSON (defaults filled in)."""
+        return json.loads(self.meta["canonical_json"])
+
+    @property
+    def headline(self) -> str:
+        """The study's headline metric."""
+        return self.tree["study"]["metric"]
+
 
 def result_dir(out: Path, name: str, study_hash: str) -> Path:
     return Path(out) / f"{name}-{study_hash[:12]}"
