@@ -9,6 +9,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 import pytest
+import scipy.stats
 from sklearn.datasets import load_diabetes, load_iris
 from sklearn.linear_model import LogisticRegression, Ridge
 
@@ -142,7 +143,7 @@ def test_same_seed_pairs_split_init_and_batch_order():
     cb = pb.init(knobs(b), build.seed_key(3), ds.x, ds.y)
     jax.tree.map(np.testing.assert_array_equal, pa.params(ca), pb.params(cb))
     np.testing.assert_array_equal(ca.train_idx, cb.train_idx)
-    order = lambda c: jax.random.permutation(jax.random.fold_in(c.shuffle_key, 0), 144)
+    order = lambda c: build.permutation(jax.random.fold_in(c.shuffle_key, 0), 144)
     np.testing.assert_array_equal(order(ca), order(cb))  # the batch order of epoch 0
     np.testing.assert_array_equal(jax.random.key_data(ca.dropout_key), jax.random.key_data(cb.dropout_key))
     other = pa.init(knobs(a), build.seed_key(4), ds.x, ds.y)
@@ -212,7 +213,7 @@ def test_partial_last_batch_means_over_real_examples():
     prog, ds = program(v)
     c = prog.init(knobs(v), build.seed_key(1), ds.x, ds.y)
     _, m = jax.jit(prog.epoch)(c, knobs(v), ds.x, ds.y)
-    order = np.asarray(c.train_idx)[np.asarray(jax.random.permutation(jax.random.fold_in(c.shuffle_key, 0), 144))]
+    order = np.asarray(c.train_idx)[np.asarray(build.permutation(jax.random.fold_in(c.shuffle_key, 0), 144))]
     p = jax.tree.map(np.asarray, c.params)
     x = (ds.x - np.asarray(c.x_mean)) / np.asarray(c.x_scale)
     z = np.maximum(x @ p["l1"]["W"] + p["l1"]["b"], 0) @ p["l2"]["W"] + p["l2"]["b"]
@@ -316,3 +317,15 @@ def test_linear_l2_reaches_the_ridge_optimum(tmp_path):
     ours, theirs = objective(w, b), objective(ref.coef_[:, None], ref.intercept_)
     assert abs(ours - theirs) < 1e-5 * theirs
     np.testing.assert_allclose(w[:, 0], ref.coef_, rtol=1e-3, atol=1e-2)
+
+
+def test_permutation_is_a_uniform_shuffle():
+    n, trials = 6, 3000
+    perms = np.asarray(jax.vmap(lambda k: build.permutation(k, n))(jax.random.split(jax.random.key(0), trials)))
+    assert perms.dtype == np.int32
+    assert (np.sort(perms, axis=1) == np.arange(n)).all()
+    # every element lands in every position equally often: chi-square test of uniformity
+    # (scipy.stats.chisquare), one per element; a broken shuffle (e.g. identity) gives p ≈ 0
+    for element in range(n):
+        counts = np.bincount(np.argmax(perms == element, axis=1), minlength=n)
+        assert scipy.stats.chisquare(counts).pvalue > 1e-4

@@ -39,7 +39,7 @@ def test_activations_match_references():
 ])
 def test_initializer_variance(init, variance, uniform):
     fan_in, fan_out = 400, 300
-    w = np.asarray(model.INITIALIZERS[init](jax.random.key(0), (fan_in, fan_out), jnp.float32))
+    w = np.asarray(model.draw_weights(init, jax.random.key(0), [(fan_in, fan_out)])[0])
     # 120 000 draws: the sample variance is within ~1 % (Monte Carlo, 3σ ≈ 0.8 % for a normal)
     np.testing.assert_allclose(w.var(), variance(fan_in, fan_out), rtol=0.02)
     if uniform:
@@ -101,3 +101,13 @@ def test_dropout_is_not_applied_to_inputs_or_outputs():
     x = jnp.ones((4, 3))
     z, _ = net.apply(params, state, x, jax.random.key(1), None, True)
     np.testing.assert_allclose(z, np.tile([0.5, -1.0], (4, 1)))
+
+
+@pytest.mark.parametrize("init", sorted(model.INITIALIZERS))
+def test_one_draw_gives_networks_with_the_same_leading_layers_the_same_matrices(init):
+    key = jax.random.key(11)
+    a = model.draw_weights(init, key, [(4, 6), (6, 5), (5, 3)])
+    b = model.draw_weights(init, key, [(4, 6), (6, 5), (5, 9)])  # another output width
+    np.testing.assert_array_equal(a[0], b[0])
+    np.testing.assert_array_equal(a[1], b[1])
+    assert not np.array_equal(a[0].ravel()[:15], a[2].ravel())  # consecutive slices, not repeats

@@ -193,7 +193,9 @@ def test_arm_points_are_the_summary_means_and_intervals_match_scipy(sets):
         # n = 3 seeds are three dots
         np.testing.assert_array_equal(np.sort(seeds[f"seeds:val_accuracy:{r['variant']}"].get_xdata()), np.sort(values))
         # Student t interval of the mean, scipy.stats.t.interval with the standard error
-        lo, hi = sps.t.interval(0.95, len(values) - 1, loc=values.mean(), scale=sps.sem(values))
+        # (every seed scoring the same makes it the point; scipy returns NaN for a zero scale)
+        sem = sps.sem(values)
+        lo, hi = (values.mean(),) * 2 if sem == 0 else sps.t.interval(0.95, len(values) - 1, loc=values.mean(), scale=sem)
         np.testing.assert_allclose(intervals[round(y[0], 9)], [lo, hi], rtol=1e-9)
 
 
