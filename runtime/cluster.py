@@ -14,15 +14,15 @@ in any order — whose groups run as tasks of a ``dask.distributed`` scheduler:
   one of them. Workers that differ from *this* process are only reported through ``on_warning``:
   the client computes nothing, but replaying those runs later needs the workers' environment;
 - one group is one task, submitted unchanged (its recorded lane width and padding), so a run's
-  bits do not depend on which worker, or how many, computed it. The task enables the persistent
-  compile cache on the worker and calls :func:`runtime.execute.execute_group` with the worker's own
+  bits do not depend on which worker, or how many, computed it. The task enables the compile
+  cache (the program store) on the worker and calls :func:`runtime.execute.execute_group` with the worker's own
   captured environment, which is what the run records;
 - each distinct data set is scattered once (``broadcast=True``), not sent per task: it reaches
   each worker once, by the scatter or from a peer that holds it. Should every worker holding it
   die, the scheduler cancels the tasks that need it; those groups are resubmitted with the data
   sent again (a few times, then a :class:`ClusterError`);
 - the first group of each compiled program goes out alone and the program's other groups follow
-  when it is back: workers that share a persistent compile cache (``local:N``, or one
+  when it is back: workers that share a compile cache (``local:N``, or one
   ``$LESION_CACHE_DIR`` on a shared disk) then compile each program once and load it elsewhere,
   instead of every worker compiling it at the same time;
 - results stream back through ``distributed.as_completed``; each group is yielded at most once,

@@ -9,14 +9,21 @@ of the compiler's per-epoch function, steps in ``lax.scan``) and called once per
 Python; the data stays on the device across epochs and only the per-epoch metrics come back.
 Knobs that are 0 in every lane of a group are passed to the builder as ``zero_knobs`` (work they
 make the identity is left out, bits unchanged); programs compile with XLA's default options.
-JAX's persistent compilation cache (in the user's cache folder) lets a second invocation skip
-compiling; it is a speed-up only — the bits never depend on it.
+The compiled executables of a structure are stored in the user's cache folder under a name
+hashed from everything they depend on (:func:`_program_path`), so a later invocation neither
+traces, lowers nor compiles them; it is a speed-up only — a stored program computes the same bits
+as a fresh compile (tested across processes), and replay always compiles afresh.
 """
 
 from __future__ import annotations
 
+import hashlib
+import json
 import os
+import pickle
+import tempfile
 import time
+from functools import cache
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable
@@ -67,22 +74,16 @@ _cache_enabled = False
 
 
 def enable_compile_cache() -> None:
+    """Let this process load and store compiled programs in :func:`cache_dir` (``lesion run`` and
+    cluster workers do; replay never does)."""
     global _cache_enabled
-    if _cache_enabled:
-        return
     import jax
 
-    path = cache_dir()
-    try:
-        path.mkdir(parents=True, exist_ok=True)
-    except OSError:
-        return  # no cache folder: compile every time, the numbers are the same
-    jax.config.update("jax_compilation_cache_dir", str(path))
-    jax.config.update("jax_persistent_cache_min_compile_time_secs", 0.2)
-    jax.config.update("jax_persistent_cache_min_entry_size_bytes", 0)
+    # JAX's own persistent cache stays off: an executable it loaded from disk serializes into an
+    # entry that fails when run in another process (measured: "Function … not found"), and the
+    # program store below already skips more work (tracing and lowering too).
+    jax.config.update("jax_enable_compilation_cache", False)
     _cache_enabled = True
-
-
 
 
 # Compiled (init, epoch) per (structure, lane width, data shape, knobs zero in every lane), reused
@@ -95,7 +96,64 @@ def _zero_knobs(knobs: dict) -> frozenset[str]:
     return frozenset(name for name, values in knobs.items() if not np.any(np.asarray(values)))
 
 
-def _compiled(group: Group, dataset, knobs, seeds, reuse: bool):
+@cache
+def _source_digest() -> str:
+    """SHA-256 over lesion's own Python sources: a stored program is only taken by the code that
+    built it."""
+    h = hashlib.sha256()
+    root = Path(__file__).resolve().parent.parent
+    for folder in ("compiler", "runtime"):
+        for path in sorted((root / folder).glob("*.py")):
+            h.update(f"{folder}/{path.name}|{path.stat().st_size}|".encode())
+            h.update(path.read_bytes())
+    return h.hexdigest()
+
+
+def _program_path(group: Group, dataset, zero: frozenset[str], environment: dict) -> Path:
+    """Where the compiled programs of a structure live in the compile cache. The name hashes
+    everything the programs are a function of: lesion's sources, the numerics environment, jax's
+    configuration, the structure, the lane width, the data's shapes, kind and fingerprint, and the
+    knobs that are zero in every lane."""
+    import jax
+
+    from runtime import environment as env
+
+    config = {k: repr(v) for k, v in sorted(jax.config.values.items()) if "cache" not in k}
+    parts = [_source_digest(), env.fingerprint(environment), config, group.structure, group.lane_width,
+             list(dataset.x.shape), str(dataset.x.dtype), list(dataset.y.shape), str(dataset.y.dtype),
+             dataset.task, dataset.classes, dataset.fingerprint, sorted(zero)]
+    digest = hashlib.sha256(json.dumps(parts, sort_keys=True, default=str).encode()).hexdigest()
+    return cache_dir() / "programs" / f"{digest}.pkl"
+
+
+def _load_programs(path: Path):
+    """The stored (init, epoch) executables, or None when absent or unreadable (then they are
+    compiled again and the entry rewritten)."""
+    from jax.experimental.serialize_executable import deserialize_and_load
+
+    try:
+        with open(path, "rb") as fh:
+            stored = pickle.load(fh)
+        return tuple(deserialize_and_load(*entry) for entry in stored)
+    except Exception:  # noqa: BLE001 - a damaged or foreign entry only costs a compile
+        return None
+
+
+def _store_programs(path: Path, programs) -> None:
+    from jax.experimental.serialize_executable import serialize
+
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        blob = pickle.dumps([serialize(p) for p in programs], protocol=pickle.HIGHEST_PROTOCOL)
+        fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=".tmp-")
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(blob)
+        os.replace(tmp, path)
+    except OSError:
+        pass  # a cache that cannot be written only costs a compile next time
+
+
+def _compiled(group: Group, dataset, knobs, seeds, reuse: bool, environment: dict):
     import jax
 
     from compiler.build import compile_variant, seed_key
@@ -107,16 +165,26 @@ def _compiled(group: Group, dataset, knobs, seeds, reuse: bool):
     program = compile_variant(group.runs[0].variant.spec, dataset, zero_knobs=zero)
     t0 = time.perf_counter()
     x, y = jax.device_put(dataset.x), jax.device_put(dataset.y)
-    # The root keys are made inside init: a separate program for them would be one more compile.
-    init = jax.jit(jax.vmap(lambda k, seed, x, y: program.init(k, seed_key(seed), x, y),
-                            in_axes=(0, 0, None, None))).lower(knobs, seeds, x, y)
-    epoch = jax.jit(jax.vmap(program.epoch, in_axes=(0, 0, None, None))).lower(init.out_info, knobs, x, y)
-    # One after the other: XLA:CPU compiles of one process do not overlap (measured: two threads
-    # took as long as one after the other).
-    # XLA's default compile options. Its CPU fast-compile preset saves about a tenth of the
-    # compile time but changes the bits of batch- and layer-normalized variants (measured by
-    # replaying a demo result set), so it is not used.
-    init_c, epoch_c = init.compile(), epoch.compile()
+    # With the compile cache on, the executables themselves are stored under a name derived
+    # without tracing: a second invocation skips tracing and lowering too (JAX's own cache is
+    # keyed by the lowered program, so it cannot).
+    path = _program_path(group, dataset, zero, environment) if reuse and _cache_enabled else None
+    loaded = _load_programs(path) if path is not None and path.exists() else None
+    if loaded is not None:
+        init_c, epoch_c = loaded
+    else:
+        # The root keys are made inside init: a separate program for them would be one more compile.
+        init = jax.jit(jax.vmap(lambda k, seed, x, y: program.init(k, seed_key(seed), x, y),
+                                in_axes=(0, 0, None, None))).lower(knobs, seeds, x, y)
+        epoch = jax.jit(jax.vmap(program.epoch, in_axes=(0, 0, None, None))).lower(init.out_info, knobs, x, y)
+        # One after the other: XLA:CPU compiles of one process do not overlap (measured: two
+        # threads took as long as one after the other).
+        # XLA's default compile options. Its CPU fast-compile preset saves about a tenth of the
+        # compile time but changes the bits of batch- and layer-normalized variants (measured by
+        # replaying a demo result set), so it is not used.
+        init_c, epoch_c = init.compile(), epoch.compile()
+        if path is not None:
+            _store_programs(path, (init_c, epoch_c))
     # Picking fields of the carry needs no program: vmap without jit compiles nothing.
     status, params = jax.vmap(program.status), jax.vmap(program.params)
     seconds = time.perf_counter() - t0
@@ -141,7 +209,7 @@ def execute_group(group: Group, dataset, environment: dict,
     knobs = {n: jnp.asarray(np.array([v[n] for v in vectors], dtype=np.float32)) for n in names}
     seeds = np.array([r.seed for r in lanes], dtype=np.int32)
 
-    program, init_c, epoch_c, status_fn, params_fn, x, y, compile_seconds = _compiled(group, dataset, knobs, seeds, reuse)
+    program, init_c, epoch_c, status_fn, params_fn, x, y, compile_seconds = _compiled(group, dataset, knobs, seeds, reuse, environment)
     t0 = time.perf_counter()
     carry = init_c(knobs, seeds, x, y)
     per_epoch = []

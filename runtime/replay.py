@@ -4,8 +4,8 @@ The spec comes from the result set's own metadata, never from the spec file on d
 anything runs, the result set must prove it is what it claims: the stored canonical JSON must
 hash to the stored study hash, the stored source must load to that same canonical JSON, and every
 stored run's variant hash, label and run id must be re-derived from it. The selected runs are
-then re-executed at their recorded lane width, with the persistent compile cache off (a fresh
-compile), and every per-epoch metric, every final/best metric cell and the parameter digest are
+then re-executed at their recorded lane width with a fresh compile (never a stored program, never
+one compiled earlier in the process), and every per-epoch metric, every final/best metric cell and the parameter digest are
 compared bitwise: float32 bit patterns, except that any NaN equals any NaN (−0.0 ≠ 0.0).
 """
 

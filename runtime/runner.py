@@ -22,7 +22,7 @@ from compiler.spec import METRICS
 from runtime import __version__, environment, guard
 from runtime.execute import GroupResult, InProcess, enable_compile_cache
 from runtime.plan import Group, plan
-from runtime.store import ResultSet, ResultSetError, open_result_set, result_dir, write_results, writer_lock
+from runtime.store import ResultSet, ResultSetError, column, open_result_set, result_dir, write_results, writer_lock
 
 __all__ = ["RunReport", "run_study", "study_meta", "varied_keys", "group_tables", "datasets_for"]
 
@@ -165,29 +165,29 @@ def group_tables(result: GroupResult, group: Group, study_hash: str, headline: s
     arrays, names = [], []
     for k, vals in cols.items():
         if k in key_columns:
-            arrays.append(pa.array(vals, type=key_columns[k][0]))
+            arrays.append(column(vals, key_columns[k][0]))
         elif k in int32:
-            arrays.append(pa.array(vals, type=pa.int32()))
+            arrays.append(column(vals, pa.int32()))
         elif k == "seed":
-            arrays.append(pa.array(vals, type=pa.int64()))
+            arrays.append(column(vals, pa.int64()))
         else:
-            arrays.append(pa.array(vals, type=pa.string()))
+            arrays.append(column(vals, pa.string()))
         names.append(k)
     for k, vals in finals.items():
-        arrays.append(pa.array(np.asarray(vals, dtype=np.float32)))
+        arrays.append(column(vals, pa.float32()))
         names.append(k)
-    arrays += [pa.array(np.asarray(best, dtype=np.float32)), pa.array(best_epoch, type=pa.int32())]
+    arrays += [column(best, pa.float32()), column(best_epoch, pa.int32())]
     names += [f"best_{headline}", "best_epoch"]
     for k, vals in tail.items():
         typ = pa.float64() if k.endswith("seconds") else pa.string()
-        arrays.append(pa.array(vals, type=typ))
+        arrays.append(column(vals, typ))
         names.append(k)
     runs = pa.Table.from_arrays(arrays, names=names)
-    c_arrays = [pa.array(curve_cols["run_id"], type=pa.string()), pa.array(curve_cols["variant_label"], type=pa.string()),
-                pa.array(curve_cols["seed"], type=pa.int64()), pa.array(curve_cols["epoch"], type=pa.int32())]
+    c_arrays = [column(curve_cols["run_id"], pa.string()), column(curve_cols["variant_label"], pa.string()),
+                column(curve_cols["seed"], pa.int64()), column(curve_cols["epoch"], pa.int32())]
     c_names = ["run_id", "variant_label", "seed", "epoch"]
     for m, parts in curve_metrics.items():
-        c_arrays.append(pa.array(np.concatenate(parts).astype(np.float32)))
+        c_arrays.append(column(np.concatenate(parts), pa.float32()))
         c_names.append(m)
     return runs, pa.Table.from_arrays(c_arrays, names=c_names)
 

@@ -1,0 +1,113 @@
+"""Stored programs: a later invocation loads a structure's compiled executables from the compile
+cache without tracing, and gets the same bits as the invocation that compiled them."""
+
+import dataclasses
+import os
+import subprocess
+import sys
+
+import numpy as np
+import pyarrow as pa
+import pytest
+
+from compiler import build
+from compiler.loader import load_study
+from runtime import environment, execute
+from runtime.plan import plan
+from runtime.replay import replay
+from runtime.runner import datasets_for, run_study
+from runtime.store import open_result_set
+
+TIMING = ["compile_seconds", "run_seconds", "finished_at"]
+
+
+def _numbers(path) -> tuple[pa.Table, pa.Table]:
+    rs = open_result_set(path)
+    return rs.runs.drop_columns(TIMING), rs.curves
+
+
+def _assert_same_bits(a, b):
+    (runs_a, curves_a), (runs_b, curves_b) = _numbers(a), _numbers(b)
+    assert runs_a.column("param_digest").to_pylist() == runs_b.column("param_digest").to_pylist()
+    assert runs_a.equals(runs_b) and curves_a.equals(curves_b)
+
+
+@pytest.fixture
+def store(tmp_path, monkeypatch):
+    """A compile cache of this test's own, and no programs compiled earlier in the process."""
+    monkeypatch.setenv("LESION_CACHE_DIR", str(tmp_path / "cache"))
+    monkeypatch.setattr(execute, "_programs", {})
+    return tmp_path / "cache" / "programs"
+
+
+def _untraceable(monkeypatch):
+    """From now on a structure's programs can only come from the store: tracing them fails."""
+    real = build.compile_variant
+
+    def no_tracing(*args, **kwargs):
+        def boom(*a, **k):
+            raise AssertionError("traced although the programs were stored")
+        return real(*args, **kwargs)._replace(init=boom, epoch=boom)
+
+    monkeypatch.setattr(build, "compile_variant", no_tracing)
+
+
+def test_a_later_run_loads_the_programs_without_tracing_and_gets_the_same_bits(tmp_path, tiny_spec, store, monkeypatch):
+    loaded = load_study(tiny_spec(tmp_path, "ember", seeds=2, epochs=2))
+    first = run_study(loaded, tmp_path / "a").path
+    assert len(list(store.glob("*.pkl"))) == 1  # one structure, one entry holding init and epoch
+    monkeypatch.setattr(execute, "_programs", {})
+    _untraceable(monkeypatch)
+    second = run_study(loaded, tmp_path / "b").path
+    _assert_same_bits(first, second)
+
+
+def test_a_damaged_entry_is_compiled_again_and_rewritten(tmp_path, tiny_spec, store, monkeypatch):
+    loaded = load_study(tiny_spec(tmp_path, "ember", seeds=2, epochs=2))
+    first = run_study(loaded, tmp_path / "a").path
+    [entry] = store.glob("*.pkl")
+    entry.write_bytes(b"not a program")
+    monkeypatch.setattr(execute, "_programs", {})
+    second = run_study(loaded, tmp_path / "b").path
+    _assert_same_bits(first, second)
+    assert entry.read_bytes() != b"not a program" and execute._load_programs(entry) is not None
+
+
+def test_the_entry_name_follows_sources_environment_width_and_zero_knobs(tmp_path, tiny_spec, monkeypatch):
+    loaded = load_study(tiny_spec(tmp_path, "ember", seeds=2, epochs=2))
+    [group] = plan(loaded.variants, loaded.spec.study.seed_list)
+    data = datasets_for([group], tmp_path, {})[group.group_id]
+    env = environment.capture()
+
+    def name(g=group, env=env, zero=frozenset()):
+        return execute._program_path(g, data, zero, env).name
+
+    base = name()
+    assert name() == base
+    assert name(g=dataclasses.replace(group, lane_width=2 * group.lane_width)) != base
+    assert name(env=dict(env, xla_flags="--xla_cpu_max_isa=SSE4_2")) != base
+    assert name(env=dict(env, jax="0.0.0")) != base
+    assert name(zero=frozenset({"regularization.weight_decay"})) != base
+    monkeypatch.setattr(execute, "_source_digest", lambda: "edited sources")
+    assert name() != base
+
+
+def test_replay_never_takes_a_stored_program(tmp_path, tiny_spec, store, monkeypatch):
+    loaded = load_study(tiny_spec(tmp_path, "ember", seeds=2, epochs=2))
+    path = run_study(loaded, tmp_path / "a").path
+    monkeypatch.setattr(execute, "_load_programs", lambda p: pytest.fail("replay loaded a stored program"))
+    report = replay(path, everything=True)
+    assert report.identical
+
+
+def test_a_second_process_loads_the_stored_programs_with_the_same_bits(tmp_path, tiny_spec):
+    spec = tiny_spec(tmp_path, "ember", seeds=2, epochs=2)
+    env = dict(os.environ, LESION_CACHE_DIR=str(tmp_path / "cache"))
+    outs = []
+    for name in ("a", "b"):
+        done = subprocess.run([sys.executable, "-m", "runtime.cli", "run", str(spec), "--quiet", "--out",
+                               str(tmp_path / name)], env=env, capture_output=True, text=True, timeout=300)
+        assert done.returncode == 0, done.stderr
+        outs.append(done.stdout.strip().splitlines()[-1])
+    assert len(list((tmp_path / "cache" / "programs").glob("*.pkl"))) == 1
+    _assert_same_bits(*outs)
