@@ -11,12 +11,14 @@ to exit, with peak resident memory from GNU time (``%M``):
 - ``lesion_cold``: ``lesion run`` with a fresh, empty ``LESION_CACHE_DIR``;
 - ``lesion_warm``: the same command again on that cache, with ``--fresh``;
 - ``hand_jax``: :mod:`hand_jax` (jitted step, Python loop over batches, runs one after another);
-- ``hand_torch``: :mod:`hand_torch` (PyTorch CPU, same model and loop), if torch is installed.
+- ``hand_torch``: :mod:`hand_torch` (PyTorch CPU, same model and loop), if torch is installed;
+- ``import_jax``: ``python -c "import jax"``, the start-up every JAX-based way pays (a floor).
 
 It then reports medians, the ratios lesion ÷ each other way, the study's matmul FLOPs divided by
 this machine's float32 matmul throughput (a 2048² ``jnp.dot``, measured before and after) as the
 physical limit, lesion's fraction of that limit (execution only: the result set's
-``run_seconds``), each way's final training loss per learning rate, and the peak memory of a
+``run_seconds``), the throughput of the workload's hidden-layer product batched over the 16 lanes
+as XLA:CPU runs it (what lesion's execution fraction cannot exceed), each way's final training loss per learning rate, and the peak memory of a
 64-run small study. The table goes to stdout and, with the machine's description, to
 ``results/bench-<UTC time>.json``.
 """
@@ -112,6 +114,27 @@ def matmul_throughput(n: int = 2048, reps: int = 5) -> float:
     return 2 * n ** 3 / best / 1e9
 
 
+def batched_matmul_throughput(w: dict, lanes: int = 16, reps: int = 5) -> float:
+    """Best float32 GFLOP/s of the workload's widest hidden-layer product, batched over the lanes
+    as a vmapped study computes it: ``[lanes, batch, h] @ [lanes, h, h]``."""
+    import jax
+    import jax.numpy as jnp
+
+    h, b = max(w["widths"][1:-1]), w["batch_size"]
+    x = jax.random.normal(jax.random.key(0), (lanes, b, h), jnp.float32)
+    m = jax.random.normal(jax.random.key(1), (lanes, h, h), jnp.float32)
+    f = jax.jit(lambda x, m: jnp.einsum("lbi,lij->lbj", x, m))
+    f(x, m).block_until_ready()
+    best = float("inf")
+    for _ in range(reps):
+        t0 = time.perf_counter()
+        for _ in range(50):
+            r = f(x, m)
+        r.block_until_ready()
+        best = min(best, (time.perf_counter() - t0) / 50)
+    return 2 * lanes * b * h * h / best / 1e9
+
+
 def machine() -> dict:
     model = platform.processor()
     try:
@@ -156,7 +179,7 @@ def main() -> None:
     ap.add_argument("--no-torch", action="store_true", help="skip the PyTorch baseline")
     args = ap.parse_args()
 
-    ways = ["lesion_cold", "lesion_warm", "hand_jax"]
+    ways = ["lesion_cold", "lesion_warm", "hand_jax", "import_jax"]
     if args.no_torch:
         print("PyTorch baseline skipped (--no-torch)", file=sys.stderr)
     elif importlib.util.find_spec("torch") is None:
@@ -182,6 +205,9 @@ def main() -> None:
                         r = lesion(spec, cache, out, False, w)
                     elif way == "lesion_warm":
                         r = lesion(spec, cache, out, True, w)
+                    elif way == "import_jax":
+                        r = child([PYTHON, "-c", "import jax"])
+                        r.pop("stdout")
                     else:
                         r = baseline(f"{way}.py", spec)
                     samples[name][way].append(r)
@@ -206,26 +232,31 @@ def main() -> None:
         compile_s = statistics.median(s["compile_seconds"] for s in samples[name]["lesion_cold"])
         flops = wl.matmul_flops(w)
         limit = flops["total"] / (peak * 1e9)
+        batched = batched_matmul_throughput(w)
         entry = {"workload": w, "flops": flops, "physical_limit_seconds": limit,
                  "lesion_execution_seconds": exec_s, "lesion_cold_compile_seconds": compile_s,
                  "lesion_fraction_of_limit_execution": limit / exec_s,
-                 "lesion_cold_fraction_of_limit_end_to_end": limit / cold, "ways": {}}
+                 "lesion_cold_fraction_of_limit_end_to_end": limit / cold,
+                 "batched_hidden_matmul_gflops": batched, "ways": {}}
         lines.append(f"\n{name}: {len(w['learning_rates']) * len(w['seeds'])} runs, widths {w['widths']}, "
                      f"{w['n_train']} training rows, batch {w['batch_size']}, {w['epochs']} epochs; "
                      f"{flops['total'] / 1e9:.1f} GFLOP")
         lines.append(f"  {'way':12s} {'seconds':>8s} {'peak MiB':>9s} {'cold÷this':>10s} {'warm÷this':>10s}  "
                      f"final train loss per learning rate {w['learning_rates']} (median over seeds)")
         for way, m in med.items():
-            losses = per_lr_median(samples[name][way][-1]["final_train_loss"], w)
+            last = samples[name][way][-1]
+            losses = per_lr_median(last["final_train_loss"], w) if "final_train_loss" in last else []
             entry["ways"][way] = {**m, "all_seconds": [s["seconds"] for s in samples[name][way]],
                                   "lesion_cold_over_this": cold / m["seconds"],
                                   "lesion_warm_over_this": warm / m["seconds"],
                                   "final_train_loss_per_lr": losses}
             lines.append(f"  {way:12s} {m['seconds']:8.2f} {m['rss_mib']:9.0f} {cold / m['seconds']:10.3f} "
-                         f"{warm / m['seconds']:10.3f}  " + " ".join(f"{v:.4f}" for v in losses))
+                         f"{warm / m['seconds']:10.3f}  " + (" ".join(f"{v:.4f}" for v in losses) or "(trains nothing)"))
         lines.append(f"  physical limit {limit:.3f} s ({peak:.0f} GFLOP/s); lesion execution {exec_s:.2f} s = "
                      f"{100 * limit / exec_s:.0f} % of it; cold compile {compile_s:.2f} s; "
                      f"end to end cold {100 * limit / cold:.1f} %")
+        lines.append(f"  hidden-layer product batched over 16 lanes: {batched:.0f} GFLOP/s = {100 * batched / peak:.0f} % "
+                     f"of the 2048² rate (a ceiling for lesion's execution fraction)")
         report["workloads"][name] = entry
     if big:
         lines.append(f"\nsmall study with 64 runs: {big['seconds']:.1f} s, peak RSS {big['rss_mib']:.0f} MiB")
