@@ -24,6 +24,7 @@ import pickle
 import tempfile
 import time
 from functools import cache
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable
@@ -89,7 +90,7 @@ def enable_compile_cache() -> None:
     _cache_enabled = True
 
 
-# Compiled (init, epoch) per (structure, lane width, data shape, knobs zero in every lane), reused
+# Compiled (init, epoch) per (structure, lane width, data signature, knobs zero in every lane), reused
 # by every group of a structure within one process.
 _programs: dict[tuple, tuple] = {}
 
@@ -112,19 +113,25 @@ def _source_digest() -> str:
     return h.hexdigest()
 
 
+def _data_signature(dataset) -> tuple:
+    """What a structure's programs know of its data: shapes, dtypes, task and class count (the
+    rows themselves are arguments, so data of the same signature share the programs)."""
+    return (dataset.x.shape, str(dataset.x.dtype), dataset.y.shape, str(dataset.y.dtype), dataset.task,
+            dataset.classes)
+
+
 def _program_path(group: Group, dataset, zero: frozenset[str], environment: dict) -> Path:
     """Where the compiled programs of a structure live in the compile cache. The name hashes
     everything the programs are a function of: lesion's sources, the numerics environment, jax's
-    configuration, the structure, the lane width, the data's shapes, kind and fingerprint, and the
-    knobs that are zero in every lane."""
+    configuration, the structure, the lane width, the data's signature and the knobs that are zero
+    in every lane."""
     import jax
 
     from runtime import environment as env
 
     config = {k: repr(v) for k, v in sorted(jax.config.values.items()) if "cache" not in k}
     parts = [_source_digest(), env.fingerprint(environment), config, group.structure, group.lane_width,
-             list(dataset.x.shape), str(dataset.x.dtype), list(dataset.y.shape), str(dataset.y.dtype),
-             dataset.task, dataset.classes, dataset.fingerprint, sorted(zero)]
+             _data_signature(dataset), sorted(zero)]
     digest = hashlib.sha256(json.dumps(parts, sort_keys=True, default=str).encode()).hexdigest()
     return cache_dir() / "programs" / f"{digest}.pkl"
 
@@ -162,12 +169,12 @@ def _compiled(group: Group, dataset, knobs, seeds, reuse: bool, environment: dic
     from compiler.build import compile_variant, seed_key
 
     zero = _zero_knobs(knobs)
-    key = (group.structure, group.lane_width, dataset.x.shape, dataset.fingerprint, zero)
+    key = (group.structure, group.lane_width, _data_signature(dataset), zero)
     if reuse and key in _programs:
         return _programs[key] + (0.0,)
     program = compile_variant(group.runs[0].variant.spec, dataset, zero_knobs=zero)
     t0 = time.perf_counter()
-    x, y = jax.device_put(dataset.x), jax.device_put(dataset.y)
+    x, y = jax.ShapeDtypeStruct(dataset.x.shape, dataset.x.dtype), jax.ShapeDtypeStruct(dataset.y.shape, dataset.y.dtype)
     # With the compile cache on, the executables themselves are stored under a name derived
     # without tracing: a second invocation skips tracing and lowering too (JAX's own cache is
     # keyed by the lowered program, so it cannot).
@@ -179,18 +186,21 @@ def _compiled(group: Group, dataset, knobs, seeds, reuse: bool, environment: dic
         # The root keys are made inside init: a separate program for them would be one more compile.
         init = jax.jit(jax.vmap(lambda k, seed, x, y: program.init(k, seed_key(seed), x, y),
                                 in_axes=(0, 0, None, None))).lower(knobs, seeds, x, y)
-        epoch = jax.jit(jax.vmap(program.epoch, in_axes=(0, 0, None, None))).lower(init.out_info, knobs, x, y)
-        # One after the other: XLA:CPU compiles of one process barely overlap (measured: two
-        # threads saved under a tenth). init runs once per group, so only its compile time
-        # counts: without LLVM's optimizations it compiles in 0.35 s instead of 0.59 s (small
-        # benchmark study). The epoch runs every epoch and keeps XLA's default options.
-        init_c, epoch_c = init.compile(INIT_COMPILE_OPTIONS), epoch.compile()
+        # init runs once per group, so only its compile time counts: without LLVM's optimizations
+        # it compiles in 0.35 s instead of 0.59 s (small benchmark study). It compiles in a
+        # thread (XLA releases the GIL) while the epoch is traced and lowered here; the epoch
+        # runs every epoch and keeps XLA's default options.
+        with ThreadPoolExecutor(1) as pool:
+            pending = pool.submit(init.compile, INIT_COMPILE_OPTIONS)
+            epoch = jax.jit(jax.vmap(program.epoch, in_axes=(0, 0, None, None))).lower(init.out_info, knobs, x, y)
+            epoch_c = epoch.compile()
+            init_c = pending.result()
         if path is not None:
             _store_programs(path, (init_c, epoch_c))
     # Picking fields of the carry needs no program: vmap without jit compiles nothing.
     status, params = jax.vmap(program.status), jax.vmap(program.params)
     seconds = time.perf_counter() - t0
-    _programs[key] = (program, init_c, epoch_c, status, params, x, y)
+    _programs[key] = (program, init_c, epoch_c, status, params)
     return _programs[key] + (seconds,)
 
 
@@ -211,7 +221,8 @@ def execute_group(group: Group, dataset, environment: dict,
     knobs = {n: jnp.asarray(np.array([v[n] for v in vectors], dtype=np.float32)) for n in names}
     seeds = np.array([r.seed for r in lanes], dtype=np.int32)
 
-    program, init_c, epoch_c, status_fn, params_fn, x, y, compile_seconds = _compiled(group, dataset, knobs, seeds, reuse, environment)
+    program, init_c, epoch_c, status_fn, params_fn, compile_seconds = _compiled(group, dataset, knobs, seeds, reuse, environment)
+    x, y = jax.device_put(dataset.x), jax.device_put(dataset.y)
     t0 = time.perf_counter()
     carry = init_c(knobs, seeds, x, y)
     per_epoch = []
