@@ -13,15 +13,17 @@ import json
 import os
 import platform
 import socket
+from functools import cache
 from importlib import metadata
+from pathlib import Path
 
-__all__ = ["capture", "numerics", "fingerprint", "differences"]
+__all__ = ["capture", "numerics", "fingerprint", "differences", "source_digest"]
 
 # CPU features that decide which kernels XLA:CPU emits (and so the rounding of matmuls).
 _ISA_FLAGS = ("sse4_1", "sse4_2", "avx", "avx2", "fma", "f16c", "avx512f", "avx512bw", "avx512dq",
               "avx512vl", "avx512_vnni", "avx512_bf16", "amx_tile", "asimd", "sve")
 
-_NUMERICS_KEYS = ("python", "jax", "jaxlib", "optax", "numpy", "xla_flags", "jax_threefry_partitionable",
+_NUMERICS_KEYS = ("lesion_sources", "python", "jax", "jaxlib", "optax", "numpy", "xla_flags", "jax_threefry_partitionable",
                   "jax_default_matmul_precision", "jax_enable_x64", "cpu_model", "cpu_isa", "machine", "os")
 
 
@@ -31,6 +33,19 @@ def _version(dist: str) -> str:
         return metadata.version(dist)
     except metadata.PackageNotFoundError:
         return "absent"
+
+
+@cache
+def source_digest() -> str:
+    """SHA-256 (16 hex digits) over lesion's own Python sources: a changed compiler (another
+    release, a local edit) can change every run's bits, as a changed jax can."""
+    h = hashlib.sha256()
+    root = Path(__file__).resolve().parent.parent
+    for folder in ("compiler", "runtime"):
+        for path in sorted((root / folder).glob("*.py")):
+            h.update(f"{folder}/{path.name}|{path.stat().st_size}|".encode())
+            h.update(path.read_bytes())
+    return h.hexdigest()[:16]
 
 
 def _cpu() -> tuple[str, list[str]]:
@@ -62,6 +77,7 @@ def capture() -> dict:
         "numpy": _version("numpy"),
         "pyarrow": _version("pyarrow"),
         "lesion": _version("lesion"),
+        "lesion_sources": source_digest(),
         "xla_flags": os.environ.get("XLA_FLAGS", ""),
         "jax_threefry_partitionable": bool(jax.config.jax_threefry_partitionable),
         "jax_default_matmul_precision": str(jax.config.jax_default_matmul_precision),

@@ -23,7 +23,6 @@ import os
 import pickle
 import tempfile
 import time
-from functools import cache
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -100,19 +99,6 @@ def _zero_knobs(knobs: dict) -> frozenset[str]:
     return frozenset(name for name, values in knobs.items() if not np.any(np.asarray(values)))
 
 
-@cache
-def _source_digest() -> str:
-    """SHA-256 over lesion's own Python sources: a stored program is only taken by the code that
-    built it."""
-    h = hashlib.sha256()
-    root = Path(__file__).resolve().parent.parent
-    for folder in ("compiler", "runtime"):
-        for path in sorted((root / folder).glob("*.py")):
-            h.update(f"{folder}/{path.name}|{path.stat().st_size}|".encode())
-            h.update(path.read_bytes())
-    return h.hexdigest()
-
-
 def _data_signature(dataset) -> tuple:
     """What a structure's programs know of its data: shapes, dtypes, task and class count (the
     rows themselves are arguments, so data of the same signature share the programs)."""
@@ -122,15 +108,15 @@ def _data_signature(dataset) -> tuple:
 
 def _program_path(group: Group, dataset, zero: frozenset[str], environment: dict) -> Path:
     """Where the compiled programs of a structure live in the compile cache. The name hashes
-    everything the programs are a function of: lesion's sources, the numerics environment, jax's
-    configuration, the structure, the lane width, the data's signature and the knobs that are zero
+    everything the programs are a function of: the numerics environment (lesion's sources among
+    them), jax's configuration, the structure, the lane width, the data's signature and the knobs that are zero
     in every lane."""
     import jax
 
     from runtime import environment as env
 
     config = {k: repr(v) for k, v in sorted(jax.config.values.items()) if "cache" not in k}
-    parts = [_source_digest(), env.fingerprint(environment), config, group.structure, group.lane_width,
+    parts = [env.fingerprint(environment), config, group.structure, group.lane_width,
              _data_signature(dataset), sorted(zero)]
     digest = hashlib.sha256(json.dumps(parts, sort_keys=True, default=str).encode()).hexdigest()
     return cache_dir() / "programs" / f"{digest}.pkl"

@@ -73,7 +73,7 @@ def test_a_damaged_entry_is_compiled_again_and_rewritten(tmp_path, tiny_spec, st
     assert entry.read_bytes() != b"not a program" and execute._load_programs(entry) is not None
 
 
-def test_the_entry_name_follows_sources_environment_width_and_zero_knobs(tmp_path, tiny_spec, monkeypatch):
+def test_the_entry_name_follows_sources_environment_width_and_zero_knobs(tmp_path, tiny_spec):
     loaded = load_study(tiny_spec(tmp_path, "ember", seeds=2, epochs=2))
     [group] = plan(loaded.variants, loaded.spec.study.seed_list)
     data = datasets_for([group], tmp_path, {})[group.group_id]
@@ -88,8 +88,7 @@ def test_the_entry_name_follows_sources_environment_width_and_zero_knobs(tmp_pat
     assert name(env=dict(env, xla_flags="--xla_cpu_max_isa=SSE4_2")) != base
     assert name(env=dict(env, jax="0.0.0")) != base
     assert name(zero=frozenset({"regularization.weight_decay"})) != base
-    monkeypatch.setattr(execute, "_source_digest", lambda: "edited sources")
-    assert name() != base
+    assert name(env=dict(env, lesion_sources="0" * 16)) != base  # an edited or upgraded lesion
 
 
 def test_replay_never_takes_a_stored_program(tmp_path, tiny_spec, store, monkeypatch):

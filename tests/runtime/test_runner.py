@@ -84,6 +84,25 @@ def test_resume_computes_nothing_when_complete(tiny_run):
     assert open_result_set(report.path).runs.column("finished_at").to_pylist() == rs.runs.column("finished_at").to_pylist()
 
 
+def test_runs_of_other_lesion_sources_are_recomputed_and_replay_names_the_change(tmp_path, tiny_spec, monkeypatch):
+    # lesion's own code decides bits as much as jax does (a new shuffle changes every run), so
+    # a result set is never completed with runs of another lesion
+    from runtime import environment
+    from runtime.replay import replay
+    loaded = load_study(tiny_spec(tmp_path, "kiln", seeds=2, epochs=2))
+    first = run_study(loaded, tmp_path / "r")
+    old = environment.source_digest()
+    monkeypatch.setattr(environment, "source_digest", lambda: "f" * 16)
+    again = run_study(loaded, tmp_path / "r")
+    assert again.computed == first.planned and again.reused == 0
+    assert set(open_result_set(again.path).runs.column("env_fingerprint").to_pylist()) == {
+        environment.fingerprint(environment.capture())}
+    monkeypatch.setattr(environment, "source_digest", lambda: old)
+    report = replay(again.path, everything=True)
+    assert f"lesion_sources: {'f' * 16} → {old}" in report.environment_changes
+    assert report.identical  # the same code in fact: the bits agree, and the change is named
+
+
 def test_a_run_in_a_wide_group_equals_it_alone_at_the_same_width(tmp_path, tiny_spec):
     # measured fact: bits depend on the lane width, not on neighbours — so a study of one run
     # executed at the big study's width reproduces it exactly
