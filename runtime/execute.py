@@ -33,6 +33,7 @@ import numpy as np
 from runtime.plan import Group
 
 __all__ = ["GroupResult", "LaneResult", "execute_group", "InProcess", "enable_compile_cache", "cache_dir",
+           "CacheError", "cache_limit_bytes",
            "BN_COLLAPSE_RATIO"]
 
 # Options of the init program's compile (its bits are a function of them, like of the code).
@@ -73,15 +74,33 @@ def cache_dir() -> Path:
     return Path(base) / "lesion" / "xla"
 
 
+class CacheError(Exception):
+    """The compile cache's setting is unusable (a user error: exit 2)."""
+
+
+def cache_limit_bytes() -> int:
+    """How much the stored programs may occupy: ``$LESION_CACHE_MAX_MB`` megabytes, else 2048."""
+    raw = os.environ.get("LESION_CACHE_MAX_MB", "").strip()
+    try:
+        mb = float(raw) if raw else 2048.0
+    except ValueError:
+        mb = -1.0
+    if not mb > 0 or mb == float("inf"):
+        raise CacheError(f"LESION_CACHE_MAX_MB={raw!r}: expected a positive number of megabytes "
+                         "for the compile cache (e.g. LESION_CACHE_MAX_MB=2048), or leave it unset")
+    return int(mb * 2**20)
+
+
 _cache_enabled = False
 
 
 def enable_compile_cache() -> None:
     """Let this process load and store compiled programs in :func:`cache_dir` (``lesion run`` and
-    cluster workers do; replay never does)."""
+    cluster workers do; replay never does). Checks the cache's size limit first."""
     global _cache_enabled
     import jax
 
+    cache_limit_bytes()
     # JAX's own persistent cache stays off: an executable it loaded from disk serializes into an
     # entry that fails when run in another process (measured: "Function … not found"), and the
     # program store below already skips more work (tracing and lowering too).
@@ -124,20 +143,27 @@ def _program_path(group: Group, dataset, zero: frozenset[str], environment: dict
 
 def _load_programs(path: Path):
     """The stored (init, epoch) executables, or None when absent or unreadable (then they are
-    compiled again and the entry rewritten)."""
+    compiled again and the entry rewritten). A loaded entry counts as just used."""
     from jax.experimental.serialize_executable import deserialize_and_load
 
     try:
         with open(path, "rb") as fh:
             stored = pickle.load(fh)
-        return tuple(deserialize_and_load(*entry) for entry in stored)
+        programs = tuple(deserialize_and_load(*entry) for entry in stored)
     except Exception:  # noqa: BLE001 - a damaged or foreign entry only costs a compile
         return None
+    try:
+        os.utime(path)
+    except OSError:
+        pass
+    return programs
 
 
 def _store_programs(path: Path, programs) -> None:
+    """Write an entry atomically, then drop the least recently used entries beyond the limit."""
     from jax.experimental.serialize_executable import serialize
 
+    tmp = None
     try:
         path.parent.mkdir(parents=True, exist_ok=True)
         blob = pickle.dumps([serialize(p) for p in programs], protocol=pickle.HIGHEST_PROTOCOL)
@@ -145,8 +171,39 @@ def _store_programs(path: Path, programs) -> None:
         with os.fdopen(fd, "wb") as fh:
             fh.write(blob)
         os.replace(tmp, path)
+        tmp = None
+        _prune(path.parent, cache_limit_bytes(), keep=path)
     except OSError:
         pass  # a cache that cannot be written only costs a compile next time
+    finally:
+        if tmp is not None:
+            try:
+                os.unlink(tmp)
+            except OSError:
+                pass
+
+
+def _prune(folder: Path, limit: int, keep: Path) -> None:
+    """Delete entries, least recently used first, until the folder holds at most ``limit`` bytes
+    (``keep``, the entry just written, stays even if it alone is larger)."""
+    entries = []
+    for entry in folder.glob("*.pkl"):
+        try:
+            st = entry.stat()
+        except OSError:
+            continue  # removed by another process meanwhile
+        entries.append((st.st_mtime, st.st_size, entry))
+    total = sum(size for _, size, _ in entries)
+    for _, size, entry in sorted(entries, key=lambda e: (e[0], e[2].name)):
+        if total <= limit:
+            break
+        if entry == keep:
+            continue
+        try:
+            entry.unlink()
+        except OSError:
+            continue
+        total -= size
 
 
 def _compiled(group: Group, dataset, knobs, seeds, reuse: bool, environment: dict):

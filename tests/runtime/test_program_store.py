@@ -110,3 +110,36 @@ def test_a_second_process_loads_the_stored_programs_with_the_same_bits(tmp_path,
         outs.append(done.stdout.strip().splitlines()[-1])
     assert len(list((tmp_path / "cache" / "programs").glob("*.pkl"))) == 1
     _assert_same_bits(*outs)
+
+
+def test_the_least_recently_used_entries_go_first_when_the_cache_is_over_its_limit(tmp_path):
+    folder = tmp_path / "programs"
+    folder.mkdir()
+    for i, name in enumerate("abcde"):
+        entry = folder / f"{name}.pkl"
+        entry.write_bytes(b"x" * 1000)
+        os.utime(entry, (1_000_000 + i, 1_000_000 + i))  # a is the least recently used
+    os.utime(folder / "b.pkl", (2_000_000, 2_000_000))  # b was just loaded
+    execute._prune(folder, limit=2500, keep=folder / "a.pkl")
+    assert sorted(p.name for p in folder.glob("*.pkl")) == ["a.pkl", "b.pkl"]  # a: just written
+
+
+def test_loading_an_entry_marks_it_used(tmp_path, tiny_spec, store):
+    loaded = load_study(tiny_spec(tmp_path, "ember", seeds=2, epochs=2))
+    run_study(loaded, tmp_path / "a")
+    [entry] = store.glob("*.pkl")
+    os.utime(entry, (1_000_000, 1_000_000))
+    assert execute._load_programs(entry) is not None
+    assert entry.stat().st_mtime > 1_000_000
+
+
+@pytest.mark.parametrize("value", ["abc", "0", "-5", "inf", "nan"])
+def test_an_unusable_cache_limit_is_a_one_line_error_before_anything_runs(tmp_path, tiny_spec, value):
+    spec = tiny_spec(tmp_path, "ember", seeds=2, epochs=2)
+    env = dict(os.environ, LESION_CACHE_DIR=str(tmp_path / "cache"), LESION_CACHE_MAX_MB=value)
+    done = subprocess.run([sys.executable, "-m", "runtime.cli", "run", str(spec), "--out", str(tmp_path / "r")],
+                          env=env, capture_output=True, text=True, timeout=300)
+    assert done.returncode == 2 and "Traceback" not in done.stderr
+    [line] = done.stderr.strip().splitlines()
+    assert f"LESION_CACHE_MAX_MB='{value}'" in line and "LESION_CACHE_MAX_MB=2048" in line
+    assert not (tmp_path / "r").exists()
