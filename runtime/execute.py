@@ -128,8 +128,8 @@ def _data_signature(dataset) -> tuple:
 def _program_path(group: Group, dataset, zero: frozenset[str], environment: dict) -> Path:
     """Where the compiled programs of a structure live in the compile cache. The name hashes
     everything the programs are a function of: the numerics environment (lesion's sources among
-    them), jax's configuration, the structure, the lane width, the data's signature and the knobs that are zero
-    in every lane."""
+    them), jax's configuration, the structure, the lane width, the data's signature and the knobs
+    that are zero in every lane."""
     import jax
 
     from runtime import environment as env
@@ -217,7 +217,8 @@ def _compiled(group: Group, dataset, knobs, seeds, reuse: bool, environment: dic
         return _programs[key] + (0.0,)
     program = compile_variant(group.runs[0].variant.spec, dataset, zero_knobs=zero)
     t0 = time.perf_counter()
-    x, y = jax.ShapeDtypeStruct(dataset.x.shape, dataset.x.dtype), jax.ShapeDtypeStruct(dataset.y.shape, dataset.y.dtype)
+    # Programs see only the data's shapes: the rows are arguments, put on the device per group.
+    x, y = (jax.ShapeDtypeStruct(a.shape, a.dtype) for a in (dataset.x, dataset.y))
     # With the compile cache on, the executables themselves are stored under a name derived
     # without tracing: a second invocation skips tracing and lowering too (JAX's own cache is
     # keyed by the lowered program, so it cannot).
