@@ -26,10 +26,11 @@ rate of 0 on activations (inverted or scaled) keeps every unit with scale 1, so 
 drawn — the same bits, without a threefry draw the size of every hidden activation per step.
 DropConnect keeps its masks: its per-example product is a different computation than ``x W``.
 
-Randomness: one root key per seed; fixed tags derive independent streams
-(``fold_in(root, tag)``): the split and the per-epoch shuffle (``fold_in(stream, epoch)``), both a
-:func:`permutation`; the initial weights (one draw, :func:`compiler.model.draw_weights`); and dropout (``fold_in(fold_in(stream, epoch), step)``). Two variants
-with the same seed and shapes therefore share split, initial weights and batch order.
+Randomness: one root key per seed; fixed tags derive independent streams (``fold_in(root, tag)``):
+the split and the per-epoch shuffle (``fold_in(stream, epoch)``), both a :func:`permutation`; the
+initial weights (one draw, :func:`compiler.model.draw_weights`); and dropout
+(``fold_in(fold_in(stream, epoch), step)``). Two variants with the same seed and shapes therefore
+share split, initial weights and batch order.
 
 Health is judged per epoch: if within an epoch the objective, a gradient, a parameter, a running
 statistic or a metric (e.g. the validation loss of huge but finite weights) is not finite, the

@@ -23,7 +23,8 @@ __all__ = ["capture", "numerics", "fingerprint", "differences", "source_digest"]
 _ISA_FLAGS = ("sse4_1", "sse4_2", "avx", "avx2", "fma", "f16c", "avx512f", "avx512bw", "avx512dq",
               "avx512vl", "avx512_vnni", "avx512_bf16", "amx_tile", "asimd", "sve")
 
-_NUMERICS_KEYS = ("lesion_sources", "python", "jax", "jaxlib", "optax", "numpy", "xla_flags", "jax_threefry_partitionable",
+_NUMERICS_KEYS = ("lesion_sources", "python", "jax", "jaxlib", "optax", "numpy", "xla_flags",
+                  "jax_threefry_partitionable",
                   "jax_default_matmul_precision", "jax_enable_x64", "cpu_model", "cpu_isa", "machine", "os")
 
 
