@@ -183,10 +183,21 @@ def _store_programs(path: Path, programs) -> None:
                 pass
 
 
+# A temporary file this old is a write that was killed, not one in progress in another process.
+_STALE_TMP_SECONDS = 3600
+
+
 def _prune(folder: Path, limit: int, keep: Path) -> None:
     """Delete entries, least recently used first, until the folder holds at most ``limit`` bytes
-    (``keep``, the entry just written, stays even if it alone is larger)."""
-    entries = []
+    (``keep``, the entry just written, stays even if it alone is larger), and the temporary files
+    of killed writes."""
+    entries, now = [], time.time()
+    for entry in folder.glob(".tmp-*"):
+        try:
+            if now - entry.stat().st_mtime > _STALE_TMP_SECONDS:
+                entry.unlink()
+        except OSError:
+            continue
     for entry in folder.glob("*.pkl"):
         try:
             st = entry.stat()

@@ -120,8 +120,12 @@ def test_the_least_recently_used_entries_go_first_when_the_cache_is_over_its_lim
         entry.write_bytes(b"x" * 1000)
         os.utime(entry, (1_000_000 + i, 1_000_000 + i))  # a is the least recently used
     os.utime(folder / "b.pkl", (2_000_000, 2_000_000))  # b was just loaded
+    (folder / ".tmp-killed").write_bytes(b"half an entry")       # a write killed long ago
+    os.utime(folder / ".tmp-killed", (1_000_000, 1_000_000))
+    (folder / ".tmp-writing").write_bytes(b"another process")   # a write in progress
     execute._prune(folder, limit=2500, keep=folder / "a.pkl")
     assert sorted(p.name for p in folder.glob("*.pkl")) == ["a.pkl", "b.pkl"]  # a: just written
+    assert sorted(p.name for p in folder.glob(".tmp-*")) == [".tmp-writing"]
 
 
 def test_loading_an_entry_marks_it_used(tmp_path, tiny_spec, store):
