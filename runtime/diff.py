@@ -41,10 +41,10 @@ from runtime.store import ResultSet, ResultSetError
 
 __all__ = ["DiffReport", "diff_result_sets", "diff_baseline", "diff_design", "DIFF_COLUMNS", "SEEDS_COLUMNS"]
 
-DIFF_COLUMNS = ["question", "contrast", "variant_a", "variant_b", "metric", "test", "n_a", "n_b", "mean_a",
-                "mean_b", "diff", "ci_level", "ci_low", "ci_high", "p", "p_adjusted", "p_sign_flip", "margin",
-                "effect_sd", "p_improve", "p_improve_low", "p_improve_high", "detectable", "seeds_needed",
-                "verdict"]
+DIFF_COLUMNS = ["variant_a", "variant_b", "metric", "test", "n_a", "n_b", "mean_a", "mean_b", "diff",
+                "ci_low", "ci_high", "p", "p_adjusted", "p_sign_flip", "verdict",
+                "question", "contrast", "ci_level", "margin", "effect_sd", "p_improve", "p_improve_low",
+                "p_improve_high", "detectable", "seeds_needed"]
 SEEDS_COLUMNS = ["question", "contrast", "metric", "n_a", "sd_diff", "ci_level", "margin", "detectable",
                  "seeds_needed"]
 

@@ -366,8 +366,11 @@ def power_paired(n: int, effect: float, sd: float, alpha: float) -> float:
     (as in Colas, Sigaud & Oudeyer 2018, "How many random seeds?", §3)."""
     df = n - 1
     crit = float(sps.t.ppf(1 - alpha / 2, df))
-    nc = effect * math.sqrt(n) / sd
-    return float(sps.nct.sf(crit, df, nc) + sps.nct.cdf(-crit, df, nc))
+    nc = abs(effect) * math.sqrt(n) / sd   # the power is symmetric in the sign of the effect
+    far = float(sps.nct.cdf(-crit, df, nc))
+    # scipy's noncentral t can return NaN deep in the far tail (seen at λ ≈ 19, df 2, where the true
+    # value is about 1e-24): there the term is 0 to double precision.
+    return float(sps.nct.sf(crit, df, nc)) + (0.0 if math.isnan(far) else far)
 
 
 def detectable_difference(n: int, sd: float, alpha: float, power: float = POWER) -> float:

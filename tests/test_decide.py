@@ -185,3 +185,12 @@ def test_false_verdict_rates_are_at_most_alpha(studies, slow):
     assert _within(family["better"] + family["worse"], 0.05, studies // 2), family
     if slow:   # with thousands of studies the t test's own size shows: near α, not far below
         assert null["better"] + null["worse"] > 0.05 - 3 * math.sqrt(0.05 * 0.95 / studies)
+
+
+def test_power_stays_defined_where_scipys_far_tail_is_not():
+    # scipy.stats.nct.cdf(-4.30, 2, 19.1) is NaN (true value ~1e-24): the power is still ~1 and the
+    # detectable difference still solvable (a pilot with 3 seeds and a tiny sd hit this)
+    assert power_paired(3, 0.011030100334448161, 0.001, 0.05) == pytest.approx(1.0, abs=1e-7)
+    d = detectable_difference(3, 0.001, 0.05)
+    ref = TTestPower().solve_power(effect_size=None, nobs=3, alpha=0.05, power=0.8, alternative="two-sided")
+    assert d == pytest.approx(ref * 0.001, rel=1e-5)
