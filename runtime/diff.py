@@ -293,7 +293,7 @@ def diff_design(rs: ResultSet, *, axis: str | None = None, metrics: list[str] | 
             cells_i, cells_j = [], []
             for combo in itertools.product(*(vals for _, vals in others)):
                 at = ", ".join(f"{o}={format_value(x)}" for (o, _), x in zip(others, combo))
-                ci, cj = _cell(keys, k, levels[i], combo), _cell(keys, k, levels[j], combo)
+                ci, cj = _cell(keys, {k: levels[i]}, combo), _cell(keys, {k: levels[j]}, combo)
                 cells_i.append(ci)
                 cells_j.append(cj)
                 for m in metrics:
@@ -316,7 +316,7 @@ def diff_design(rs: ResultSet, *, axis: str | None = None, metrics: list[str] | 
             rest = [(x, vals) for x, vals in axes if x not in (key, other)]
             items = []
             for m in metrics:
-                grid = [[averaged([_cell2(keys, (k, li), (o, lj), combo) for combo in
+                grid = [[averaged([_cell(keys, {k: li, o: lj}, combo) for combo in
                                    itertools.product(*(vals for _, vals in rest))], m)
                          for lj in other_levels] for li in levels]
                 items.append(({"contrast": f"{key} × {other}", "variant_a": None, "variant_b": None,
@@ -325,15 +325,10 @@ def diff_design(rs: ResultSet, *, axis: str | None = None, metrics: list[str] | 
     return _report(families, correction, alpha, margins, power, changes=[], same_study=True)
 
 
-def _cell(keys: list[str], k: int, level, combo: tuple) -> tuple:
+def _cell(keys: list[str], fixed: dict[int, object], combo: tuple) -> tuple:
+    """A grid cell: the axes at positions ``fixed`` set as given, the others from ``combo`` in order."""
     rest = iter(combo)
-    return tuple(level if i == k else next(rest) for i in range(len(keys)))
-
-
-def _cell2(keys: list[str], first: tuple[int, object], second: tuple[int, object], combo: tuple) -> tuple:
-    fixed = dict([first, second])
-    others = iter(combo)
-    return tuple(fixed[i] if i in fixed else next(others) for i in range(len(keys)))
+    return tuple(fixed[i] if i in fixed else next(rest) for i in range(len(keys)))
 
 
 def _interactions(question: str, items: list, correction: str, alpha: float) -> tuple[list[dict], list[str]]:

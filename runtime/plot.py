@@ -499,9 +499,10 @@ def plot_diff(rs_a: ResultSet, rs_b: ResultSet, metrics: list[str] | None = None
     used = list(dict.fromkeys(r["verdict"] for r in report.rows))
     handles = [Line2D([], [], color=VERDICT_COLOURS[v], marker="D", linewidth=2.2, label=v) for v in used]
     level = next((r["ci_level"] for r in report.rows if r["ci_level"] is not None), 1 - alpha)
+    dotted = "; dotted: ±margin" if any(r["margin"] is not None for r in report.rows) else ""
     _legend_below(fig, handles, 4, title=f"B − A and its {100 * level:.4g} % interval, the level at which the "
                                          f"adjusted p ({'Holm' if correction == 'holm' else 'Benjamini–Hochberg'}, "
-                                         f"α = {alpha:g}) decides; dotted: ±margin")
+                                         f"α = {alpha:g}) decides{dotted}")
     if report.same_study:
         spec = "identical studies (a reproducibility check)"
     else:
