@@ -562,6 +562,7 @@ def plot(
     baseline: str = typer.Option(None, "--baseline", help="arms: the variant to mark as the baseline "
                                  "(default: the one labelled 'base', if any)."),
     against: Path = typer.Option(None, "--against", help="Draw the diff from RESULT (A) to this result set (B)."),
+    margin: float = typer.Option(None, "--margin", help="With --against: the practical margin, as in diff."),
 ) -> None:
     """Draw a result set as a picture (PNG or SVG) and print the written path.
 
@@ -578,12 +579,14 @@ def plot(
     from runtime.plot import PlotError, default_path, plot_diff, plot as draw, save_figure  # imports matplotlib
     from runtime.store import open_result_set
 
+    if against is not None and baseline is not None:
+        raise UsageError("--baseline marks an arm of one result set; it does not apply with --against")
+    if against is None and margin is not None:
+        raise UsageError("--margin applies to a diff: give --against B")
     rs = open_result_set(result)
     try:
         if against is not None:
-            if baseline is not None:
-                raise UsageError("--baseline marks an arm of one result set; it does not apply with --against")
-            fig = plot_diff(rs, open_result_set(against), metrics=metric or None)
+            fig = plot_diff(rs, open_result_set(against), metrics=metric or None, margin=margin)
             target = out or rs.path / "plots" / f"diff-{Path(against).resolve().name}.png"
         else:
             fig = draw(rs, kind.value, metrics=metric or None, baseline=baseline)

@@ -456,12 +456,12 @@ def plot_grid(rs: ResultSet, metrics: list[str] | None = None) -> Figure:
 
 # ── diff ────────────────────────────────────────────────────────────────────────────────────────
 def plot_diff(rs_a: ResultSet, rs_b: ResultSet, metrics: list[str] | None = None,
-              correction: str = "holm", alpha: float = 0.05) -> Figure:
+              correction: str = "holm", alpha: float = 0.05, margin: float | None = None) -> Figure:
     """B − A per matched variant with the interval its verdict uses (the family's adjusted level, see
     ``runtime.stats.family_alpha``), coloured by the verdict of ``lesion diff``; ±margin dotted."""
     from runtime.diff import diff_result_sets
 
-    report = diff_result_sets(rs_a, rs_b, metrics=metrics, correction=correction, alpha=alpha)
+    report = diff_result_sets(rs_a, rs_b, metrics=metrics, correction=correction, alpha=alpha, margin=margin)
     if not report.rows:
         raise PlotError(f"{rs_a.path} and {rs_b.path}: no variant of one matches a variant of the other; "
                         f"nothing to compare (only in A: {len(report.only_a)}, only in B: {len(report.only_b)})")

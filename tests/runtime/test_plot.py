@@ -403,6 +403,19 @@ def test_cli_against_writes_the_diff(sets, tmp_path):
     assert out.stdout.strip() == str(target) and _svg_size(target)[0] > 0
 
 
+def test_against_with_a_margin_draws_it_and_colours_equivalent_rows(sets):
+    # a margin wider than any accuracy difference: every tested row is equivalent, and the two
+    # dotted lines stand at ±margin
+    fig = P.plot_diff(sets["grid"], sets["grid_b"], margin=0.9)
+    [ax] = fig.axes
+    dotted = sorted(l.get_xdata()[0] for l in ax.get_lines() if l.get_linestyle() == ":")
+    assert dotted == [-0.9, 0.9]
+    diamonds = [l for l in ax.get_lines() if (l.get_gid() or "").startswith("diff:")]
+    assert diamonds and {l.get_color() for l in diamonds} == {P.VERDICT_COLOURS["equivalent"]}
+    bad = CliRunner().invoke(app, ["plot", str(sets["grid"].path), "--margin", "0.1"])
+    assert bad.exit_code == 2 and "--against" in bad.stderr
+
+
 @pytest.mark.parametrize("args,message", [
     (["--kind", "grid"], "grid study over exactly two axes"),
     (["--metric", "val_accuracy"], "has no curves"),  # a classification metric in a regression study
