@@ -59,6 +59,8 @@ app = typer.Typer(
          "  lesion run specs/cold-chain.toml            # prints the result set's path last\n\n"
          "  lesion show results/cold-chain-<hash>\n\n"
          "  lesion replay results/cold-chain-<hash>\n\n"
+         "  lesion diff results/cold-chain-<hash> --axis normalization.kind --margin 0.005\n\n"
+         "  lesion seeds results/cold-chain-<hash> --margin 0.005   # plan seeds from a pilot\n\n"
          "  lesion diff results/A results/B --fail-on worse\n\n"
          "  lesion schema > lesion.schema.json",
     no_args_is_help=True,
