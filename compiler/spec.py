@@ -15,7 +15,7 @@ import posixpath
 import re
 from typing import Annotated, Literal, Union
 
-from pydantic import BaseModel, ConfigDict, Discriminator, Field, Tag, field_validator, model_validator
+from pydantic import BaseModel, ConfigDict, Discriminator, Field, Tag, field_validator, model_serializer, model_validator
 
 __all__ = [
     "Strict", "Study", "SyntheticData", "FileData", "Data", "NeuronBudget", "Model",
@@ -64,6 +64,18 @@ class Study(Strict):
     description: Annotated[str, Field(max_length=2000)] = ""
     seeds: Union[Annotated[int, Field(ge=1, le=10_000)], Annotated[list[Annotated[int, Field(ge=0, lt=2**31)]], Field(min_length=1, max_length=10_000)]] = 3
     metric: str = "val_accuracy"
+    # Differences inside ±margin (in the metric's units) do not matter: lesion diff can then call
+    # a comparison equivalent. Left out of the study's JSON while unset (see _without_unset_margin).
+    margin: Union[Positive, None] = None
+
+    @model_serializer(mode="wrap")
+    def _without_unset_margin(self, handler):
+        # The study hash covers the dumped study; a new optional key dumped as null would change
+        # the hash of every existing spec, and with it the folder its results are stored in.
+        data = handler(self)
+        if self.margin is None:
+            data.pop("margin", None)
+        return data
 
     @field_validator("seeds")
     @classmethod

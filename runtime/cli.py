@@ -59,6 +59,8 @@ app = typer.Typer(
          "  lesion run specs/cold-chain.toml            # prints the result set's path last\n\n"
          "  lesion show results/cold-chain-<hash>\n\n"
          "  lesion replay results/cold-chain-<hash>\n\n"
+         "  lesion diff results/cold-chain-<hash> --axis normalization.kind --margin 0.005\n\n"
+         "  lesion seeds results/cold-chain-<hash> --margin 0.005   # plan seeds from a pilot\n\n"
          "  lesion diff results/A results/B --fail-on worse\n\n"
          "  lesion schema > lesion.schema.json",
     no_args_is_help=True,
@@ -390,45 +392,49 @@ class Correction(str, Enum):
 @app.command()
 def diff(
     a: Path = typer.Argument(..., help="Result set A (the reference).", show_default=False),
-    b: Path = typer.Argument(None, help="Result set B (the change). Omit with --baseline.", show_default=False),
+    b: Path = typer.Argument(None, help="Result set B (the change). Omit to compare within A.", show_default=False),
     baseline: str = typer.Option(None, "--baseline", help="Compare every variant of A with this variant of A."),
+    axis: str = typer.Option(None, "--axis", help="Grid: ask only about this axis (its effect at each level of "
+                             "the others, on average, and its interaction with each other axis)."),
     metric: list[str] = typer.Option(None, "--metric", "-m", help="Metric(s) to compare (default: the study's)."),
+    margin: float = typer.Option(None, "--margin", help="Practical margin in the metric's units: differences "
+                                 "inside ±MARGIN do not matter (default: the spec's study.margin)."),
     correction: Correction = typer.Option(Correction.holm, "--correction",
                                           help="Multiple-comparison adjustment: holm (family-wise) or bh (false discovery rate)."),
     alpha: float = typer.Option(0.05, "--alpha", min=1e-6, max=0.5, help="Significance level of adjusted p-values."),
     format: Output = typer.Option(Output.table, "--format", "-f", help="table, json, csv or markdown."),
     fail_on: FailOn = typer.Option(FailOn.never, "--fail-on", help="'worse': exit 1 if any adjusted comparison is worse."),
 ) -> None:
-    """Compare two result sets (or every variant with a baseline) beyond seed noise.
+    """Decide, per question, whether a change is better, worse, equivalent within a margin, or not yet known.
 
-    Per matched variant and metric: n, means, B − A with a 95 % CI, p-value (paired t over common
-    seeds, else Welch), adjusted p-value and a verdict: better, worse, no detectable change.
+    Two result sets: B − A per matched variant. One result set: the comparisons its design asks
+    for (a grid: each axis at every level of the others, on average, and the interaction of two
+    axes; otherwise each variant vs base), or every variant vs --baseline. Each question is one
+    family: p-values adjusted together, intervals at the level the adjusted verdicts use.
 
     Examples:
 
+      lesion diff results/cold-chain-7da471c81b78 --axis normalization.kind --margin 0.01
+
       lesion diff results/cold-chain-7da471c81b78 results/cold-chain-0c2f5a9e1d44
 
-      lesion diff results/cold-chain-7da471c81b78 --baseline "normalization.kind=none, regularization.dropout.rate=0.0"
+      lesion diff A --baseline "normalization.kind=none, regularization.dropout.rate=0.0"
 
       lesion diff A B --format markdown --fail-on worse
     """
-    from runtime.diff import DIFF_COLUMNS, diff_baseline, diff_result_sets
+    from runtime.diff import DIFF_COLUMNS
     from runtime.formats import render
-    from runtime.store import open_result_set
 
-    if (b is None) == (baseline is None):
-        raise UsageError("give two result sets (lesion diff A B), or one with --baseline LABEL")
-    rs_a = open_result_set(a)
-    if baseline is not None:
-        report = diff_baseline(rs_a, baseline, metrics=metric or None, correction=correction.value, alpha=alpha)
-        title = f"each variant vs baseline '{baseline}'"
-    else:
-        report = diff_result_sets(rs_a, open_result_set(b), metrics=metric or None,
-                                  correction=correction.value, alpha=alpha)
-        title = f"B − A ({b.name} vs {a.name})"
-    title += f", p adjusted by {'Holm' if correction is Correction.holm else 'Benjamini–Hochberg'}"
+    if b is not None and (baseline is not None or axis is not None):
+        raise UsageError("--baseline and --axis compare within one result set: give A alone")
+    if baseline is not None and axis is not None:
+        raise UsageError("give --baseline or --axis, not both")
+    report = _decide(a, b, baseline, axis, metric, margin, correction, alpha, None)
+    scope = f"B − A ({b.name} vs {a.name})" if b is not None else a.name
+    method = "Holm" if correction is Correction.holm else "Benjamini–Hochberg"
     if format is Output.json:
-        typer.echo(render(report.rows, DIFF_COLUMNS + ["reason"], "json", title=title, extra=report.extra()))
+        typer.echo(render(report.rows, DIFF_COLUMNS + ["reason"], "json", title=f"{scope}, p adjusted by {method}",
+                          extra=report.extra()))
     else:
         if format in (Output.table, Output.markdown) and b is not None:
             lines = ["spec: identical studies (a reproducibility check)"] if report.same_study else \
@@ -438,31 +444,105 @@ def diff(
             if report.only_b:
                 lines.append("only in B: " + "; ".join(report.only_b))
             typer.echo("\n".join(lines if format is Output.table else [f"    {x}" if x.startswith("  ") else x for x in lines]) + "\n")
-        if format is Output.table:
-            rows, columns = _compact_diff(report.rows, baseline is not None)
+        if format is Output.csv:
+            typer.echo(render(report.rows, DIFF_COLUMNS, "csv"))
         else:
-            rows, columns = report.rows, DIFF_COLUMNS
-        typer.echo(render(rows, columns, format.value, title=title))
-        untested = [r for r in report.rows if r["verdict"] == "no test possible"]
-        if untested and format is Output.table:
-            typer.echo(f"{len(untested)} row(s): {untested[0]['reason']}")
+            for q in report.questions:
+                family = [r for r in report.rows if r["question"] == q]
+                rows, columns = _compact_diff(family, baseline is not None or b is None) if format is Output.table \
+                    else (family, DIFF_COLUMNS)
+                typer.echo(render(rows, columns, format.value, title=_family_title(q, family, method)) + "\n")
+        if format is Output.table:
+            untested = [r for r in report.rows if r["verdict"] == "no test possible"]
+            if untested:
+                typer.echo(f"{len(untested)} row(s): {untested[0]['reason']}")
+            for note in report.notes:
+                typer.echo(f"note: {note}")
     if fail_on is FailOn.worse and report.worse:
         raise typer.Exit(1)
 
 
-def _compact_diff(rows: list[dict], baseline: bool) -> tuple[list[dict], list[str]]:
-    """The diff for a terminal: one variant column, n as 'A/B', the interval in one cell."""
+def _decide(a, b, baseline, axis, metric, margin, correction, alpha, power):
+    from runtime.diff import diff_baseline, diff_design, diff_result_sets
+    from runtime.stats import POWER
+    from runtime.store import open_result_set
+
+    rs_a = open_result_set(a)
+    kw = dict(metrics=metric or None, correction=correction.value, alpha=alpha, margin=margin,
+              power=POWER if power is None else power)
+    if b is not None:
+        return diff_result_sets(rs_a, open_result_set(b), **kw)
+    if baseline is not None:
+        return diff_baseline(rs_a, baseline, **kw)
+    return diff_design(rs_a, axis=axis, **kw)
+
+
+def _family_title(question: str, rows: list[dict], method: str) -> str:
+    """The question, the size of its family, the adjustment and the level of its intervals."""
+    level = next((r["ci_level"] for r in rows if r.get("ci_level") is not None), None)
+    text = f"{question} — {len(rows)} comparison{'s' if len(rows) != 1 else ''}, p adjusted by {method}"
+    if level is not None:
+        text += f"; intervals at {100 * level:.4g} %, the level the verdicts use"
+    margins = {r.get("margin") for r in rows} - {None}
+    if margins:
+        text += f"; margin ±{', ±'.join(map(str, sorted(margins)))}"
+    return text
+
+
+def _compact_diff(rows: list[dict], within: bool) -> tuple[list[dict], list[str]]:
+    """The diff for a terminal: one variant column, n as 'A/B', the interval in one cell; seeds needed
+    only where the verdict is still open."""
     from runtime.formats import fmt_number
 
     out = []
     for r in rows:
         same = r["variant_a"] == r["variant_b"]
-        variant = r["variant_b"] if baseline or same else f"{r['variant_a']} → {r['variant_b']}"
-        ci = "" if r["ci_low"] is None else f"[{fmt_number(r['ci_low'])}, {fmt_number(r['ci_high'])}]"
+        variant = r["contrast"] or (r["variant_b"] if within or same else f"{r['variant_a']} → {r['variant_b']}")
+        ci = "" if r.get("ci_low") is None else f"[{fmt_number(r['ci_low'])}, {fmt_number(r['ci_high'])}]"
+        improve = "" if r.get("p_improve") is None else \
+            f"{fmt_number(r['p_improve'])} [{fmt_number(r['p_improve_low'])}, {fmt_number(r['p_improve_high'])}]"
+        open_ = r["verdict"] in ("inconclusive", "no detectable change")
         out.append({"variant": variant, "metric": r["metric"], "test": r["test"], "n": f"{r['n_a']}/{r['n_b']}",
-                    "A": r["mean_a"], "B": r["mean_b"], "B − A": r["diff"], "95% CI": ci,
-                    "p": r["p"], "p adj": r["p_adjusted"], "verdict": r["verdict"]})
-    return out, ["variant", "metric", "test", "n", "A", "B", "B − A", "95% CI", "p", "p adj", "verdict"]
+                    "A": r.get("mean_a"), "B": r.get("mean_b"), "B − A": r.get("diff"), "CI": ci,
+                    "p": r["p"], "p adj": r["p_adjusted"], "p flip": r.get("p_sign_flip"),
+                    "P(B better)": improve, "B − A in sd": r.get("effect_sd"), "detectable": r.get("detectable"),
+                    "seeds needed": r.get("seeds_needed") if open_ else None, "verdict": r["verdict"]})
+    return out, ["variant", "metric", "test", "n", "A", "B", "B − A", "CI", "p", "p adj", "p flip", "P(B better)",
+                 "B − A in sd", "detectable", "seeds needed", "verdict"]
+
+
+@app.command()
+def seeds(
+    pilot: Path = typer.Argument(..., help="A pilot result set written by 'lesion run'.", show_default=False),
+    margin: float = typer.Option(None, "--margin", help="Practical margin in the metric's units "
+                                 "(default: the spec's study.margin)."),
+    axis: str = typer.Option(None, "--axis", help="Grid: plan only the comparisons of this axis."),
+    baseline: str = typer.Option(None, "--baseline", help="Plan every variant vs this variant."),
+    metric: str = typer.Option(None, "--metric", "-m", help="Metric to plan for (default: the study's)."),
+    power: float = typer.Option(0.8, "--power", min=0.5, max=0.999, help="Chance of reaching a decision."),
+    correction: Correction = typer.Option(Correction.holm, "--correction", help="holm or bh, as in diff."),
+    alpha: float = typer.Option(0.05, "--alpha", min=1e-6, max=0.5, help="Significance level, as in diff."),
+    format: Output = typer.Option(Output.table, "--format", "-f", help="table, json, csv or markdown."),
+) -> None:
+    """Plan seeds from a pilot: per comparison, the smallest difference its seeds detect and the
+    seeds a decision at the margin needs (noncentral t, from the pilot's paired sd).
+
+    Examples:
+
+      lesion seeds results/cold-chain-7da471c81b78 --axis normalization.kind --margin 0.005
+    """
+    from runtime.diff import SEEDS_COLUMNS
+    from runtime.formats import render
+
+    if baseline is not None and axis is not None:
+        raise UsageError("give --baseline or --axis, not both")
+    report = _decide(pilot, None, baseline, axis, [metric] if metric else None, margin, correction, alpha, power)
+    rows = [r for r in report.rows if r["test"] == "paired"]
+    if not any(r["margin"] is not None for r in rows):
+        raise UsageError("seeds needs a practical margin: give --margin D (in the metric's units) or set study.margin")
+    title = (f"{pilot.name}: seeds for a decision at power {power:g} (a difference of ±margin called better/worse, "
+             "none called equivalent), from the pilot's paired sd")
+    typer.echo(render(rows, SEEDS_COLUMNS, format.value, title=title))
 
 
 class PlotKind(str, Enum):
@@ -484,6 +564,7 @@ def plot(
     baseline: str = typer.Option(None, "--baseline", help="arms: the variant to mark as the baseline "
                                  "(default: the one labelled 'base', if any)."),
     against: Path = typer.Option(None, "--against", help="Draw the diff from RESULT (A) to this result set (B)."),
+    margin: float = typer.Option(None, "--margin", help="With --against: the practical margin, as in diff."),
 ) -> None:
     """Draw a result set as a picture (PNG or SVG) and print the written path.
 
@@ -500,12 +581,14 @@ def plot(
     from runtime.plot import PlotError, default_path, plot_diff, plot as draw, save_figure  # imports matplotlib
     from runtime.store import open_result_set
 
+    if against is not None and baseline is not None:
+        raise UsageError("--baseline marks an arm of one result set; it does not apply with --against")
+    if against is None and margin is not None:
+        raise UsageError("--margin applies to a diff: give --against B")
     rs = open_result_set(result)
     try:
         if against is not None:
-            if baseline is not None:
-                raise UsageError("--baseline marks an arm of one result set; it does not apply with --against")
-            fig = plot_diff(rs, open_result_set(against), metrics=metric or None)
+            fig = plot_diff(rs, open_result_set(against), metrics=metric or None, margin=margin)
             target = out or rs.path / "plots" / f"diff-{Path(against).resolve().name}.png"
         else:
             fig = draw(rs, kind.value, metrics=metric or None, baseline=baseline)

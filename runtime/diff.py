@@ -9,26 +9,44 @@
    by default, or Benjamini–Hochberg) and each row gets a verdict in the metric's direction.
 
 With ``baseline`` and one result set, every variant is compared with the baseline variant of the
-same study (seeds shared, so paired).
+same study (seeds shared, so paired). With one result set and no baseline the comparisons follow
+the study's design (:func:`diff_design`): for a grid, per axis its simple effects (each pair of
+its levels within every combination of the other axes), its main effect (the same pairs, each
+seed's values averaged over the other axes) and, for two crossed axes, their interaction; for one
+change at a time or a list, each variant against the base.
+
+Each *question* is one family: its p-values are adjusted together, its intervals are drawn at the
+level α* that agrees with the adjusted p-values (``runtime.stats.family_alpha``), and each row's
+verdict is read off that interval (``runtime.stats.decide``), with an optional practical margin.
 """
 
 from __future__ import annotations
 
+import itertools
+import math
 import re
 from dataclasses import dataclass, field
 
+import numpy as np
+
 from compiler.errors import SpecError
+from compiler.expand import format_value
 from compiler.hashing import variant_payload
 from compiler.loader import load_text
 from compiler.spec import METRICS
-from runtime.specdiff import Change, match_variants, spec_diff
-from runtime.stats import adjust, compare, verdict
+from runtime.specdiff import Change, canonical_leaf, match_variants, spec_diff
+from runtime.stats import (POWER, Comparison, adjust, compare, decide, detectable_difference, family_alpha,
+                           interaction_test, interval, seeds_needed)
 from runtime.store import ResultSet, ResultSetError
 
-__all__ = ["DiffReport", "diff_result_sets", "diff_baseline", "DIFF_COLUMNS"]
+__all__ = ["DiffReport", "diff_result_sets", "diff_baseline", "diff_design", "DIFF_COLUMNS", "SEEDS_COLUMNS"]
 
 DIFF_COLUMNS = ["variant_a", "variant_b", "metric", "test", "n_a", "n_b", "mean_a", "mean_b", "diff",
-                "ci_low", "ci_high", "p", "p_adjusted", "p_sign_flip", "verdict"]
+                "ci_low", "ci_high", "p", "p_adjusted", "p_sign_flip", "verdict",
+                "question", "contrast", "ci_level", "margin", "effect_sd", "p_improve", "p_improve_low",
+                "p_improve_high", "detectable", "seeds_needed"]
+SEEDS_COLUMNS = ["question", "contrast", "metric", "n_a", "sd_diff", "ci_level", "margin", "detectable",
+                 "seeds_needed"]
 
 
 @dataclass
@@ -39,6 +57,8 @@ class DiffReport:
     only_b: list[str] = field(default_factory=list)
     correction: str = "holm"
     same_study: bool = False
+    questions: list[str] = field(default_factory=list)
+    notes: list[str] = field(default_factory=list)
 
     @property
     def worse(self) -> int:
@@ -49,16 +69,21 @@ class DiffReport:
             "spec_changes": [c.as_dict() for c in self.changes],
             "identical_studies": self.same_study,
             "unmatched_a": self.only_a, "unmatched_b": self.only_b,
-            "correction": self.correction,
+            "correction": self.correction, "questions": self.questions, "notes": self.notes,
         }
 
 
-def _variants(rs: ResultSet) -> list[dict]:
+def _loaded(rs: ResultSet):
     try:
-        loaded = load_text(rs.meta["spec_source"], rs.meta["spec_path"] or str(rs.path))
+        return load_text(rs.meta["spec_source"], rs.meta["spec_path"] or str(rs.path))
     except SpecError as err:
         raise ResultSetError(f"{rs.path}: its stored spec does not load: {err.problems[0].render()}") from None
-    return [{"label": v.label, "hash": v.hash, "payload": variant_payload(v.spec)} for v in loaded.variants]
+
+
+def _variants(rs: ResultSet) -> list[dict]:
+    loaded = _loaded(rs)
+    return [{"label": v.label, "hash": v.hash, "payload": variant_payload(v.spec), "changes": v.changes}
+            for v in loaded.variants]
 
 
 def _values(rs: ResultSet, cols: dict, variant_hash: str, metric: str) -> dict[int, float | None]:
@@ -80,23 +105,88 @@ def _metrics(rs: ResultSet, metrics: list[str] | None) -> list[str]:
     return metrics
 
 
-def _rows(pairs, rs_a, rs_b, metrics, correction, alpha) -> list[dict]:
-    rows, comps = [], []
+def _columns(rs_a: ResultSet, rs_b: ResultSet) -> tuple[dict, dict]:
     cols_a = rs_a.runs.to_pydict()
-    cols_b = cols_a if rs_b is rs_a else rs_b.runs.to_pydict()
-    for a, b in pairs:
-        for m in metrics:
-            c = compare(_values(rs_a, cols_a, a["hash"], m), _values(rs_b, cols_b, b["hash"], m))
-            comps.append((a, b, m, c))
-    adjusted = adjust([c.p_value for *_, c in comps], method=correction)
-    for (a, b, m, c), p_adj in zip(comps, adjusted):
+    return cols_a, (cols_a if rs_b is rs_a else rs_b.runs.to_pydict())
+
+
+def _pair_rows(pairs, rs_a, rs_b, metrics) -> list[tuple[dict, dict]]:
+    """(row start, arms) per pair of variants and metric: arms are the two {seed: value} maps."""
+    cols_a, cols_b = _columns(rs_a, rs_b)
+    return [({"variant_a": a["label"], "variant_b": b["label"], "metric": m},
+             (_values(rs_a, cols_a, a["hash"], m), _values(rs_b, cols_b, b["hash"], m)))
+            for a, b in pairs for m in metrics]
+
+
+def _judge(question: str, items: list[tuple[dict, tuple[dict, dict]]], correction: str, alpha: float,
+           margins: dict[str, float | None], power: float) -> tuple[list[dict], list[str]]:
+    """One family: compare each item's arms, adjust the family's p-values, draw every interval at
+    the family's level α* and read each verdict off its interval. Returns (rows, notes)."""
+    comps = [compare(*arms) for _, arms in items]
+    pvals = [c.p_value for c in comps]
+    adjusted = adjust(pvals, method=correction)
+    level = family_alpha(pvals, alpha, correction)
+    rows, notes = [], []
+    for (start, _), c, p_adj in zip(items, comps, adjusted):
+        m = start["metric"]
+        margin = margins.get(m)
+        lo, hi = interval(c, level)
+        # the probability of improvement is P(B better than A): for a metric to minimise, B − A < 0
+        flip = METRICS[m] == "min"
+        imp = [1 - x for x in (c.improvement, c.improvement_high, c.improvement_low)] if flip else \
+            [c.improvement, c.improvement_low, c.improvement_high]
         rows.append({
-            "variant_a": a["label"], "variant_b": b["label"], "metric": m, "test": c.test,
+            "question": question, "contrast": start.get("contrast"), **start, "test": c.test,
             "n_a": c.n_a, "n_b": c.n_b, "mean_a": c.mean_a, "mean_b": c.mean_b, "diff": c.diff,
-            "ci_low": c.ci_low, "ci_high": c.ci_high, "p": c.p_value, "p_adjusted": p_adj,
-            "p_sign_flip": c.p_permutation, "verdict": verdict(c, p_adj, METRICS[m], alpha), "reason": c.reason,
+            "ci_level": 1 - level, "ci_low": lo, "ci_high": hi, "p": c.p_value, "p_adjusted": p_adj,
+            "p_sign_flip": c.p_permutation, "margin": margin,
+            "effect_sd": c.diff / c.sd_diff if c.sd_diff > 0 else math.nan,
+            "p_improve": imp[0], "p_improve_low": imp[1], "p_improve_high": imp[2],
+            "sd_diff": c.sd_diff, **_planning(c, level, margin, power),
+            "verdict": decide(lo, hi, METRICS[m], margin), "reason": c.reason,
         })
-    return rows
+    paired = [c.n_a for c in comps if c.test == "paired"]
+    if paired and 2 / 2 ** min(paired) > level:
+        n = min(paired)
+        notes.append(f"{question}: with {n} seeds the exact sign-flip p cannot go below 2/2^{n} = "
+                     f"{2 / 2 ** n:.4g}, above the family's level {level:.4g}: it cannot confirm any verdict here")
+    return rows, notes
+
+
+def _planning(c: Comparison, level: float, margin: float | None, power: float) -> dict:
+    """Smallest difference detectable with the seeds present, and seeds for a decision at the margin,
+    both at the family's level and the given power, from the observed sd of the paired differences."""
+    if c.test != "paired":
+        return {"detectable": math.nan, "seeds_needed": math.nan}
+    need = seeds_needed(c.sd_diff, margin, level, power) if margin is not None else math.nan
+    return {"detectable": detectable_difference(c.n_a, c.sd_diff, level, power),
+            "seeds_needed": need if not math.isfinite(need) else int(need)}
+
+
+def _margins(rs: ResultSet, metrics: list[str], margin: float | None) -> dict[str, float | None]:
+    """A margin is in one metric's units: ``--margin`` for the one metric compared, else the spec's
+    ``study.margin`` for its headline metric."""
+    if margin is not None:
+        if len(metrics) > 1:
+            raise ResultSetError("--margin is in the units of one metric: give a single --metric with it")
+        if not (margin > 0 and math.isfinite(margin)):
+            raise ResultSetError(f"--margin {margin}: a practical margin must be a positive number")
+        return {metrics[0]: margin}
+    spec_margin = rs.tree["study"].get("margin")
+    return {m: (spec_margin if m == rs.tree["study"]["metric"] else None) for m in metrics}
+
+
+def _report(families, correction, alpha, margins, power, **kw) -> DiffReport:
+    rows, notes, questions = [], [], []
+    for question, kind, items in families:
+        if not items:
+            continue
+        got, more = _judge(question, items, correction, alpha, margins, power) if kind == "contrasts" else \
+            _interactions(question, items, correction, alpha)
+        rows += got
+        notes += more
+        questions.append(question)
+    return DiffReport(rows=rows, questions=questions, notes=notes, correction=correction, **kw)
 
 
 def _ignored_keys(changes: list[Change], a_tree: dict, b_tree: dict) -> set[str]:
@@ -118,23 +208,150 @@ def _ignored_keys(changes: list[Change], a_tree: dict, b_tree: dict) -> set[str]
 
 
 def diff_result_sets(rs_a: ResultSet, rs_b: ResultSet, *, metrics: list[str] | None = None,
-                     correction: str = "holm", alpha: float = 0.05) -> DiffReport:
+                     correction: str = "holm", alpha: float = 0.05, margin: float | None = None,
+                     power: float = POWER) -> DiffReport:
     changes = spec_diff(rs_a.meta["canonical_json"], rs_b.meta["canonical_json"])
     va, vb = _variants(rs_a), _variants(rs_b)
     ignored = _ignored_keys(changes, rs_a.tree, rs_b.tree)
     pairs, only_a, only_b = match_variants(va, vb, ignored)
-    rows = _rows([(p.a, p.b) for p in pairs], rs_a, rs_b, _metrics(rs_a, metrics), correction, alpha)
-    return DiffReport(changes, rows, [v["label"] for v in only_a], [v["label"] for v in only_b], correction,
-                      same_study=not changes)
+    metrics = _metrics(rs_a, metrics)
+    items = _pair_rows([(p.a, p.b) for p in pairs], rs_a, rs_b, metrics)
+    return _report([("B − A for each matched variant", "contrasts", items)], correction, alpha,
+                   _margins(rs_a, metrics, margin), power, changes=changes,
+                   only_a=[v["label"] for v in only_a], only_b=[v["label"] for v in only_b], same_study=not changes)
 
 
 def diff_baseline(rs: ResultSet, baseline: str, *, metrics: list[str] | None = None,
-                  correction: str = "holm", alpha: float = 0.05) -> DiffReport:
+                  correction: str = "holm", alpha: float = 0.05, margin: float | None = None,
+                  power: float = POWER) -> DiffReport:
     variants = _variants(rs)
     base = [v for v in variants if v["label"] == baseline]
     if not base:
         raise ResultSetError(f"--baseline {baseline!r}: no such variant (labels: "
                              f"{', '.join(v['label'] for v in variants)})")
     pairs = [(base[0], v) for v in variants if v is not base[0]]
-    rows = _rows(pairs, rs, rs, _metrics(rs, metrics), correction, alpha)
-    return DiffReport([], rows, correction=correction, same_study=True)
+    metrics = _metrics(rs, metrics)
+    items = _pair_rows(pairs, rs, rs, metrics)
+    return _report([(f"each variant vs '{baseline}'", "contrasts", items)], correction, alpha,
+                   _margins(rs, metrics, margin), power, changes=[], same_study=True)
+
+
+def diff_design(rs: ResultSet, *, axis: str | None = None, metrics: list[str] | None = None,
+                correction: str = "holm", alpha: float = 0.05, margin: float | None = None,
+                power: float = POWER) -> DiffReport:
+    """The comparisons a study's design asks for, one family per question (see the module doc).
+
+    For a grid, per axis K (or only ``axis``): its *simple effects* — every pair of K's levels
+    (B the later level in the axis) within each combination of the other axes; its *main effect* —
+    the same pairs over each seed's mean across the other axes' combinations (seeds with a diverged
+    run among them are left out); and for each other axis L the K × L interaction
+    (:func:`runtime.stats.interaction_test`, seeds as subjects, other axes averaged). One change
+    at a time and lists compare each variant with ``base``.
+    """
+    ablation = rs.tree["ablation"]
+    if ablation["mode"] != "grid":
+        if axis is not None:
+            raise ResultSetError(f"--axis applies to a grid; this study's ablation is {ablation['mode']!r}")
+        labels = [v["label"] for v in _variants(rs)]
+        if "base" not in labels:
+            raise ResultSetError("this study has no 'base' variant to compare with: name the reference with "
+                                 f"--baseline LABEL (labels: {', '.join(labels)})")
+        return diff_baseline(rs, "base", metrics=metrics, correction=correction, alpha=alpha, margin=margin,
+                             power=power)
+    # the axes as written (0.0 stays 0.0, as in the labels), not as canonical JSON
+    axes = [(a.key, list(a.values)) for a in _loaded(rs).spec.ablation.axis]
+    keys = [k for k, _ in axes]
+    if axis is not None and axis not in keys:
+        raise ResultSetError(f"--axis {axis!r}: not an axis of this grid (axes: {', '.join(keys)})")
+    metrics = _metrics(rs, metrics)
+    margins = _margins(rs, metrics, margin)
+    variants = {tuple(canonical_leaf(v["changes"].get(k)) for k in keys): v for v in _variants(rs)}
+    cols, _ = _columns(rs, rs)
+    values = {}
+
+    def arm(cell: tuple, m: str) -> dict:
+        v = variants[tuple(canonical_leaf(x) for x in cell)]
+        if (v["hash"], m) not in values:
+            values[v["hash"], m] = _values(rs, cols, v["hash"], m)
+        return values[v["hash"], m]
+
+    def averaged(cells: list[tuple], m: str) -> dict:
+        per = [arm(c, m) for c in cells]
+        seeds = set.intersection(*(set(p) for p in per))
+        return {s: (math.nan if any(p[s] is None for p in per) else float(np.mean([p[s] for p in per])))
+                for s in sorted(seeds)}
+
+    families = []
+    for k, (key, levels) in enumerate(axes):
+        if axis is not None and key != axis:
+            continue
+        others = [(o, vals) for o, vals in axes if o != key]
+        other_text = ", ".join(o for o, _ in others)
+        simple, main = [], []
+        for i, j in itertools.combinations(range(len(levels)), 2):
+            step = f"{format_value(levels[i])} → {format_value(levels[j])}"   # the question names the axis
+            cells_i, cells_j = [], []
+            for combo in itertools.product(*(vals for _, vals in others)):
+                at = ", ".join(f"{o}={format_value(x)}" for (o, _), x in zip(others, combo))
+                ci, cj = _cell(keys, {k: levels[i]}, combo), _cell(keys, {k: levels[j]}, combo)
+                cells_i.append(ci)
+                cells_j.append(cj)
+                for m in metrics:
+                    simple.append(({"contrast": f"{step} at {at}" if at else step,
+                                    "variant_a": variants[tuple(map(canonical_leaf, ci))]["label"],
+                                    "variant_b": variants[tuple(map(canonical_leaf, cj))]["label"], "metric": m},
+                                   (arm(ci, m), arm(cj, m))))
+            if others:
+                for m in metrics:
+                    main.append(({"contrast": step, "variant_a": None,
+                                  "variant_b": None, "metric": m}, (averaged(cells_i, m), averaged(cells_j, m))))
+        if others:
+            families.append((f"does {key} matter at each {other_text}?", "contrasts", simple))
+            families.append((f"does {key} matter on average over {other_text}?", "contrasts", main))
+        else:
+            families.append((f"does {key} matter?", "contrasts", simple))
+        for o, (other, other_levels) in enumerate(axes):
+            if o == k or (axis is None and o < k):
+                continue
+            rest = [(x, vals) for x, vals in axes if x not in (key, other)]
+            items = []
+            for m in metrics:
+                grid = [[averaged([_cell(keys, {k: li, o: lj}, combo) for combo in
+                                   itertools.product(*(vals for _, vals in rest))], m)
+                         for lj in other_levels] for li in levels]
+                items.append(({"contrast": f"{key} × {other}", "variant_a": None, "variant_b": None,
+                               "metric": m}, grid))
+            families.append((f"does the effect of {key} depend on {other}?", "interaction", items))
+    return _report(families, correction, alpha, margins, power, changes=[], same_study=True)
+
+
+def _cell(keys: list[str], fixed: dict[int, object], combo: tuple) -> tuple:
+    """A grid cell: the axes at positions ``fixed`` set as given, the others from ``combo`` in order."""
+    rest = iter(combo)
+    return tuple(fixed[i] if i in fixed else next(rest) for i in range(len(keys)))
+
+
+def _interactions(question: str, items: list, correction: str, alpha: float) -> tuple[list[dict], list[str]]:
+    """The interaction family: one repeated-measures F test per axis pair and metric, over the seeds
+    complete in every cell, adjusted together; its verdict has no direction and no margin (an F test
+    says only whether the effect of one axis changes with the other)."""
+    rows, tests = [], []
+    for start, grid in items:
+        seeds = sorted(set.intersection(*(set(cell) for row in grid for cell in row)))
+        y = np.array([[[cell[s] for cell in row] for row in grid] for s in seeds], dtype=float).reshape(
+            len(seeds), len(grid), len(grid[0]))
+        y = y[np.all(np.isfinite(y), axis=(1, 2))]
+        if len(y) >= 2:
+            f, df1, df2, p = interaction_test(y)
+            reason = (f"two-way repeated-measures F = {f:.4g} on ({df1:g}, {df2:g}) df over {len(y)} seeds "
+                      "complete in every cell, sphericity assumed")
+        else:
+            f, p, reason = math.nan, math.nan, "no test possible: fewer than 2 seeds complete in every cell"
+        tests.append((start, len(y), p, reason))
+    adjusted = adjust([p for *_, p, _ in tests], method=correction)
+    for (start, n, p, reason), p_adj in zip(tests, adjusted):
+        verdict = "no test possible" if math.isnan(p_adj) else \
+            "interacts" if p_adj <= alpha else "no detectable interaction"
+        rows.append({"question": question, **start, "test": "rm-anova", "n_a": n, "n_b": n, "p": p,
+                     "p_adjusted": p_adj, "verdict": verdict, "reason": reason})
+    return rows, []

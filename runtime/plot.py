@@ -64,8 +64,8 @@ MARKERS = ("o", "s", "^", "D", "v", "P", "X", "<", ">", "h")
 # Cream to deep blue, CIELAB lightness falling monotonically: a cell's darkness reads as its rank.
 SEQUENTIAL = LinearSegmentedColormap.from_list(
     "lesion-depth", ["#f5f2e7", "#b9dcc9", "#5fa8a3", "#2f7797", "#0c4a78", "#10233f"])
-VERDICT_COLOURS = {"better": PALETTE[2], "worse": PALETTE[3], "no detectable change": PALETTE[9],
-                   "no test possible": "#9a9a9a"}
+VERDICT_COLOURS = {"better": PALETTE[2], "worse": PALETTE[3], "equivalent": PALETTE[0],
+                   "inconclusive": PALETTE[9], "no detectable change": PALETTE[9], "no test possible": "#9a9a9a"}
 KINDS = ("curves", "arms", "grid")
 DPI = 150
 LOG_SPAN = 30.0
@@ -456,11 +456,12 @@ def plot_grid(rs: ResultSet, metrics: list[str] | None = None) -> Figure:
 
 # ── diff ────────────────────────────────────────────────────────────────────────────────────────
 def plot_diff(rs_a: ResultSet, rs_b: ResultSet, metrics: list[str] | None = None,
-              correction: str = "holm", alpha: float = 0.05) -> Figure:
-    """B − A per matched variant with its 95 % interval, coloured by the verdict of ``lesion diff``."""
+              correction: str = "holm", alpha: float = 0.05, margin: float | None = None) -> Figure:
+    """B − A per matched variant with the interval its verdict uses (the family's adjusted level, see
+    ``runtime.stats.family_alpha``), coloured by the verdict of ``lesion diff``; ±margin dotted."""
     from runtime.diff import diff_result_sets
 
-    report = diff_result_sets(rs_a, rs_b, metrics=metrics, correction=correction, alpha=alpha)
+    report = diff_result_sets(rs_a, rs_b, metrics=metrics, correction=correction, alpha=alpha, margin=margin)
     if not report.rows:
         raise PlotError(f"{rs_a.path} and {rs_b.path}: no variant of one matches a variant of the other; "
                         f"nothing to compare (only in A: {len(report.only_a)}, only in B: {len(report.only_b)})")
@@ -471,6 +472,9 @@ def plot_diff(rs_a: ResultSet, rs_b: ResultSet, metrics: list[str] | None = None
     axes = fig.subplots(1, len(metrics), squeeze=False, sharey=True)[0]
     for ax, m in zip(axes, metrics):
         ax.axvline(0.0, color="black", linewidth=0.8)
+        margin = next((r["margin"] for r in report.rows if r["metric"] == m and r["margin"] is not None), None)
+        for edge in (() if margin is None else (-margin, margin)):
+            ax.axvline(edge, color="black", linewidth=0.8, linestyle=":")
         for k, (a, b) in enumerate(pairs):
             y = len(pairs) - 1 - k
             row = next(r for r in report.rows if r["metric"] == m and (r["variant_a"], r["variant_b"]) == (a, b))
@@ -494,8 +498,11 @@ def plot_diff(rs_a: ResultSet, rs_b: ResultSet, metrics: list[str] | None = None
     axes[0].set_yticks([len(pairs) - 1 - k for k in range(len(pairs))], ticks, fontsize=8.5)
     used = list(dict.fromkeys(r["verdict"] for r in report.rows))
     handles = [Line2D([], [], color=VERDICT_COLOURS[v], marker="D", linewidth=2.2, label=v) for v in used]
-    _legend_below(fig, handles, 4, title="B − A and its 95 % interval; verdict at the adjusted level "
-                                         f"α = {alpha:g} ({'Holm' if correction == 'holm' else 'Benjamini–Hochberg'})")
+    level = next((r["ci_level"] for r in report.rows if r["ci_level"] is not None), 1 - alpha)
+    dotted = "; dotted: ±margin" if any(r["margin"] is not None for r in report.rows) else ""
+    _legend_below(fig, handles, 4, title=f"B − A and its {100 * level:.4g} % interval, the level at which the "
+                                         f"adjusted p ({'Holm' if correction == 'holm' else 'Benjamini–Hochberg'}, "
+                                         f"α = {alpha:g}) decides{dotted}")
     if report.same_study:
         spec = "identical studies (a reproducibility check)"
     else:

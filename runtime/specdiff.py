@@ -25,7 +25,7 @@ from typing import Any, NamedTuple
 
 from compiler.errors import dotted
 
-__all__ = ["ABSENT", "Change", "Pair", "flatten", "spec_diff", "match_variants", "format_leaf"]
+__all__ = ["ABSENT", "Change", "Pair", "flatten", "spec_diff", "match_variants", "format_leaf", "canonical_leaf"]
 
 _BARE_KEY = re.compile(r"^[A-Za-z0-9_-]+$")   # TOML v1.0.0, "Keys": bare keys
 
@@ -93,7 +93,7 @@ def flatten(tree: dict | str | bytes) -> dict[str, Any]:
     return {dotted(loc): v for loc, v in _leaves(_tree(tree))}
 
 
-def _canon(value: Any) -> str:
+def canonical_leaf(value: Any) -> str:
     return json.dumps(_number_form(value), sort_keys=True, ensure_ascii=False)
 
 
@@ -121,7 +121,7 @@ def spec_diff(a_tree: dict | str | bytes, b_tree: dict | str | bytes) -> list[Ch
     changes = []
     for loc in sorted(a.keys() | b.keys(), key=_order):
         old, new = a.get(loc, ABSENT), b.get(loc, ABSENT)
-        if old is ABSENT or new is ABSENT or _canon(old) != _canon(new):
+        if old is ABSENT or new is ABSENT or canonical_leaf(old) != canonical_leaf(new):
             changes.append(Change(dotted(loc), old, new))
     return changes
 
@@ -131,7 +131,7 @@ def _covered(key: str, removed: frozenset[str]) -> bool:
 
 
 def _reduced(payload: dict, removed: frozenset[str]) -> str:
-    return _canon({k: v for k, v in flatten(payload).items() if not _covered(k, removed)})
+    return canonical_leaf({k: v for k, v in flatten(payload).items() if not _covered(k, removed)})
 
 
 def match_variants(a_variants: list[dict], b_variants: list[dict],

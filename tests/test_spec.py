@@ -74,3 +74,17 @@ def test_batch_norm_defaults():
     # 0.9 are common practice defaults.
     bn = BatchNorm(kind="batch")
     assert (bn.epsilon, bn.momentum) == (1e-5, 0.9)
+
+
+def test_study_margin_unset_keeps_the_study_hash_and_a_set_one_is_part_of_it(tmp_path):
+    # the demo's study hash as `lesion check specs/cold-chain.toml` printed it before study.margin
+    # existed (and as the README's result-set folder cold-chain-af23c1abfa5f names it)
+    before = "af23c1abfa5f27de7b8464fe176c40243391c65706e9176e639811ce1ca85fcf"
+    assert load_study(ROOT / "specs" / "cold-chain.toml").study_hash == before
+    text = (ROOT / "specs" / "cold-chain.toml").read_text()
+    spec = tmp_path / "cold-chain.toml"
+    spec.write_text(text.replace('metric = "val_accuracy"', 'metric = "val_accuracy"\nmargin = 0.01', 1))
+    margined = load_study(spec)
+    assert margined.spec.study.margin == 0.01 and margined.study_hash != before
+    # a run's identity does not depend on it: same variants, same hashes
+    assert [v.hash for v in margined.variants] == [v.hash for v in load_study(ROOT / "specs" / "cold-chain.toml").variants]

@@ -7,8 +7,8 @@ import numpy as np
 import pytest
 from scipy import stats as sps
 
-from runtime.stats import (EXACT_MAX_PAIRS, RANDOM_SIGN_PATTERNS, Comparison, adjust, compare,
-                           sign_flip_pvalue, summarize, verdict)
+from runtime.stats import (EXACT_MAX_PAIRS, RANDOM_SIGN_PATTERNS, adjust, compare, decide, interval,
+                           sign_flip_pvalue, summarize)
 
 # Student (1908), "The probable error of a mean", Biometrika 6: extra hours of sleep of the same
 # ten patients under two drugs (data of Cushny & Peebles 1905). Patient number plays the seed.
@@ -180,7 +180,7 @@ def test_too_few_values_means_no_test():
     assert c.test == "none" and math.isnan(c.p_value) and math.isnan(c.ci_low)
     assert c.mean_a == pytest.approx(0.81) and c.diff == pytest.approx(0.85 - 0.81)
     assert "at least 3" in c.reason
-    assert verdict(c, adjust([c.p_value])[0], "max") == "no test possible"
+    assert decide(*interval(c, 0.05), "max") == "no test possible"
 
 
 # ── adjust ──────────────────────────────────────────────────────────────────────────────────────
@@ -226,30 +226,29 @@ def test_unknown_adjustment_is_refused():
 
 
 # ── verdict ─────────────────────────────────────────────────────────────────────────────────────
-def _cmp(diff: float) -> Comparison:
-    return Comparison("paired", "", 5, 5, 0, 0, 0.8, 0.8 + diff, diff, diff - 0.01, diff + 0.01,
-                      0.95, 3.0, 4.0, 0.01, 0.0625)
-
-
-@pytest.mark.parametrize("diff, p, direction, expected", [
+@pytest.mark.parametrize("low, high, direction, margin, expected", [
     # common practice: for a metric to maximise a significant rise is better, for one to
     # minimise (a divergence, an RMSE) a significant fall is better
-    (+0.02, 0.01, "max", "better"),
-    (-0.02, 0.01, "max", "worse"),
-    (+0.02, 0.01, "min", "worse"),
-    (-0.02, 0.01, "min", "better"),
-    (+0.02, 0.05, "max", "better"),          # p ≤ alpha rejects
-    (+0.02, 0.20, "max", "no detectable change"),
-    (-0.02, 0.20, "min", "no detectable change"),
-    (+0.02, math.nan, "max", "no test possible"),
+    (0.01, 0.03, "max", None, "better"),
+    (-0.03, -0.01, "max", None, "worse"),
+    (0.01, 0.03, "min", None, "worse"),
+    (-0.03, -0.01, "min", None, "better"),
+    (-0.01, 0.03, "max", None, "no detectable change"),
+    # Schuirmann 1987: equivalence when the interval lies inside (−D, D)
+    (-0.004, 0.003, "max", 0.005, "equivalent"),
+    (0.001, 0.003, "max", 0.005, "equivalent"),     # inside the margin beats a tiny significant rise
+    (-0.004, 0.006, "max", 0.005, "inconclusive"),  # reaches past the margin and across 0
+    (0.002, 0.03, "max", 0.005, "better"),
+    (-0.005, 0.003, "max", 0.005, "inconclusive"),  # touching the margin is not inside it
+    (math.nan, math.nan, "max", 0.005, "no test possible"),
 ])
-def test_verdict_direction_table(diff, p, direction, expected):
-    assert verdict(_cmp(diff), p, direction) == expected
+def test_verdict_table(low, high, direction, margin, expected):
+    assert decide(low, high, direction, margin) == expected
 
 
 def test_verdict_refuses_unknown_direction():
     with pytest.raises(ValueError, match="expected 'max' or 'min'"):
-        verdict(_cmp(0.1), 0.01, "up")
+        decide(0.1, 0.2, "up")
 
 
 def test_as_dict_is_valid_json():

@@ -82,7 +82,9 @@ def test_diff_cli_gate_and_formats(stored):
     assert "identical studies" in res.stdout and "no detectable change" in res.stdout
     md = runner.invoke(app, ["diff", str(path), "--baseline", "optimizer.learning_rate=0.03", "-f", "markdown"]).stdout
     assert md.splitlines()[2].startswith("| variant_a |")
-    both = runner.invoke(app, ["diff", str(path)])
+    both = runner.invoke(app, ["diff", str(path), str(path), "--baseline", "optimizer.learning_rate=0.03"])
     assert both.exit_code == 2 and "--baseline" in both.stderr
+    alone = runner.invoke(app, ["diff", str(path)])   # one result set: the questions of its design
+    assert alone.exit_code == 0 and "does optimizer.learning_rate matter?" in alone.stdout
     missing = runner.invoke(app, ["diff", str(path), str(path.parent / "absent")])
     assert missing.exit_code == 2 and "no such result set" in missing.stderr

@@ -5,7 +5,7 @@ from typer.testing import CliRunner
 
 from compiler.loader import load_study
 from runtime.cli import app
-from runtime.diff import diff_baseline, diff_result_sets
+from runtime.diff import diff_baseline, diff_design, diff_result_sets
 from runtime.runner import run_study
 from runtime.store import open_result_set
 
@@ -83,3 +83,87 @@ def test_different_data_is_shown_and_variants_still_pair(pair, tmp_path, tiny_sp
     assert [(r["variant_a"] == r["variant_b"], r["test"], r["n_a"]) for r in report.rows] == [(True, "paired", 5)] * 2
     text = CliRunner().invoke(app, ["diff", str(a.path), str(b.path)]).stdout
     assert "data.noise: 0.5 → 0.9" in text and "Traceback" not in text
+
+
+# ── questions that follow the design ───────────────────────────────────────────────────────────
+LR, WD = "optimizer.learning_rate", "regularization.weight_decay"
+
+
+@pytest.fixture(scope="module")
+def grid(tmp_path_factory, tiny_spec):
+    tmp = tmp_path_factory.mktemp("grid")
+    extra = f'\n[[ablation.axis]]\nkey = "{WD}"\nvalues = [0.0, 0.01]\n'
+    return _run(tmp, tiny_spec, "grid", seeds=4, epochs=3, rates="[0.03, 0.3]", extra=extra)
+
+
+def _final(rs, lr, wd, metric="val_accuracy"):
+    cols = rs.runs.to_pydict()
+    return {s: v for s, a, b, v in zip(cols["seed"], cols[LR], cols[WD], cols[f"final_{metric}"])
+            if a == lr and b == wd}
+
+
+def test_design_asks_about_one_axis_at_each_level_of_the_other(grid):
+    import numpy as np
+    import pandas as pd
+    from statsmodels.stats.anova import AnovaRM
+
+    report = diff_design(grid, axis=LR, margin=0.05)
+    assert report.questions == [f"does {LR} matter at each {WD}?", f"does {LR} matter on average over {WD}?",
+                                f"does the effect of {LR} depend on {WD}?"]
+    simple = [r for r in report.rows if r["question"] == report.questions[0]]
+    assert [r["contrast"] for r in simple] == [f"0.03 → 0.3 at {WD}=0.0", f"0.03 → 0.3 at {WD}=0.01"]
+    # by hand from runs.parquet: the mean over seeds of the paired differences
+    for r, wd in zip(simple, (0.0, 0.01)):
+        a, b = _final(grid, 0.03, wd), _final(grid, 0.3, wd)
+        assert r["diff"] == pytest.approx(np.mean([b[s] - a[s] for s in a]), rel=1e-6)
+        assert (r["ci_low"] > 0 or r["ci_high"] < 0) == (r["p_adjusted"] <= 0.05)   # interval agrees with verdict
+    [main] = [r for r in report.rows if r["question"] == report.questions[1]]
+    assert main["diff"] == pytest.approx(np.mean([r["diff"] for r in simple]), rel=1e-6)
+    # the interaction against statsmodels' AnovaRM on the stored values (seeds as subjects); the
+    # validation divergence, as accuracy on 60 samples is too coarse to move with weight decay here
+    frame = pd.DataFrame([{"seed": s, "lr": lr, "wd": wd, "y": v} for lr in (0.03, 0.3) for wd in (0.0, 0.01)
+                          for s, v in _final(grid, lr, wd, "val_divergence").items()])
+    ref = AnovaRM(frame, "y", "seed", within=["lr", "wd"]).fit().anova_table.loc["lr:wd"]
+    by_div = diff_design(grid, axis=LR, metrics=["val_divergence"])
+    [inter] = [r for r in by_div.rows if r["question"] == by_div.questions[2]]
+    assert inter["p"] == pytest.approx(ref["Pr > F"], rel=1e-5)
+    assert inter["verdict"] == ("interacts" if ref["Pr > F"] <= 0.05 else "no detectable interaction")
+    everything = diff_design(grid)
+    assert len(everything.questions) == 5   # per axis: at each level, on average; one interaction
+
+
+def test_margin_turns_open_rows_into_equivalent_or_inconclusive(grid):
+    wide = diff_design(grid, axis=WD, margin=0.9)      # accuracy moves far less than 0.9
+    assert {r["verdict"] for r in wide.rows if r["test"] == "paired"} == {"equivalent"}
+    none = diff_design(grid, axis=WD)
+    assert {r["verdict"] for r in none.rows if r["test"] == "paired"} <= {"better", "worse", "no detectable change"}
+    # the divergence does move with weight decay: a margin of 1e-7 cannot be met by 4 seeds
+    for r in diff_design(grid, axis=WD, metrics=["val_divergence"], margin=1e-7).rows:
+        if r["test"] == "paired":
+            assert r["verdict"] in ("better", "worse", "inconclusive"), r
+            assert r["verdict"] != "inconclusive" or r["seeds_needed"] > r["n_a"]
+
+
+def test_cli_decides_and_plans_and_refuses_bad_arguments(grid):
+    run = CliRunner()
+    out = run.invoke(app, ["diff", str(grid.path), "--axis", LR, "--margin", "0.05"])
+    assert out.exit_code == 0, out.output
+    assert f"does {LR} matter at each {WD}?" in out.stdout and "seeds needed" in out.stdout
+    plan = run.invoke(app, ["seeds", str(grid.path), "--margin", "0.01"])
+    assert plan.exit_code == 0 and "seeds_needed" in plan.stdout
+    for args in (["diff", str(grid.path), "--axis", "nope"],
+                 ["diff", str(grid.path), "--margin", "0.01", "-m", "val_accuracy", "-m", "val_divergence"],
+                 ["diff", str(grid.path), "--margin", "-1"],
+                 ["seeds", str(grid.path)]):
+        bad = run.invoke(app, args)
+        assert bad.exit_code == 2 and "Traceback" not in bad.output, (args, bad.output)
+        assert len(bad.output.strip().splitlines()) == 1, bad.output
+
+
+def test_spec_margin_is_the_default(tmp_path, tiny_spec):
+    spec = tiny_spec(tmp_path, "margined", seeds=3, epochs=2, rates="[0.03, 0.3]")
+    spec.write_text(spec.read_text().replace('metric = "val_accuracy"', 'metric = "val_accuracy"\nmargin = 0.9'))
+    rs = open_result_set(run_study(load_study(spec), tmp_path / "r").path)
+    [row] = diff_design(rs).rows
+    assert row["margin"] == 0.9 and row["verdict"] == "equivalent"
+    assert diff_design(rs, margin=1e-4).rows[0]["margin"] == 1e-4   # the command line wins

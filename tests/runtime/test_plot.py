@@ -237,6 +237,16 @@ def test_diff_intervals_match_a_paired_t_interval_by_scipy(sets):
     [ax] = fig.axes
     intervals = {round(l.get_ydata()[0], 9): l.get_xdata() for l in ax.get_lines()
                  if l.get_gid() is None and len(l.get_xdata()) == 2}
+    # the interval the verdict uses: Holm over the four rows (statsmodels' multipletests), drawn at
+    # α / (m − r), the level of the step where Holm stops (runtime.stats.family_alpha)
+    from statsmodels.stats.multitest import multipletests
+    labels = [gid.split(":", 2)[2] for gid in diffs]
+    pairs = {lab: (ra[ra.variant_label == lab].sort_values("seed").final_val_accuracy.to_numpy(dtype=float),
+                   rb[rb.variant_label == lab].sort_values("seed").final_val_accuracy.to_numpy(dtype=float))
+             for lab in labels}
+    raw = [1.0 if np.all(xb == xa) else sps.ttest_rel(xb, xa).pvalue for xa, xb in pairs.values()]
+    rejected = int(multipletests(raw, alpha=0.05, method="holm")[0].sum())
+    level = 1 - 0.05 / max(len(raw) - rejected, 1)
     for gid, line in diffs.items():
         label = gid.split(":", 2)[2]
         xa = ra[ra.variant_label == label].sort_values("seed").final_val_accuracy.to_numpy(dtype=float)
@@ -245,7 +255,7 @@ def test_diff_intervals_match_a_paired_t_interval_by_scipy(sets):
         y = round(line.get_ydata()[0], 9)
         if np.all(xb - xa == (xb - xa)[0]):
             continue  # no spread: the interval is decided, not estimated (runtime.stats)
-        ci = sps.ttest_rel(xb, xa).confidence_interval(0.95)  # paired t over common seeds
+        ci = sps.ttest_rel(xb, xa).confidence_interval(level)  # paired t over common seeds
         np.testing.assert_allclose(intervals[y], [ci.low, ci.high], rtol=1e-9)
     assert "data.noise: 0.5 → 1.5" in _subtitle(fig)
 
@@ -391,6 +401,19 @@ def test_cli_against_writes_the_diff(sets, tmp_path):
                                    "-o", str(target)])
     assert out.exit_code == 0, out.output
     assert out.stdout.strip() == str(target) and _svg_size(target)[0] > 0
+
+
+def test_against_with_a_margin_draws_it_and_colours_equivalent_rows(sets):
+    # a margin wider than any accuracy difference: every tested row is equivalent, and the two
+    # dotted lines stand at ±margin
+    fig = P.plot_diff(sets["grid"], sets["grid_b"], margin=0.9)
+    [ax] = fig.axes
+    dotted = sorted(l.get_xdata()[0] for l in ax.get_lines() if l.get_linestyle() == ":")
+    assert dotted == [-0.9, 0.9]
+    diamonds = [l for l in ax.get_lines() if (l.get_gid() or "").startswith("diff:")]
+    assert diamonds and {l.get_color() for l in diamonds} == {P.VERDICT_COLOURS["equivalent"]}
+    bad = CliRunner().invoke(app, ["plot", str(sets["grid"].path), "--margin", "0.1"])
+    assert bad.exit_code == 2 and "--against" in bad.stderr
 
 
 @pytest.mark.parametrize("args,message", [
