@@ -83,6 +83,9 @@ class Format(str, Enum):
     json = "json"
 
 
+_WIDE_HELP = "Every column, one line per row, whatever the terminal's width."
+
+
 class Output(str, Enum):
     table = "table"
     json = "json"
@@ -94,6 +97,7 @@ class Output(str, Enum):
 def check(
     spec: Path = typer.Argument(..., help="The study's TOML spec file.", show_default=False),
     format: Format = typer.Option(Format.table, "--format", "-f", help="table for people, json for programs."),
+    wide: bool = typer.Option(False, "--wide", help=_WIDE_HELP),
 ) -> None:
     """Validate a spec and list the variants and runs it expands to; exit 2 listing every problem.
 
@@ -109,7 +113,7 @@ def check(
     if format is Format.json:
         typer.echo(json.dumps(_check_report(study), indent=2, ensure_ascii=False))
         return
-    _print_check_table(study)
+    _print_check_table(study, wide)
 
 
 def _check_report(study) -> dict:
@@ -129,11 +133,9 @@ def _check_report(study) -> dict:
     }
 
 
-def _print_check_table(study) -> None:
-    from rich.console import Console
-    from rich.table import Table
-
+def _print_check_table(study, wide: bool) -> None:
     from compiler.expand import format_value
+    from runtime.formats import Fit, render
 
     structures = sorted({v.structure for v in study.variants}, key=[v.structure for v in study.variants].index)
     typer.echo(f"study       {study.spec.study.name}")
@@ -141,22 +143,26 @@ def _print_check_table(study) -> None:
     typer.echo(f"result set  {study.result_set}")
     typer.echo(f"{len(study.variants)} variants × {len(study.seeds)} seeds = {study.runs} runs, "
                f"compiled as {len(structures)} program{'s' if len(structures) != 1 else ''}")
-    table = Table(show_edge=False, header_style="bold")
-    for name in ("#", "label", "changes", "variant hash", "seeds", "structure"):
-        table.add_column(name, overflow="fold")
     seeds = _seeds_text(study.seeds)
+    rows = []
     for v in study.variants:
         changes = ", ".join(f"{k}={format_value(x)}" for k, x in v.changes.items()) or "(nothing: the base)"
-        if changes == v.label:
-            changes = "(as the label says)"
-        table.add_row(str(v.index), v.label, changes, v.hash[:12], seeds, v.structure)
-    Console(markup=False, highlight=False, emoji=False, width=_terminal_width()).print(table)
+        # A generated label already spells its changes out; the column then stays empty (and,
+        # when every label is generated, is left out).
+        rows.append({"#": v.index, "label": v.label, "changes": "" if changes == v.label else changes,
+                     "variant hash": v.hash[:12], "seeds": seeds, "structure": v.structure})
+    typer.echo(render(rows, list(rows[0]), "table", width=_terminal_width(wide),
+                      fit=Fit(keep=("#", "label"), drop=("structure", "seeds"), wrap=("label", "changes"))))
 
 
-def _terminal_width() -> int:
-    # Piped output has no width to respect; keep each variant on one line for grep and diff.
+def _terminal_width(wide: bool = False) -> int | None:
+    """The width tables are fitted to; None (every column, one line per row) with --wide, or when
+    stdout is piped and COLUMNS is not set: there is no width to respect, and grep wants whole rows."""
+    import os
     import shutil
-    return shutil.get_terminal_size((100, 24)).columns if sys.stdout.isatty() else 200
+    if wide or not (sys.stdout.isatty() or os.environ.get("COLUMNS", "").isdigit()):
+        return None
+    return shutil.get_terminal_size().columns
 
 
 def _seeds_text(seeds: list[int]) -> str:
@@ -294,6 +300,7 @@ def show(
     format: Output = typer.Option(Output.table, "--format", "-f", help="table, json, csv or markdown."),
     curves: bool = typer.Option(False, "--curves", help="Per-epoch means per variant instead of the summary."),
     metric: list[str] = typer.Option(None, "--metric", "-m", help="Metric(s) to show (default: the study's)."),
+    wide: bool = typer.Option(False, "--wide", help=_WIDE_HELP),
 ) -> None:
     """Summarize a result set per variant: runs ok/diverged, mean ± sd and 95 % CI across seeds.
 
@@ -304,7 +311,7 @@ def show(
       lesion show results/cold-chain-7da471c81b78 --curves --format csv
     """
     from runtime.formats import render
-    from runtime.show import SUMMARY_COLUMNS, curve_rows, summary_rows
+    from runtime.show import CURVES_FIT, SUMMARY_COLUMNS, SUMMARY_FIT, curve_rows, summary_rows
     from runtime.store import open_result_set
 
     rs = open_result_set(result)
@@ -312,16 +319,17 @@ def show(
     try:
         if curves:
             rows, columns = curve_rows(rs, metric or None)
+            fit = CURVES_FIT
             title = f"{name} ({rs.study_hash[:12]}): per-epoch means over ok runs"
         else:
             if metric and len(metric) > 1:
                 raise UsageError("show summarizes one metric at a time (give --metric once)")
             m = metric[0] if metric else rs.headline
-            rows, columns = summary_rows(rs, m), SUMMARY_COLUMNS
+            rows, columns, fit = summary_rows(rs, m), SUMMARY_COLUMNS, SUMMARY_FIT
             title = f"{name} ({rs.study_hash[:12]}): final {m} across seeds (mean, sd, 95% CI)"
     except ValueError as err:
         raise UsageError(str(err)) from None
-    typer.echo(render(rows, columns, format.value, title=title))
+    typer.echo(render(rows, columns, format.value, title=title, width=_terminal_width(wide), fit=fit))
 
 
 @app.command()
@@ -331,6 +339,7 @@ def replay(
     variant: str = typer.Option(None, "--variant", help="Replay the runs of this variant label."),
     all_runs: bool = typer.Option(False, "--all", help="Replay every selected run, not one per variant."),
     format: Format = typer.Option(Format.table, "--format", "-f", help="table for people, json for programs."),
+    wide: bool = typer.Option(False, "--wide", help=_WIDE_HELP),
 ) -> None:
     """Re-execute stored runs from the result set's own spec and compare them bit for bit.
 
@@ -345,7 +354,7 @@ def replay(
     """
     if run is not None and variant is not None:
         raise UsageError("give --run or --variant, not both")
-    from runtime.formats import render
+    from runtime.formats import Fit, render
     from runtime.replay import replay as do_replay
 
     report = do_replay(result, run=run, variant=variant, everything=all_runs,
@@ -364,7 +373,9 @@ def replay(
                 typer.echo(f"  {line}")
         else:
             typer.echo("environment: same as recorded")
-        typer.echo(render(rows, columns, "table", title="replay"))
+        typer.echo(render(rows, columns, "table", title="replay", width=_terminal_width(wide),
+                          fit=Fit(keep=("run_id", "verdict"), drop=("lane_width", "max_rel", "digest"),
+                                  wrap=("variant",))))
         differing = sum(r.verdict != "identical" for r in report.rows)
         if differing and report.environment_changes:
             typer.echo(f"{differing} run(s) differ, and the environment changed (above): differing bits are "
@@ -398,6 +409,7 @@ def diff(
     alpha: float = typer.Option(0.05, "--alpha", min=1e-6, max=0.5, help="Significance level of adjusted p-values."),
     format: Output = typer.Option(Output.table, "--format", "-f", help="table, json, csv or markdown."),
     fail_on: FailOn = typer.Option(FailOn.never, "--fail-on", help="'worse': exit 1 if any adjusted comparison is worse."),
+    wide: bool = typer.Option(False, "--wide", help=_WIDE_HELP),
 ) -> None:
     """Compare two result sets (or every variant with a baseline) beyond seed noise.
 
@@ -413,7 +425,7 @@ def diff(
       lesion diff A B --format markdown --fail-on worse
     """
     from runtime.diff import DIFF_COLUMNS, diff_baseline, diff_result_sets
-    from runtime.formats import render
+    from runtime.formats import Fit, render
     from runtime.store import open_result_set
 
     if (b is None) == (baseline is None):
@@ -442,7 +454,11 @@ def diff(
             rows, columns = _compact_diff(report.rows, baseline is not None)
         else:
             rows, columns = report.rows, DIFF_COLUMNS
-        typer.echo(render(rows, columns, format.value, title=title))
+        # With one metric its name is in every row; with several it tells the rows apart.
+        many = len({r["metric"] for r in report.rows}) > 1
+        fit = Fit(keep=("variant", "B − A", "95% CI", "p adj", "verdict") + (("metric",) if many else ()),
+                  drop=("test", "p", "n") + (() if many else ("metric",)), wrap=("variant", "95% CI", "verdict"))
+        typer.echo(render(rows, columns, format.value, title=title, width=_terminal_width(wide), fit=fit))
         untested = [r for r in report.rows if r["verdict"] == "no test possible"]
         if untested and format is Output.table:
             typer.echo(f"{len(untested)} row(s): {untested[0]['reason']}")

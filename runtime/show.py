@@ -10,13 +10,19 @@ from __future__ import annotations
 
 import numpy as np
 
+from runtime.formats import Fit
 from runtime.stats import summarize
 from runtime.store import ResultSet
 
-__all__ = ["summary_rows", "curve_rows", "SUMMARY_COLUMNS"]
+__all__ = ["summary_rows", "curve_rows", "SUMMARY_COLUMNS", "SUMMARY_FIT", "CURVES_FIT"]
 
 SUMMARY_COLUMNS = ["variant", "ok", "diverged", "mean", "sd", "ci_low", "ci_high",
                    "val_divergence", "val_divergence_sd", "groups", "seconds", "warnings"]
+# On a narrow terminal the headline's interval outlives the bookkeeping and the second metric;
+# "ok" out of the study's seeds still tells how many diverged.
+SUMMARY_FIT = Fit(keep=("variant", "ok", "mean", "ci_low", "ci_high"),
+                  drop=("groups", "seconds", "val_divergence_sd", "val_divergence", "diverged"), wrap=("variant",))
+CURVES_FIT = Fit(keep=("variant", "epoch"), wrap=("variant",))
 
 
 def _variants(rs: ResultSet) -> list[tuple[int, str]]:

@@ -86,3 +86,16 @@ def test_diff_cli_gate_and_formats(stored):
     assert both.exit_code == 2 and "--baseline" in both.stderr
     missing = runner.invoke(app, ["diff", str(path), str(path.parent / "absent")])
     assert missing.exit_code == 2 and "no such result set" in missing.stderr
+
+
+@pytest.mark.parametrize("width", [80, 120, 200])
+def test_tables_fit_the_terminal(stored, width):
+    spec, path, _ = stored
+    env = {"COLUMNS": str(width)}
+    for args in (["show", str(path)], ["show", str(path), "--curves"], ["check", str(spec)],
+                 ["diff", str(path), "--baseline", "optimizer.learning_rate=0.03"], ["diff", str(path), str(path)]):
+        res = runner.invoke(app, args, env=env)
+        assert res.exit_code == 0, res.output
+        assert max(map(len, res.stdout.splitlines())) <= width, (args, res.stdout)
+    wide = runner.invoke(app, ["show", str(path), "--wide"], env={"COLUMNS": "80"}).stdout
+    assert max(map(len, wide.splitlines())) > 80 and "val_divergence_sd" in wide
