@@ -402,7 +402,9 @@ class Correction(str, Enum):
 def diff(
     a: Path = typer.Argument(..., help="Result set A (the reference).", show_default=False),
     b: Path = typer.Argument(None, help="Result set B (the change). Omit with --baseline.", show_default=False),
-    baseline: str = typer.Option(None, "--baseline", help="Compare every variant of A with this variant of A."),
+    baseline: str = typer.Option(None, "--baseline", metavar="VARIANT",
+                                 help="Compare every variant of A with this variant of A: its label, a short label "
+                                      "('kind=batch, 0.0'), its index, or 'base' (the base configuration)."),
     metric: list[str] = typer.Option(None, "--metric", "-m", help="Metric(s) to compare (default: the study's)."),
     correction: Correction = typer.Option(Correction.holm, "--correction",
                                           help="Multiple-comparison adjustment: holm (family-wise) or bh (false discovery rate)."),
@@ -433,7 +435,7 @@ def diff(
     rs_a = open_result_set(a)
     if baseline is not None:
         report = diff_baseline(rs_a, baseline, metrics=metric or None, correction=correction.value, alpha=alpha)
-        title = f"each variant vs baseline '{baseline}'"
+        title = f"each variant vs baseline '{report.rows[0]['variant_a'] if report.rows else baseline}'"
     else:
         report = diff_result_sets(rs_a, open_result_set(b), metrics=metric or None,
                                   correction=correction.value, alpha=alpha)

@@ -99,3 +99,24 @@ def test_tables_fit_the_terminal(stored, width):
         assert max(map(len, res.stdout.splitlines())) <= width, (args, res.stdout)
     wide = runner.invoke(app, ["show", str(path), "--wide"], env={"COLUMNS": "80"}).stdout
     assert max(map(len, wide.splitlines())) > 80 and "val_divergence_sd" in wide
+
+
+@pytest.mark.parametrize("given", ["optimizer.learning_rate=0.03", "0", "learning_rate=0.03", "0.03", "base"])
+def test_baseline_by_label_short_label_index_or_base(stored, given):
+    # The tiny study's base sets learning_rate = 0.1, which no grid cell has: 'base' is refused
+    # there; every other way names variant 0.
+    _, path, _ = stored
+    res = runner.invoke(app, ["diff", str(path), "--baseline", given, "-f", "json"])
+    if given == "base":
+        assert res.exit_code == 2 and "no variant equals the base configuration" in res.stderr
+        return
+    assert res.exit_code == 0, res.output
+    rows = json.loads(res.stdout)["rows"]
+    assert {r["variant_a"] for r in rows} == {"optimizer.learning_rate=0.03"}
+
+
+def test_unknown_baseline_lists_the_choices_one_per_line(stored):
+    _, path, _ = stored
+    res = runner.invoke(app, ["diff", str(path), "--baseline", "nope"])
+    assert res.exit_code == 2 and "Traceback" not in res.output
+    assert res.stderr.splitlines()[1:] == ["  0  optimizer.learning_rate=0.03", "  1  optimizer.learning_rate=0.3"]

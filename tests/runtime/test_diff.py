@@ -83,3 +83,16 @@ def test_different_data_is_shown_and_variants_still_pair(pair, tmp_path, tiny_sp
     assert [(r["variant_a"] == r["variant_b"], r["test"], r["n_a"]) for r in report.rows] == [(True, "paired", 5)] * 2
     text = CliRunner().invoke(app, ["diff", str(a.path), str(b.path)]).stdout
     assert "data.noise: 0.5 → 0.9" in text and "Traceback" not in text
+
+
+def test_base_names_the_grid_cell_equal_to_the_base_configuration():
+    from pathlib import Path
+
+    from compiler.loader import load_study
+    from runtime.diff import resolve_variant
+
+    # specs/cold-chain.toml's base is batch normalization without dropout: grid cell 3.
+    study = load_study(Path(__file__).resolve().parents[2] / "specs" / "cold-chain.toml")
+    assert study.variants[3].label == "normalization.kind=batch, regularization.dropout.rate=0.0"
+    assert resolve_variant(study, "base") == 3
+    assert resolve_variant(study, "batch, dropout.rate=0.0") == 3
