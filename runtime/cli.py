@@ -18,7 +18,7 @@ from enum import Enum
 from pathlib import Path
 
 import typer
-from typer.core import TyperGroup
+from typer.core import TyperCommand, TyperGroup
 
 from compiler.errors import SpecError
 from runtime.store import ResultSetError
@@ -49,6 +49,20 @@ class _Group(TyperGroup):
             raise typer.Exit(2) from None
 
 
+class _Command(TyperCommand):
+    """Usage lines name a required argument as its help does (SPEC), not in braces ({SPEC})."""
+
+    def collect_usage_pieces(self, ctx):
+        return [p[1:-1] if p.startswith("{") and p.endswith("}") else p for p in super().collect_usage_pieces(ctx)]
+
+
+def _version(value: bool) -> None:
+    if value:
+        from importlib.metadata import version
+        typer.echo(f"lesion {version('lesion')}")
+        raise typer.Exit()
+
+
 app = typer.Typer(
     cls=_Group,
     name="lesion",
@@ -57,8 +71,8 @@ app = typer.Typer(
          "Examples:\n\n"
          "  lesion check specs/cold-chain.toml\n\n"
          "  lesion run specs/cold-chain.toml            # prints the result set's path last\n\n"
-         "  lesion show results/cold-chain-<hash>\n\n"
-         "  lesion replay results/cold-chain-<hash>\n\n"
+         "  lesion show results/cold-chain-af23c1abfa5f\n\n"
+         "  lesion replay results/cold-chain-af23c1abfa5f\n\n"
          "  lesion diff results/A results/B --fail-on worse\n\n"
          "  lesion schema > lesion.schema.json",
     no_args_is_help=True,
@@ -66,6 +80,12 @@ app = typer.Typer(
     rich_markup_mode=None,
     pretty_exceptions_enable=False,
 )
+
+
+@app.callback()
+def _main(version: bool = typer.Option(False, "--version", callback=_version, is_eager=True,
+                                       help="Print lesion's version and exit.")) -> None:
+    pass
 
 
 def _loaded_user_errors() -> tuple[type[Exception], ...]:
@@ -93,9 +113,9 @@ class Output(str, Enum):
     markdown = "markdown"
 
 
-@app.command()
+@app.command(cls=_Command)
 def check(
-    spec: Path = typer.Argument(..., help="The study's TOML spec file.", show_default=False),
+    spec: Path = typer.Argument(..., metavar="SPEC", help="The study's TOML spec file.", show_default=False),
     format: Format = typer.Option(Format.table, "--format", "-f", help="table for people, json for programs."),
     wide: bool = typer.Option(False, "--wide", help=_WIDE_HELP),
 ) -> None:
@@ -171,7 +191,7 @@ def _seeds_text(seeds: list[int]) -> str:
     return ",".join(map(str, seeds))
 
 
-@app.command()
+@app.command(cls=_Command)
 def schema() -> None:
     """Print the JSON Schema (draft 2020-12) of a spec file, for editors that complete keys.
 
@@ -191,15 +211,15 @@ def _err(text: str) -> None:
     typer.echo(text, err=True)
 
 
-@app.command()
+@app.command(cls=_Command)
 def run(
-    spec: Path = typer.Argument(..., help="The study's TOML spec file.", show_default=False),
-    out: Path = typer.Option(Path("results"), "--out", "-o", help="Folder that receives the result set."),
-    lanes: int = typer.Option(None, "--lanes", min=1, max=4096,
+    spec: Path = typer.Argument(..., metavar="SPEC", help="The study's TOML spec file.", show_default=False),
+    out: Path = typer.Option(Path("results"), "--out", "-o", metavar="DIR", help="Folder that receives the result set."),
+    lanes: int = typer.Option(None, "--lanes", min=1, max=4096, metavar="N",
                               help="Runs per compiled program call (lane width); default: chosen per structure."),
     fresh: bool = typer.Option(False, "--fresh", help="Recompute every run, even those already stored."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bars or summary on stderr."),
-    cluster: str = typer.Option(None, "--cluster",
+    cluster: str = typer.Option(None, "--cluster", metavar="ADDRESS",
                                 help="Run the groups on a Dask scheduler (tcp://HOST:PORT) or on N local "
                                      "worker processes (local:N); results are written here."),
 ) -> None:
@@ -294,49 +314,77 @@ class _RunProgress:
             self.done += len(info["group"].runs)
 
 
-@app.command()
+@app.command(cls=_Command)
 def show(
-    result: Path = typer.Argument(..., help="A result set folder written by 'lesion run'.", show_default=False),
+    result: Path = typer.Argument(..., metavar="RESULT", help="A result set folder written by 'lesion run'.", show_default=False),
     format: Output = typer.Option(Output.table, "--format", "-f", help="table, json, csv or markdown."),
     curves: bool = typer.Option(False, "--curves", help="Per-epoch means per variant instead of the summary."),
-    metric: list[str] = typer.Option(None, "--metric", "-m", help="Metric(s) to show (default: the study's)."),
+    metric: list[str] = typer.Option(None, "--metric", "-m", metavar="METRIC",
+                                     help="Metric(s) to show, the option repeated for several (default: the study's)."),
+    runs: bool = typer.Option(False, "--runs", help="One row per run, with the run id that 'lesion replay --run' takes."),
     wide: bool = typer.Option(False, "--wide", help=_WIDE_HELP),
 ) -> None:
     """Summarize a result set per variant: runs ok/diverged, mean ± sd and 95 % CI across seeds.
 
     Examples:
 
-      lesion show results/cold-chain-7da471c81b78
+      lesion show results/cold-chain-af23c1abfa5f
 
-      lesion show results/cold-chain-7da471c81b78 --curves --format csv
+      lesion show results/cold-chain-af23c1abfa5f --metric val_accuracy --metric val_divergence
+
+      lesion show results/cold-chain-af23c1abfa5f --runs
+
+      lesion show results/cold-chain-af23c1abfa5f --curves --format csv
     """
+    import dataclasses
+
     from runtime.formats import render
-    from runtime.show import CURVES_FIT, SUMMARY_COLUMNS, SUMMARY_FIT, curve_rows, summary_rows
+    from runtime.show import (CURVES_FIT, RUNS_FIT, SUMMARY_COLUMNS, SUMMARY_FIT, axis_values, curve_rows, run_rows,
+                              summary_rows)
     from runtime.store import open_result_set
 
+    if curves and runs:
+        raise UsageError("give --curves or --runs, not both")
     rs = open_result_set(result)
     name = rs.tree["study"]["name"]
+    metrics = metric or [rs.headline]
     try:
         if curves:
             rows, columns = curve_rows(rs, metric or None)
             fit = CURVES_FIT
             title = f"{name} ({rs.study_hash[:12]}): per-epoch means over ok runs"
+        elif runs:
+            rows, columns = run_rows(rs, metrics)
+            fit = dataclasses.replace(RUNS_FIT, keep=RUNS_FIT.keep + tuple(metrics))
+            title = f"{name} ({rs.study_hash[:12]}): {len(rows)} runs, final {', '.join(metrics)}"
         else:
-            if metric and len(metric) > 1:
-                raise UsageError("show summarizes one metric at a time (give --metric once)")
-            m = metric[0] if metric else rs.headline
-            rows, columns, fit = summary_rows(rs, m), SUMMARY_COLUMNS, SUMMARY_FIT
-            title = f"{name} ({rs.study_hash[:12]}): final {m} across seeds (mean, sd, 95% CI)"
+            rows = [{"variant": r["variant"], "metric": m, **r} for m in metrics for r in summary_rows(rs, m)]
+            if len(metrics) > 1:
+                order = [r["variant"] for r in rows]
+                rows.sort(key=lambda r: order.index(r["variant"]))
+                columns = ["variant", "metric", *SUMMARY_COLUMNS[1:]]
+                fit = dataclasses.replace(SUMMARY_FIT, keep=SUMMARY_FIT.keep + ("metric",))
+            else:
+                columns, fit = SUMMARY_COLUMNS, SUMMARY_FIT
+            title = f"{name} ({rs.study_hash[:12]}): final {', '.join(metrics)} across seeds (mean, sd, 95% CI)"
     except ValueError as err:
         raise UsageError(str(err)) from None
-    typer.echo(render(rows, columns, format.value, title=title, width=_terminal_width(wide), fit=fit))
+    extra = None
+    if format in (Output.json, Output.csv):
+        # Programs get the varied keys' values as fields of their own, not only inside the label.
+        keys, values = axis_values(rs)
+        rows = [{**r, **values.get(r["variant"], {})} for r in rows]
+        columns = [*columns, *keys]
+        extra = {"study": name, "study_hash": rs.study_hash, "metrics": metrics, "axes": keys}
+    typer.echo(render(rows, columns, format.value, title=title, extra=extra, width=_terminal_width(wide), fit=fit))
 
 
-@app.command()
+@app.command(cls=_Command)
 def replay(
-    result: Path = typer.Argument(..., help="A result set folder written by 'lesion run'.", show_default=False),
-    run: str = typer.Option(None, "--run", help="Replay this run id (a unique prefix is enough)."),
-    variant: str = typer.Option(None, "--variant", help="Replay the runs of this variant label."),
+    result: Path = typer.Argument(..., metavar="RESULT", help="A result set folder written by 'lesion run'.", show_default=False),
+    run: str = typer.Option(None, "--run", metavar="RUN_ID",
+                           help="Replay this run id (a unique prefix is enough; 'lesion show --runs' lists them)."),
+    variant: str = typer.Option(None, "--variant", metavar="LABEL", help="Replay the runs of this variant label."),
     all_runs: bool = typer.Option(False, "--all", help="Replay every selected run, not one per variant."),
     format: Format = typer.Option(Format.table, "--format", "-f", help="table for people, json for programs."),
     wide: bool = typer.Option(False, "--wide", help=_WIDE_HELP),
@@ -348,9 +396,9 @@ def replay(
 
     Examples:
 
-      lesion replay results/cold-chain-7da471c81b78
+      lesion replay results/cold-chain-af23c1abfa5f
 
-      lesion replay results/cold-chain-7da471c81b78 --variant "normalization.kind=batch, regularization.dropout.rate=0.15" --all
+      lesion replay results/cold-chain-af23c1abfa5f --variant "normalization.kind=batch, regularization.dropout.rate=0.15" --all
     """
     if run is not None and variant is not None:
         raise UsageError("give --run or --variant, not both")
@@ -398,17 +446,17 @@ class Correction(str, Enum):
     bh = "bh"
 
 
-@app.command()
+@app.command(cls=_Command)
 def diff(
-    a: Path = typer.Argument(..., help="Result set A (the reference).", show_default=False),
-    b: Path = typer.Argument(None, help="Result set B (the change). Omit with --baseline.", show_default=False),
+    a: Path = typer.Argument(..., metavar="A", help="Result set A (the reference).", show_default=False),
+    b: Path = typer.Argument(None, metavar="B", help="Result set B (the change). Omit with --baseline.", show_default=False),
     baseline: str = typer.Option(None, "--baseline", metavar="VARIANT",
                                  help="Compare every variant of A with this variant of A: its label, a short label "
                                       "('kind=batch, 0.0'), its index, or 'base' (the base configuration)."),
-    metric: list[str] = typer.Option(None, "--metric", "-m", help="Metric(s) to compare (default: the study's)."),
+    metric: list[str] = typer.Option(None, "--metric", "-m", metavar="METRIC", help="Metric(s) to compare (default: the study's)."),
     correction: Correction = typer.Option(Correction.holm, "--correction",
                                           help="Multiple-comparison adjustment: holm (family-wise) or bh (false discovery rate)."),
-    alpha: float = typer.Option(0.05, "--alpha", min=1e-6, max=0.5, help="Significance level of adjusted p-values."),
+    alpha: float = typer.Option(0.05, "--alpha", min=1e-6, max=0.5, metavar="P", help="Significance level of adjusted p-values."),
     format: Output = typer.Option(Output.table, "--format", "-f", help="table, json, csv or markdown."),
     fail_on: FailOn = typer.Option(FailOn.never, "--fail-on", help="'worse': exit 1 if any adjusted comparison is worse."),
     wide: bool = typer.Option(False, "--wide", help=_WIDE_HELP),
@@ -420,9 +468,9 @@ def diff(
 
     Examples:
 
-      lesion diff results/cold-chain-7da471c81b78 results/cold-chain-0c2f5a9e1d44
+      lesion diff results/cold-chain-af23c1abfa5f results/cold-chain-<other hash>
 
-      lesion diff results/cold-chain-7da471c81b78 --baseline "normalization.kind=none, regularization.dropout.rate=0.0"
+      lesion diff results/cold-chain-af23c1abfa5f --baseline base
 
       lesion diff A B --format markdown --fail-on worse
     """
@@ -489,27 +537,27 @@ class PlotKind(str, Enum):
     grid = "grid"
 
 
-@app.command()
+@app.command(cls=_Command)
 def plot(
-    result: Path = typer.Argument(..., help="A result set folder written by 'lesion run'.", show_default=False),
-    out: Path = typer.Option(None, "--out", "-o", help="Picture to write, .png or .svg "
+    result: Path = typer.Argument(..., metavar="RESULT", help="A result set folder written by 'lesion run'.", show_default=False),
+    out: Path = typer.Option(None, "--out", "-o", metavar="FILE", help="Picture to write, .png or .svg "
                              "(default: <result set>/plots/<kind>.png)."),
     kind: PlotKind = typer.Option(PlotKind.curves, "--kind", "-k",
                                   help="curves: per-epoch means; arms: final values per variant; "
                                        "grid: heat map of a two-axis grid."),
-    metric: list[str] = typer.Option(None, "--metric", "-m", help="Metric(s) to draw (default: the study's; "
+    metric: list[str] = typer.Option(None, "--metric", "-m", metavar="METRIC", help="Metric(s) to draw (default: the study's; "
                                      "curves also draw train and val divergence)."),
-    baseline: str = typer.Option(None, "--baseline", help="arms: the variant to mark as the baseline "
+    baseline: str = typer.Option(None, "--baseline", metavar="LABEL", help="arms: the variant to mark as the baseline "
                                  "(default: the one labelled 'base', if any)."),
-    against: Path = typer.Option(None, "--against", help="Draw the diff from RESULT (A) to this result set (B)."),
+    against: Path = typer.Option(None, "--against", metavar="RESULT", help="Draw the diff from RESULT (A) to this result set (B)."),
 ) -> None:
     """Draw a result set as a picture (PNG or SVG) and print the written path.
 
     Examples:
 
-      lesion plot results/cold-chain-7da471c81b78
+      lesion plot results/cold-chain-af23c1abfa5f
 
-      lesion plot results/cold-chain-7da471c81b78 --kind grid -o grid.svg
+      lesion plot results/cold-chain-af23c1abfa5f --kind grid -o grid.svg
 
       lesion plot results/kiln-drift-4f765a63c96a --kind arms --metric val_rmse --metric val_divergence
 

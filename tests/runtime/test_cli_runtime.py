@@ -8,6 +8,7 @@ import subprocess
 import sys
 from pathlib import Path
 
+import pyarrow.parquet as pq
 import pytest
 from typer.testing import CliRunner
 
@@ -120,3 +121,54 @@ def test_unknown_baseline_lists_the_choices_one_per_line(stored):
     res = runner.invoke(app, ["diff", str(path), "--baseline", "nope"])
     assert res.exit_code == 2 and "Traceback" not in res.output
     assert res.stderr.splitlines()[1:] == ["  0  optimizer.learning_rate=0.03", "  1  optimizer.learning_rate=0.3"]
+
+
+def test_show_takes_several_metrics(stored):
+    _, path, _ = stored
+    res = runner.invoke(app, ["show", str(path), "-m", "val_accuracy", "-m", "val_divergence", "-f", "json"])
+    assert res.exit_code == 0, res.output
+    rows = json.loads(res.stdout)["rows"]
+    assert [(r["variant"], r["metric"]) for r in rows] == [
+        (v, m) for v in ("optimizer.learning_rate=0.03", "optimizer.learning_rate=0.3")
+        for m in ("val_accuracy", "val_divergence")]
+
+
+def test_show_runs_lists_the_ids_replay_takes(stored):
+    _, path, _ = stored
+    res = runner.invoke(app, ["show", str(path), "--runs", "-f", "json"])
+    assert res.exit_code == 0, res.output
+    runs = json.loads(res.stdout)["rows"]
+    assert len(runs) == 6 and {r["seed"] for r in runs} == {0, 1, 2}
+    stored_ids = set(pq.read_table(path / "runs.parquet", columns=["run_id"]).column("run_id").to_pylist())
+    assert {r["run_id"] for r in runs} == stored_ids
+    table = runner.invoke(app, ["show", str(path), "--runs"], env={"COLUMNS": "80"}).stdout
+    assert all(r["run_id"] in table for r in runs)
+
+
+def test_show_json_carries_the_study_hash_and_axis_values(stored):
+    spec, path, _ = stored
+    doc = json.loads(runner.invoke(app, ["show", str(path), "-f", "json"]).stdout)
+    assert doc["study_hash"] == json.loads(runner.invoke(app, ["check", str(spec), "-f", "json"]).stdout)["study_hash"]
+    assert doc["axes"] == ["optimizer.learning_rate"]
+    assert [r["optimizer.learning_rate"] for r in doc["rows"]] == [0.03, 0.3]
+
+
+def test_version_and_help_metavars():
+    from importlib.metadata import version
+
+    res = runner.invoke(app, ["--version"])
+    assert res.exit_code == 0 and res.stdout.strip() == f"lesion {version('lesion')}"
+    for command in ("check", "run", "show", "replay", "diff", "plot"):
+        text = runner.invoke(app, [command, "--help"]).stdout
+        assert "{" not in text.splitlines()[0] and "range>" not in text and "<list[" not in text, text
+
+
+def test_help_examples_name_the_shipped_specs_hashes():
+    import re
+
+    from compiler.loader import load_study
+
+    shipped = {load_study(p).result_set for p in (ROOT / "specs").glob("*.toml")}
+    texts = [runner.invoke(app, [c, "--help"]).stdout for c in ("show", "replay", "diff", "plot")]
+    named = set(re.findall(r"results/([a-z-]+-[0-9a-f]{12})\b", " ".join(texts)))
+    assert named and named <= shipped
