@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import json
 import sys
+import time
 from enum import Enum
 from pathlib import Path
 
@@ -272,21 +273,24 @@ class _nothing:
 
 
 class _RunProgress:
-    """A rich progress bar per compile group on stderr: runs, epochs, elapsed and remaining."""
+    """Progress on stderr: a bar per compile group that says when it is compiling, then counts
+    epochs as they finish; and a bar for the whole study, in runs, with the finishing estimate."""
 
-    def __init__(self, study):
+    def __init__(self, study, console=None):
         from rich.console import Console
-        from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn, \
-            TimeRemainingColumn
+        from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
 
-        self.progress = Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
-                                 TextColumn("epochs"), TimeElapsedColumn(), TimeRemainingColumn(),
-                                 console=Console(stderr=True), transient=False)
+        self.progress = Progress(TextColumn("{task.description}"), BarColumn(), TextColumn("{task.fields[count]}"),
+                                 TimeElapsedColumn(), TextColumn("{task.fields[left]}"),
+                                 console=console or Console(stderr=True), transient=False)
         self.task = None
-        self.done = 0
-        self.total = 0
+        self.study = None
+        self.label = ""
+        self.runs_done = 0
+        self.group_runs = 0
         self.groups = 0
         self.index = 0
+        self.started = self.first_epoch = 0.0
 
     def __enter__(self):
         self.progress.__enter__()
@@ -297,21 +301,55 @@ class _RunProgress:
 
     def __call__(self, event, **info):
         if event == "plan":
-            self.total, self.groups = info["runs"], info["groups"]
+            self.groups = info["groups"]
             if info["runs"] == 0:
                 self.progress.console.print(f"all {info['planned']} runs already stored")
-            elif info.get("estimate") is not None:
+                return
+            if info.get("estimate") is not None:
                 self.progress.console.print(f"{info['runs']} runs to compute: needs {info['estimate'].describe()}")
+            self.started = time.monotonic()
+            self.study = self.progress.add_task("study", total=info["runs"], count=f"0/{info['runs']} runs", left="")
         elif event == "group":
             g = info["group"]
             self.index += 1
-            self.task = self.progress.add_task(
-                f"group {self.index}/{self.groups} ({len(g.runs)} runs, width {g.lane_width})",
-                total=g.runs[0].variant.spec.training.epochs)
+            self.group_runs = len(g.runs)
+            self.label = f"group {self.index}/{self.groups} ({len(g.runs)} runs, width {g.lane_width})"
+            epochs = g.runs[0].variant.spec.training.epochs
+            # Until the first epoch ends the program is being compiled (or loaded from the cache).
+            self.task = self.progress.add_task(f"{self.label} compiling", total=epochs, count=f"0/{epochs} epochs",
+                                               left="")
         elif event == "epoch":
-            self.progress.update(self.task, completed=info["done"])
+            done, total = info["done"], info["total"]
+            if done == 1:
+                self.first_epoch = time.monotonic()
+            # Epochs after the first take alike; the first also pays for loading the program.
+            left = (time.monotonic() - self.first_epoch) / (done - 1) * (total - done) if done > 1 else None
+            self.progress.update(self.task, description=self.label, completed=done, total=total,
+                                 count=f"{done}/{total} epochs", left=_left(left))
+            self._study(self.runs_done + self.group_runs * done / total)
         elif event == "stored":
-            self.done += len(info["group"].runs)
+            self.runs_done += len(info["group"].runs)
+            if self.task is not None:
+                task = self.progress.tasks[self.task]
+                self.progress.update(self.task, description=self.label, completed=task.total,
+                                     count=f"{int(task.total)}/{int(task.total)} epochs", left="")
+            self._study(self.runs_done)
+
+    def _study(self, runs: float) -> None:
+        if self.study is not None:
+            total = self.progress.tasks[self.study].total
+            # Compiles included: the time so far per run done, times the runs still to do.
+            left = (time.monotonic() - self.started) / runs * (total - runs) if runs else None
+            self.progress.update(self.study, completed=runs, count=f"{int(runs)}/{int(total)} runs", left=_left(left))
+
+
+def _left(seconds: float | None) -> str:
+    if seconds is None:
+        return ""
+    if seconds < 1:
+        return "under 1 s left"
+    minutes, secs = divmod(round(seconds), 60)
+    return f"about {minutes}:{secs:02d} left"
 
 
 @app.command(cls=_Command)

@@ -172,3 +172,30 @@ def test_help_examples_name_the_shipped_specs_hashes():
     texts = [runner.invoke(app, [c, "--help"]).stdout for c in ("show", "replay", "diff", "plot")]
     named = set(re.findall(r"results/([a-z-]+-[0-9a-f]{12})\b", " ".join(texts)))
     assert named and named <= shipped
+
+
+def test_progress_says_compiling_then_counts_epochs_with_an_estimate():
+    import io
+    from types import SimpleNamespace
+
+    from rich.console import Console
+
+    from runtime.cli import _RunProgress
+
+    run = SimpleNamespace(variant=SimpleNamespace(spec=SimpleNamespace(training=SimpleNamespace(epochs=4))))
+    group = SimpleNamespace(runs=[run, run], lane_width=2)
+    out = io.StringIO()
+    with _RunProgress(None, console=Console(file=out, width=120)) as bar:
+        bar("plan", groups=2, runs=4, planned=4)
+        bar("group", group=group, todo=2)
+        task = bar.progress.tasks[bar.task]
+        assert "compiling" in task.description and task.fields["count"] == "0/4 epochs"
+        for done in (1, 2, 3):
+            bar("epoch", done=done, total=4)
+        assert "compiling" not in task.description and task.completed == 3
+        assert task.fields["count"] == "3/4 epochs" and task.fields["left"].endswith("left")
+        study = bar.progress.tasks[bar.study]
+        assert study.completed == 1.5 and study.fields["left"].endswith("left")
+        bar("epoch", done=4, total=4)
+        bar("stored", group=group)
+    assert study.fields["count"] == "2/4 runs"
