@@ -15,7 +15,7 @@ import posixpath
 import re
 from typing import Annotated, Literal, Union
 
-from pydantic import BaseModel, ConfigDict, Discriminator, Field, Tag, field_validator, model_serializer, model_validator
+from pydantic import BaseModel, ConfigDict, Discriminator, Field, Tag, field_validator, model_validator
 
 __all__ = [
     "Strict", "Study", "SyntheticData", "FileData", "Data", "NeuronBudget", "Model",
@@ -55,27 +55,26 @@ class Strict(BaseModel):
     """Base of every spec model: unknown keys are errors, values are immutable, no coercion
     beyond what TOML already decided (an int may stand for a float)."""
 
-    model_config = ConfigDict(extra="forbid", frozen=True, strict=True)
+    # Attribute docstrings become the keys' descriptions in `lesion schema` (editors show them).
+    model_config = ConfigDict(extra="forbid", frozen=True, strict=True, use_attribute_docstrings=True)
 
 
 # ── study ───────────────────────────────────────────────────────────────────────────────────────
 class Study(Strict):
-    name: Annotated[str, Field(pattern=r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,63}$")]
-    description: Annotated[str, Field(max_length=2000)] = ""
-    seeds: Union[Annotated[int, Field(ge=1, le=10_000)], Annotated[list[Annotated[int, Field(ge=0, lt=2**31)]], Field(min_length=1, max_length=10_000)]] = 3
-    metric: str = "val_accuracy"
-    # Differences inside ±margin (in the metric's units) do not matter: lesion diff can then call
-    # a comparison equivalent. Left out of the study's JSON while unset (see _without_unset_margin).
-    margin: Union[Positive, None] = None
+    """What the study is called, how many seeds each variant runs, and the metric that decides."""
 
-    @model_serializer(mode="wrap")
-    def _without_unset_margin(self, handler):
-        # The study hash covers the dumped study; a new optional key dumped as null would change
-        # the hash of every existing spec, and with it the folder its results are stored in.
-        data = handler(self)
-        if self.margin is None:
-            data.pop("margin", None)
-        return data
+    name: Annotated[str, Field(pattern=r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,63}$")]
+    """Names the result set folder (<name>-<first 12 hex of the study hash>)."""
+    description: Annotated[str, Field(max_length=2000)] = ""
+    """Free text for people; it is part of the study hash."""
+    seeds: Union[Annotated[int, Field(ge=1, le=10_000)], Annotated[list[Annotated[int, Field(ge=0, lt=2**31)]], Field(min_length=1, max_length=10_000)]] = 3
+    """A count n (seeds 0 … n−1) or a list of distinct seeds; every variant runs once per seed."""
+    metric: str = "val_accuracy"
+    """Headline metric, summarized by `lesion show` and compared by `lesion diff`."""
+    # Left out of the study's JSON while unset: a new optional key dumped as null would change the
+    # hash of every existing spec, and with it the folder its results are stored in.
+    margin: Annotated[Union[Positive, None], Field(exclude_if=lambda v: v is None)] = None
+    """Differences inside ±margin (in the metric's units) do not matter: `lesion diff` can then call a comparison equivalent."""
 
     @field_validator("seeds")
     @classmethod
@@ -103,13 +102,21 @@ class SyntheticData(Strict):
     of the study); each run's train/validation split is drawn from the run's seed."""
 
     kind: Literal["synthetic"] = "synthetic"
+    """A built-in generator (the default when kind is left out)."""
     generator: Literal["rings", "spirals", "blobs", "friedman1", "sines"] = "rings"
+    """rings, spirals, blobs: classification; friedman1, sines: regression."""
     samples: Annotated[int, Field(ge=8, le=MAX_SAMPLES)] = 2000
+    """Rows generated, training and validation together."""
     features: Annotated[int, Field(ge=1, le=4096)] = 8
+    """Input columns (the pattern lives in the first few; the rest is noise)."""
     classes: Annotated[int, Field(ge=1, le=1000)] = 3
+    """Classes of a classification generator."""
     noise: NonNegative = 0.1
+    """Standard deviation of the noise added by the generator."""
     validation: Annotated[float, Field(gt=0.0, lt=1.0, allow_inf_nan=False)] = 0.25
+    """Share of the rows held out for validation."""
     seed: Annotated[int, Field(ge=0, lt=2**31)] = 0
+    """Seed of the data set itself; the split comes from each run's seed."""
 
     @model_validator(mode="after")
     def _shape(self):
@@ -132,11 +139,17 @@ class FileData(Strict):
     or below it. A symbolic link placed there is followed; whoever placed it chose the target."""
 
     kind: Literal["file"]
+    """A table on disk."""
     path: Annotated[str, Field(min_length=1, max_length=4096)]
+    """Parquet, CSV or NPZ file, relative to the spec file's folder and inside it."""
     target: Annotated[str, Field(min_length=1)] = "y"
+    """Column (or NPZ array) holding the target."""
     features: Union[Annotated[list[str], Field(min_length=1)], None] = None
+    """Input columns; every column but the target when left out."""
     task: Literal["classification", "regression"] = "classification"
+    """classification: integer class labels; regression: real-valued target."""
     validation: Annotated[float, Field(gt=0.0, lt=1.0, allow_inf_nan=False)] = 0.25
+    """Share of the rows held out for validation."""
 
     @field_validator("path")
     @classmethod
@@ -165,7 +178,9 @@ class NeuronBudget(Strict):
     """A fixed number of hidden neurons spread evenly over ``depth`` layers."""
 
     neurons: Annotated[int, Field(ge=1, le=MAX_WIDTH * 16)]
+    """Hidden neurons in total; must divide evenly by depth."""
     depth: Annotated[int, Field(ge=1, le=64)]
+    """Number of hidden layers."""
 
     @model_validator(mode="after")
     def _divides(self):
@@ -186,11 +201,16 @@ def _hidden_form(value) -> str:
 
 
 class Model(Strict):
+    """The multilayer perceptron: hidden widths, activation and weight initialization."""
+
     hidden: Annotated[Union[Annotated[Annotated[list[Annotated[int, Field(ge=1, le=MAX_WIDTH)]], Field(max_length=64)], Tag("widths")],
                             Annotated[NeuronBudget, Tag("budget")]],
                       Discriminator(_hidden_form)] = [32, 32]
+    """Hidden layer widths ([] is a linear model), or a budget { neurons = 96, depth = 3 }."""
     activation: Literal["relu", "tanh", "sigmoid", "gelu", "identity"] = "relu"
+    """Activation of every hidden layer."""
     init: Literal["he_normal", "he_uniform", "glorot_normal", "glorot_uniform"] = "he_normal"
+    """Initialization of the weight matrices (biases start at zero)."""
 
     @property
     def widths(self) -> list[int]:
@@ -201,23 +221,29 @@ class Model(Strict):
 class L2(Strict):
     """Identity output, half squared error (regression)."""
     kind: Literal["l2"]
+    """Identity output, half squared error."""
 
 
 class KL(Strict):
     """Softmax output, KL(d || y) to the (optionally smoothed) target distribution."""
     kind: Literal["kl"]
+    """Softmax output, KL divergence to the target distribution."""
     label_smoothing: Rate = 0.0
+    """Share of the target probability spread evenly over all classes."""
 
 
 class BCE(Strict):
     """Sigmoid output, binary cross-entropy (two classes)."""
     kind: Literal["bce"]
+    """Sigmoid output, binary cross-entropy."""
 
 
 class Huber(Strict):
     """Identity output, Huber loss with threshold ``delta`` (regression)."""
     kind: Literal["huber"]
+    """Identity output, Huber loss."""
     delta: Positive = 1.0
+    """Error at which the loss turns from quadratic to linear."""
 
 
 Divergence = Annotated[Union[L2, KL, BCE, Huber], Field(discriminator="kind")]
@@ -225,20 +251,28 @@ Divergence = Annotated[Union[L2, KL, BCE, Huber], Field(discriminator="kind")]
 
 # ── normalization ───────────────────────────────────────────────────────────────────────────────
 class NoNorm(Strict):
+    """The affine map feeds the activation directly."""
+
     kind: Literal["none"]
+    """No normalization."""
 
 
 class BatchNorm(Strict):
     """Ioffe & Szegedy 2015. ``momentum`` weights the old running statistics."""
     kind: Literal["batch"]
+    """Batch normalization."""
     momentum: Rate = 0.9
+    """Weight of the old running statistics in each update."""
     epsilon: Positive = 1e-5
+    """Added to the variance before the square root."""
 
 
 class LayerNorm(Strict):
     """Ba, Kiros & Hinton 2016."""
     kind: Literal["layer"]
+    """Layer normalization."""
     epsilon: Positive = 1e-5
+    """Added to the variance before the square root."""
 
 
 Normalization = Annotated[Union[NoNorm, BatchNorm, LayerNorm], Field(discriminator="kind")]
@@ -246,38 +280,57 @@ Normalization = Annotated[Union[NoNorm, BatchNorm, LayerNorm], Field(discriminat
 
 # ── regularization ──────────────────────────────────────────────────────────────────────────────
 class Dropout(Strict):
+    """Dropout on the hidden layers during training."""
+
     rate: Rate = 0.0
+    """Probability of dropping a unit (or, for connect, a weight)."""
     kind: Literal["inverted", "scaled", "connect"] = "inverted"
+    """inverted: rescale while training; scaled: rescale at inference; connect: DropConnect on weights."""
 
 
 class Regularization(Strict):
+    """Weight decay and dropout."""
+
     weight_decay: Annotated[float, Field(ge=0.0, le=10.0, allow_inf_nan=False)] = 0.0
+    """λ of the penalty λ/2·‖W‖² on the weights (not biases)."""
     decoupled: bool = False
+    """false: decay in the loss; true: decay applied in the optimizer update."""
     dropout: Dropout = Dropout()
+    """Dropout rate and kind."""
 
 
 # ── optimizer ───────────────────────────────────────────────────────────────────────────────────
 class Constant(Strict):
+    """The learning rate stays at its base value."""
+
     kind: Literal["constant"]
+    """The base learning rate throughout."""
 
 
 class Exponential(Strict):
     """Learning rate multiplied by ``rate`` once per epoch (smoothly, per step)."""
     kind: Literal["exponential"]
+    """Decay by rate per epoch."""
     rate: Annotated[float, Field(gt=0.0, le=1.0, allow_inf_nan=False)] = 0.97
+    """Factor applied to the learning rate per epoch."""
 
 
 class Cosine(Strict):
     """Cosine decay over all training steps down to ``final_fraction`` of the base rate."""
     kind: Literal["cosine"]
+    """Cosine decay."""
     final_fraction: Fraction = 0.0
+    """Learning rate at the end, as a fraction of the base rate."""
 
 
 class WarmupCosine(Strict):
     """Linear warm-up from 0 over ``warmup_epochs``, then cosine decay to ``final_fraction``."""
     kind: Literal["warmup_cosine"]
+    """Linear warm-up, then cosine decay."""
     warmup_epochs: Annotated[int, Field(ge=1, le=MAX_EPOCHS)] = 1
+    """Epochs of linear warm-up from 0 to the base rate."""
     final_fraction: Fraction = 0.0
+    """Learning rate at the end, as a fraction of the base rate."""
 
 
 Schedule = Annotated[Union[Constant, Exponential, Cosine, WarmupCosine], Field(discriminator="kind")]
@@ -285,34 +338,58 @@ LearningRate = Annotated[float, Field(gt=0.0, le=1e6, allow_inf_nan=False)]
 
 
 class SGD(Strict):
+    """Stochastic gradient descent, with optional (Nesterov) momentum."""
+
     kind: Literal["sgd"]
+    """Stochastic gradient descent."""
     learning_rate: LearningRate = 0.05
+    """Base learning rate."""
     momentum: Rate = 0.0
+    """Momentum coefficient (0: plain SGD)."""
     nesterov: bool = False
+    """Nesterov's form of momentum."""
     schedule: Schedule = Constant(kind="constant")
+    """Learning-rate schedule, selected by kind."""
 
 
 class Adam(Strict):
+    """Kingma & Ba 2015."""
+
     kind: Literal["adam"]
+    """Adam."""
     learning_rate: LearningRate = 1e-3
+    """Base learning rate."""
     b1: Rate = 0.9
+    """Decay of the first-moment estimate."""
     b2: Rate = 0.999
+    """Decay of the second-moment estimate."""
     eps: Positive = 1e-8
+    """Added to the denominator for numerical stability."""
     schedule: Schedule = Constant(kind="constant")
+    """Learning-rate schedule, selected by kind."""
 
 
 class AdamW(Adam):
     """Adam with decoupled weight decay; λ is ``regularization.weight_decay``."""
     kind: Literal["adamw"]
+    """Adam with decoupled weight decay."""
 
 
 class RMSProp(Strict):
+    """Gradient scaled by a running mean of its square."""
+
     kind: Literal["rmsprop"]
+    """RMSProp."""
     learning_rate: LearningRate = 1e-3
+    """Base learning rate."""
     decay: Rate = 0.9
+    """Decay of the running mean of squared gradients."""
     eps: Positive = 1e-8
+    """Added to the denominator for numerical stability."""
     momentum: Rate = 0.0
+    """Momentum coefficient."""
     schedule: Schedule = Constant(kind="constant")
+    """Learning-rate schedule, selected by kind."""
 
 
 Optimizer = Annotated[Union[SGD, Adam, AdamW, RMSProp], Field(discriminator="kind")]
@@ -320,9 +397,14 @@ Optimizer = Annotated[Union[SGD, Adam, AdamW, RMSProp], Field(discriminator="kin
 
 # ── training ────────────────────────────────────────────────────────────────────────────────────
 class Training(Strict):
+    """How long and in what batches each run trains."""
+
     epochs: Annotated[int, Field(ge=1, le=MAX_EPOCHS)] = 20
+    """Passes over the training split."""
     batch_size: Annotated[int, Field(ge=1, le=MAX_SAMPLES)] = 64
+    """Rows per optimization step."""
     drop_last: bool = True
+    """Drop the last, incomplete batch of each epoch."""
 
 
 # ── ablation ────────────────────────────────────────────────────────────────────────────────────
@@ -332,8 +414,12 @@ _DOTTED = re.compile(_DOTTED_PATTERN)
 
 
 class Axis(Strict):
+    """One dotted key and the values it takes."""
+
     key: Annotated[str, Field(pattern=_DOTTED_PATTERN)]
+    """Dotted key of the setting to vary, e.g. optimizer.learning_rate."""
     values: Annotated[list[AxisValue], Field(min_length=1, max_length=1000)]
+    """Values the key takes, each a value of that setting."""
 
     @field_validator("values")
     @classmethod
@@ -348,8 +434,12 @@ class Axis(Strict):
 
 
 class ListedVariant(Strict):
+    """One named variant of mode = "list"."""
+
     label: Annotated[str, Field(min_length=1, max_length=200)]
+    """The variant's name in every report."""
     set: Annotated[dict[str, AxisValue], Field(min_length=1)]
+    """Dotted keys and the values this variant gives them."""
 
     @field_validator("set")
     @classmethod
@@ -362,10 +452,16 @@ class ListedVariant(Strict):
 
 
 class Ablation(Strict):
+    """How variants are derived from the base configuration."""
+
     mode: Literal["grid", "one_at_a_time", "list"] = "grid"
+    """grid: every combination of the axes; one_at_a_time: the base, then each value alone; list: the listed variants."""
     axis: Annotated[list[Axis], Field(max_length=32)] = []
+    """[[ablation.axis]] tables (grid and one_at_a_time)."""
     variant: Annotated[list[ListedVariant], Field(max_length=10_000)] = []
+    """[[ablation.variant]] tables (list)."""
     include_base: bool = True
+    """list: run the base configuration too, labelled base."""
 
     @model_validator(mode="after")
     def _fits_mode(self):
@@ -408,15 +504,26 @@ def classes_of(data: SyntheticData | FileData) -> int | None:
 
 
 class Spec(Strict):
+    """One study: a base configuration and an [ablation] that derives variants from it."""
+
     study: Study
+    """Name, seeds and headline metric."""
     data: Data = SyntheticData()
+    """The data set: a built-in generator or a file, selected by kind."""
     model: Model = Model()
+    """The multilayer perceptron."""
     divergence: Divergence = KL(kind="kl")
+    """The training loss and output activation, selected by kind."""
     normalization: Normalization = NoNorm(kind="none")
+    """Normalization between each hidden affine map and its activation, selected by kind."""
     regularization: Regularization = Regularization()
+    """Weight decay (in the loss or decoupled) and dropout on the hidden layers."""
     optimizer: Optimizer = SGD(kind="sgd")
+    """The optimizer and its learning-rate schedule, selected by kind."""
     training: Training = Training()
+    """Epochs and batches."""
     ablation: Union[Ablation, None] = None
+    """How variants are derived from the base configuration."""
 
     @model_validator(mode="after")
     def _coherent(self):

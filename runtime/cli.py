@@ -14,11 +14,12 @@ from __future__ import annotations
 
 import json
 import sys
+import time
 from enum import Enum
 from pathlib import Path
 
 import typer
-from typer.core import TyperGroup
+from typer.core import TyperCommand, TyperGroup
 
 from compiler.errors import SpecError
 from runtime.store import ResultSetError
@@ -49,6 +50,20 @@ class _Group(TyperGroup):
             raise typer.Exit(2) from None
 
 
+class _Command(TyperCommand):
+    """Usage lines name a required argument as its help does (SPEC), not in braces ({SPEC})."""
+
+    def collect_usage_pieces(self, ctx):
+        return [p[1:-1] if p.startswith("{") and p.endswith("}") else p for p in super().collect_usage_pieces(ctx)]
+
+
+def _version(value: bool) -> None:
+    if value:
+        from importlib.metadata import version
+        typer.echo(f"lesion {version('lesion')}")
+        raise typer.Exit()
+
+
 app = typer.Typer(
     cls=_Group,
     name="lesion",
@@ -57,10 +72,10 @@ app = typer.Typer(
          "Examples:\n\n"
          "  lesion check specs/cold-chain.toml\n\n"
          "  lesion run specs/cold-chain.toml            # prints the result set's path last\n\n"
-         "  lesion show results/cold-chain-<hash>\n\n"
-         "  lesion replay results/cold-chain-<hash>\n\n"
-         "  lesion diff results/cold-chain-<hash> --axis normalization.kind --margin 0.005\n\n"
-         "  lesion seeds results/cold-chain-<hash> --margin 0.005   # plan seeds from a pilot\n\n"
+         "  lesion show results/cold-chain-af23c1abfa5f\n\n"
+         "  lesion replay results/cold-chain-af23c1abfa5f\n\n"
+         "  lesion diff results/cold-chain-af23c1abfa5f --axis normalization.kind --margin 0.005\n\n"
+         "  lesion seeds results/cold-chain-af23c1abfa5f --margin 0.005   # plan seeds from a pilot\n\n"
          "  lesion diff results/A results/B --fail-on worse\n\n"
          "  lesion schema > lesion.schema.json",
     no_args_is_help=True,
@@ -68,6 +83,12 @@ app = typer.Typer(
     rich_markup_mode=None,
     pretty_exceptions_enable=False,
 )
+
+
+@app.callback()
+def _main(version: bool = typer.Option(False, "--version", callback=_version, is_eager=True,
+                                       help="Print lesion's version and exit.")) -> None:
+    pass
 
 
 def _loaded_user_errors() -> tuple[type[Exception], ...]:
@@ -85,6 +106,9 @@ class Format(str, Enum):
     json = "json"
 
 
+_WIDE_HELP = "Every column, one line per row, whatever the terminal's width."
+
+
 class Output(str, Enum):
     table = "table"
     json = "json"
@@ -92,10 +116,11 @@ class Output(str, Enum):
     markdown = "markdown"
 
 
-@app.command()
+@app.command(cls=_Command)
 def check(
-    spec: Path = typer.Argument(..., help="The study's TOML spec file.", show_default=False),
+    spec: Path = typer.Argument(..., metavar="SPEC", help="The study's TOML spec file.", show_default=False),
     format: Format = typer.Option(Format.table, "--format", "-f", help="table for people, json for programs."),
+    wide: bool = typer.Option(False, "--wide", help=_WIDE_HELP),
 ) -> None:
     """Validate a spec and list the variants and runs it expands to; exit 2 listing every problem.
 
@@ -111,7 +136,7 @@ def check(
     if format is Format.json:
         typer.echo(json.dumps(_check_report(study), indent=2, ensure_ascii=False))
         return
-    _print_check_table(study)
+    _print_check_table(study, wide)
 
 
 def _check_report(study) -> dict:
@@ -131,11 +156,9 @@ def _check_report(study) -> dict:
     }
 
 
-def _print_check_table(study) -> None:
-    from rich.console import Console
-    from rich.table import Table
-
+def _print_check_table(study, wide: bool) -> None:
     from compiler.expand import format_value
+    from runtime.formats import Fit, render
 
     structures = sorted({v.structure for v in study.variants}, key=[v.structure for v in study.variants].index)
     typer.echo(f"study       {study.spec.study.name}")
@@ -143,22 +166,26 @@ def _print_check_table(study) -> None:
     typer.echo(f"result set  {study.result_set}")
     typer.echo(f"{len(study.variants)} variants × {len(study.seeds)} seeds = {study.runs} runs, "
                f"compiled as {len(structures)} program{'s' if len(structures) != 1 else ''}")
-    table = Table(show_edge=False, header_style="bold")
-    for name in ("#", "label", "changes", "variant hash", "seeds", "structure"):
-        table.add_column(name, overflow="fold")
     seeds = _seeds_text(study.seeds)
+    rows = []
     for v in study.variants:
         changes = ", ".join(f"{k}={format_value(x)}" for k, x in v.changes.items()) or "(nothing: the base)"
-        if changes == v.label:
-            changes = "(as the label says)"
-        table.add_row(str(v.index), v.label, changes, v.hash[:12], seeds, v.structure)
-    Console(markup=False, highlight=False, emoji=False, width=_terminal_width()).print(table)
+        # A generated label already spells its changes out; the column then stays empty (and,
+        # when every label is generated, is left out).
+        rows.append({"#": v.index, "label": v.label, "changes": "" if changes == v.label else changes,
+                     "variant hash": v.hash[:12], "seeds": seeds, "structure": v.structure})
+    typer.echo(render(rows, list(rows[0]), "table", width=_terminal_width(wide),
+                      fit=Fit(keep=("#", "label"), drop=("structure", "seeds"), wrap=("label", "changes"))))
 
 
-def _terminal_width() -> int:
-    # Piped output has no width to respect; keep each variant on one line for grep and diff.
+def _terminal_width(wide: bool = False) -> int | None:
+    """The width tables are fitted to; None (every column, one line per row) with --wide, or when
+    stdout is piped and COLUMNS is not set: there is no width to respect, and grep wants whole rows."""
+    import os
     import shutil
-    return shutil.get_terminal_size((100, 24)).columns if sys.stdout.isatty() else 200
+    if wide or not (sys.stdout.isatty() or os.environ.get("COLUMNS", "").isdigit()):
+        return None
+    return shutil.get_terminal_size().columns
 
 
 def _seeds_text(seeds: list[int]) -> str:
@@ -167,7 +194,7 @@ def _seeds_text(seeds: list[int]) -> str:
     return ",".join(map(str, seeds))
 
 
-@app.command()
+@app.command(cls=_Command)
 def schema() -> None:
     """Print the JSON Schema (draft 2020-12) of a spec file, for editors that complete keys.
 
@@ -187,15 +214,15 @@ def _err(text: str) -> None:
     typer.echo(text, err=True)
 
 
-@app.command()
+@app.command(cls=_Command)
 def run(
-    spec: Path = typer.Argument(..., help="The study's TOML spec file.", show_default=False),
-    out: Path = typer.Option(Path("results"), "--out", "-o", help="Folder that receives the result set."),
-    lanes: int = typer.Option(None, "--lanes", min=1, max=4096,
+    spec: Path = typer.Argument(..., metavar="SPEC", help="The study's TOML spec file.", show_default=False),
+    out: Path = typer.Option(Path("results"), "--out", "-o", metavar="DIR", help="Folder that receives the result set."),
+    lanes: int = typer.Option(None, "--lanes", min=1, max=4096, metavar="N",
                               help="Runs per compiled program call (lane width); default: chosen per structure."),
     fresh: bool = typer.Option(False, "--fresh", help="Recompute every run, even those already stored."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bars or summary on stderr."),
-    cluster: str = typer.Option(None, "--cluster",
+    cluster: str = typer.Option(None, "--cluster", metavar="ADDRESS",
                                 help="Run the groups on a Dask scheduler (tcp://HOST:PORT) or on N local "
                                      "worker processes (local:N); results are written here."),
 ) -> None:
@@ -248,21 +275,24 @@ class _nothing:
 
 
 class _RunProgress:
-    """A rich progress bar per compile group on stderr: runs, epochs, elapsed and remaining."""
+    """Progress on stderr: a bar per compile group that says when it is compiling, then counts
+    epochs as they finish; and a bar for the whole study, in runs, with the finishing estimate."""
 
-    def __init__(self, study):
+    def __init__(self, study, console=None):
         from rich.console import Console
-        from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn, \
-            TimeRemainingColumn
+        from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
 
-        self.progress = Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
-                                 TextColumn("epochs"), TimeElapsedColumn(), TimeRemainingColumn(),
-                                 console=Console(stderr=True), transient=False)
+        self.progress = Progress(TextColumn("{task.description}"), BarColumn(), TextColumn("{task.fields[count]}"),
+                                 TimeElapsedColumn(), TextColumn("{task.fields[left]}"),
+                                 console=console or Console(stderr=True), transient=False)
         self.task = None
-        self.done = 0
-        self.total = 0
+        self.study = None
+        self.label = ""
+        self.runs_done = 0
+        self.group_runs = 0
         self.groups = 0
         self.index = 0
+        self.started = self.first_epoch = 0.0
 
     def __enter__(self):
         self.progress.__enter__()
@@ -273,66 +303,131 @@ class _RunProgress:
 
     def __call__(self, event, **info):
         if event == "plan":
-            self.total, self.groups = info["runs"], info["groups"]
+            self.groups = info["groups"]
             if info["runs"] == 0:
                 self.progress.console.print(f"all {info['planned']} runs already stored")
-            elif info.get("estimate") is not None:
+                return
+            if info.get("estimate") is not None:
                 self.progress.console.print(f"{info['runs']} runs to compute: needs {info['estimate'].describe()}")
+            self.started = time.monotonic()
+            self.study = self.progress.add_task("study", total=info["runs"], count=f"0/{info['runs']} runs", left="")
         elif event == "group":
             g = info["group"]
             self.index += 1
-            self.task = self.progress.add_task(
-                f"group {self.index}/{self.groups} ({len(g.runs)} runs, width {g.lane_width})",
-                total=g.runs[0].variant.spec.training.epochs)
+            self.group_runs = len(g.runs)
+            self.label = f"group {self.index}/{self.groups} ({len(g.runs)} runs, width {g.lane_width})"
+            epochs = g.runs[0].variant.spec.training.epochs
+            # Until the first epoch ends the program is being compiled (or loaded from the cache).
+            self.task = self.progress.add_task(f"{self.label} compiling", total=epochs, count=f"0/{epochs} epochs",
+                                               left="")
         elif event == "epoch":
-            self.progress.update(self.task, completed=info["done"])
+            done, total = info["done"], info["total"]
+            if done == 1:
+                self.first_epoch = time.monotonic()
+            # Epochs after the first take alike; the first also pays for loading the program.
+            left = (time.monotonic() - self.first_epoch) / (done - 1) * (total - done) if done > 1 else None
+            self.progress.update(self.task, description=self.label, completed=done, total=total,
+                                 count=f"{done}/{total} epochs", left=_left(left))
+            self._study(self.runs_done + self.group_runs * done / total)
         elif event == "stored":
-            self.done += len(info["group"].runs)
+            self.runs_done += len(info["group"].runs)
+            if self.task is not None:
+                task = self.progress.tasks[self.task]
+                self.progress.update(self.task, description=self.label, completed=task.total,
+                                     count=f"{int(task.total)}/{int(task.total)} epochs", left="")
+            self._study(self.runs_done)
+
+    def _study(self, runs: float) -> None:
+        if self.study is not None:
+            total = self.progress.tasks[self.study].total
+            # Compiles included: the time so far per run done, times the runs still to do.
+            left = (time.monotonic() - self.started) / runs * (total - runs) if runs else None
+            self.progress.update(self.study, completed=runs, count=f"{int(runs)}/{int(total)} runs", left=_left(left))
 
 
-@app.command()
+def _left(seconds: float | None) -> str:
+    if seconds is None:
+        return ""
+    if seconds < 1:
+        return "under 1 s left"
+    minutes, secs = divmod(round(seconds), 60)
+    return f"about {minutes}:{secs:02d} left"
+
+
+@app.command(cls=_Command)
 def show(
-    result: Path = typer.Argument(..., help="A result set folder written by 'lesion run'.", show_default=False),
+    result: Path = typer.Argument(..., metavar="RESULT", help="A result set folder written by 'lesion run'.", show_default=False),
     format: Output = typer.Option(Output.table, "--format", "-f", help="table, json, csv or markdown."),
     curves: bool = typer.Option(False, "--curves", help="Per-epoch means per variant instead of the summary."),
-    metric: list[str] = typer.Option(None, "--metric", "-m", help="Metric(s) to show (default: the study's)."),
+    metric: list[str] = typer.Option(None, "--metric", "-m", metavar="METRIC",
+                                     help="Metric(s) to show, the option repeated for several (default: the study's)."),
+    runs: bool = typer.Option(False, "--runs", help="One row per run, with the run id that 'lesion replay --run' takes."),
+    wide: bool = typer.Option(False, "--wide", help=_WIDE_HELP),
 ) -> None:
     """Summarize a result set per variant: runs ok/diverged, mean ± sd and 95 % CI across seeds.
 
     Examples:
 
-      lesion show results/cold-chain-7da471c81b78
+      lesion show results/cold-chain-af23c1abfa5f
 
-      lesion show results/cold-chain-7da471c81b78 --curves --format csv
+      lesion show results/cold-chain-af23c1abfa5f --metric val_accuracy --metric val_divergence
+
+      lesion show results/cold-chain-af23c1abfa5f --runs
+
+      lesion show results/cold-chain-af23c1abfa5f --curves --format csv
     """
+    import dataclasses
+
     from runtime.formats import render
-    from runtime.show import SUMMARY_COLUMNS, curve_rows, summary_rows
+    from runtime.show import (CURVES_FIT, RUNS_FIT, SUMMARY_COLUMNS, SUMMARY_FIT, axis_values, curve_rows, run_rows,
+                              summary_rows)
     from runtime.store import open_result_set
 
+    if curves and runs:
+        raise UsageError("give --curves or --runs, not both")
     rs = open_result_set(result)
     name = rs.tree["study"]["name"]
+    metrics = metric or [rs.headline]
     try:
         if curves:
             rows, columns = curve_rows(rs, metric or None)
+            fit = CURVES_FIT
             title = f"{name} ({rs.study_hash[:12]}): per-epoch means over ok runs"
+        elif runs:
+            rows, columns = run_rows(rs, metrics)
+            fit = dataclasses.replace(RUNS_FIT, keep=RUNS_FIT.keep + tuple(metrics))
+            title = f"{name} ({rs.study_hash[:12]}): {len(rows)} runs, final {', '.join(metrics)}"
         else:
-            if metric and len(metric) > 1:
-                raise UsageError("show summarizes one metric at a time (give --metric once)")
-            m = metric[0] if metric else rs.headline
-            rows, columns = summary_rows(rs, m), SUMMARY_COLUMNS
-            title = f"{name} ({rs.study_hash[:12]}): final {m} across seeds (mean, sd, 95% CI)"
+            rows = [{"variant": r["variant"], "metric": m, **r} for m in metrics for r in summary_rows(rs, m)]
+            if len(metrics) > 1:
+                order = [r["variant"] for r in rows]
+                rows.sort(key=lambda r: order.index(r["variant"]))
+                columns = ["variant", "metric", *SUMMARY_COLUMNS[1:]]
+                fit = dataclasses.replace(SUMMARY_FIT, keep=SUMMARY_FIT.keep + ("metric",))
+            else:
+                columns, fit = SUMMARY_COLUMNS, SUMMARY_FIT
+            title = f"{name} ({rs.study_hash[:12]}): final {', '.join(metrics)} across seeds (mean, sd, 95% CI)"
     except ValueError as err:
         raise UsageError(str(err)) from None
-    typer.echo(render(rows, columns, format.value, title=title))
+    extra = None
+    if format in (Output.json, Output.csv):
+        # Programs get the varied keys' values as fields of their own, not only inside the label.
+        keys, values = axis_values(rs)
+        rows = [{**r, **values.get(r["variant"], {})} for r in rows]
+        columns = [*columns, *keys]
+        extra = {"study": name, "study_hash": rs.study_hash, "metrics": metrics, "axes": keys}
+    typer.echo(render(rows, columns, format.value, title=title, extra=extra, width=_terminal_width(wide), fit=fit))
 
 
-@app.command()
+@app.command(cls=_Command)
 def replay(
-    result: Path = typer.Argument(..., help="A result set folder written by 'lesion run'.", show_default=False),
-    run: str = typer.Option(None, "--run", help="Replay this run id (a unique prefix is enough)."),
-    variant: str = typer.Option(None, "--variant", help="Replay the runs of this variant label."),
+    result: Path = typer.Argument(..., metavar="RESULT", help="A result set folder written by 'lesion run'.", show_default=False),
+    run: str = typer.Option(None, "--run", metavar="RUN_ID",
+                           help="Replay this run id (a unique prefix is enough; 'lesion show --runs' lists them)."),
+    variant: str = typer.Option(None, "--variant", metavar="LABEL", help="Replay the runs of this variant label."),
     all_runs: bool = typer.Option(False, "--all", help="Replay every selected run, not one per variant."),
     format: Format = typer.Option(Format.table, "--format", "-f", help="table for people, json for programs."),
+    wide: bool = typer.Option(False, "--wide", help=_WIDE_HELP),
 ) -> None:
     """Re-execute stored runs from the result set's own spec and compare them bit for bit.
 
@@ -341,13 +436,13 @@ def replay(
 
     Examples:
 
-      lesion replay results/cold-chain-7da471c81b78
+      lesion replay results/cold-chain-af23c1abfa5f
 
-      lesion replay results/cold-chain-7da471c81b78 --variant "normalization.kind=batch, regularization.dropout.rate=0.15" --all
+      lesion replay results/cold-chain-af23c1abfa5f --variant "normalization.kind=batch, regularization.dropout.rate=0.15" --all
     """
     if run is not None and variant is not None:
         raise UsageError("give --run or --variant, not both")
-    from runtime.formats import render
+    from runtime.formats import Fit, render
     from runtime.replay import replay as do_replay
 
     report = do_replay(result, run=run, variant=variant, everything=all_runs,
@@ -366,7 +461,9 @@ def replay(
                 typer.echo(f"  {line}")
         else:
             typer.echo("environment: same as recorded")
-        typer.echo(render(rows, columns, "table", title="replay"))
+        typer.echo(render(rows, columns, "table", title="replay", width=_terminal_width(wide),
+                          fit=Fit(keep=("run_id", "verdict"), drop=("lane_width", "max_rel", "digest"),
+                                  wrap=("variant",))))
         differing = sum(r.verdict != "identical" for r in report.rows)
         if differing and report.environment_changes:
             typer.echo(f"{differing} run(s) differ, and the environment changed (above): differing bits are "
@@ -389,21 +486,26 @@ class Correction(str, Enum):
     bh = "bh"
 
 
-@app.command()
+@app.command(cls=_Command)
 def diff(
-    a: Path = typer.Argument(..., help="Result set A (the reference).", show_default=False),
-    b: Path = typer.Argument(None, help="Result set B (the change). Omit to compare within A.", show_default=False),
-    baseline: str = typer.Option(None, "--baseline", help="Compare every variant of A with this variant of A."),
-    axis: str = typer.Option(None, "--axis", help="Grid: ask only about this axis (its effect at each level of "
-                             "the others, on average, and its interaction with each other axis)."),
-    metric: list[str] = typer.Option(None, "--metric", "-m", help="Metric(s) to compare (default: the study's)."),
-    margin: float = typer.Option(None, "--margin", help="Practical margin in the metric's units: differences "
-                                 "inside ±MARGIN do not matter (default: the spec's study.margin)."),
+    a: Path = typer.Argument(..., metavar="A", help="Result set A (the reference).", show_default=False),
+    b: Path = typer.Argument(None, metavar="B", help="Result set B (the change). Omit to compare within A.",
+                             show_default=False),
+    baseline: str = typer.Option(None, "--baseline", metavar="VARIANT",
+                                 help="Compare every variant of A with this variant of A: its label, a short label "
+                                      "('kind=batch, 0.0'), its index, or 'base' (the base configuration)."),
+    axis: str = typer.Option(None, "--axis", metavar="KEY", help="Grid: ask only about this axis (its effect at each "
+                             "level of the others, on average, and its interaction with each other axis)."),
+    metric: list[str] = typer.Option(None, "--metric", "-m", metavar="METRIC",
+                                     help="Metric(s) to compare (default: the study's)."),
+    margin: float = typer.Option(None, "--margin", metavar="D", help="Practical margin in the metric's units: "
+                                 "differences inside ±D do not matter (default: the spec's study.margin)."),
     correction: Correction = typer.Option(Correction.holm, "--correction",
                                           help="Multiple-comparison adjustment: holm (family-wise) or bh (false discovery rate)."),
-    alpha: float = typer.Option(0.05, "--alpha", min=1e-6, max=0.5, help="Significance level of adjusted p-values."),
+    alpha: float = typer.Option(0.05, "--alpha", min=1e-6, max=0.5, metavar="P", help="Significance level of adjusted p-values."),
     format: Output = typer.Option(Output.table, "--format", "-f", help="table, json, csv or markdown."),
     fail_on: FailOn = typer.Option(FailOn.never, "--fail-on", help="'worse': exit 1 if any adjusted comparison is worse."),
+    wide: bool = typer.Option(False, "--wide", help=_WIDE_HELP),
 ) -> None:
     """Decide, per question, whether a change is better, worse, equivalent within a margin, or not yet known.
 
@@ -414,16 +516,16 @@ def diff(
 
     Examples:
 
-      lesion diff results/cold-chain-7da471c81b78 --axis normalization.kind --margin 0.01
+      lesion diff results/cold-chain-af23c1abfa5f --axis normalization.kind --margin 0.01
 
-      lesion diff results/cold-chain-7da471c81b78 results/cold-chain-0c2f5a9e1d44
+      lesion diff results/cold-chain-af23c1abfa5f results/cold-chain-<other hash>
 
-      lesion diff A --baseline "normalization.kind=none, regularization.dropout.rate=0.0"
+      lesion diff results/cold-chain-af23c1abfa5f --baseline base
 
       lesion diff A B --format markdown --fail-on worse
     """
     from runtime.diff import DIFF_COLUMNS
-    from runtime.formats import render
+    from runtime.formats import Fit, render
 
     if b is not None and (baseline is not None or axis is not None):
         raise UsageError("--baseline and --axis compare within one result set: give A alone")
@@ -451,7 +553,15 @@ def diff(
                 family = [r for r in report.rows if r["question"] == q]
                 rows, columns = _compact_diff(family, baseline is not None or b is None) if format is Output.table \
                     else (family, DIFF_COLUMNS)
-                typer.echo(render(rows, columns, format.value, title=_family_title(q, family, method)) + "\n")
+                # With one metric its name is in every row; with several it tells the rows apart.
+                many = len({r["metric"] for r in family}) > 1
+                fit = Fit(keep=("variant", "B − A", "CI", "p adj", "verdict", "seeds needed")
+                          + (("metric",) if many else ()),
+                          drop=("test", "p", "n", "A", "B", "p flip", "B − A in sd", "detectable")
+                          + (() if many else ("metric",)),
+                          wrap=("variant", "CI", "verdict", "P(B better)"))
+                typer.echo(render(rows, columns, format.value, title=_family_title(q, family, method),
+                                  width=_terminal_width(wide), fit=fit) + "\n")
         if format is Output.table:
             untested = [r for r in report.rows if r["verdict"] == "no test possible"]
             if untested:
@@ -511,9 +621,9 @@ def _compact_diff(rows: list[dict], within: bool) -> tuple[list[dict], list[str]
                  "B − A in sd", "detectable", "seeds needed", "verdict"]
 
 
-@app.command()
+@app.command(cls=_Command)
 def seeds(
-    pilot: Path = typer.Argument(..., help="A pilot result set written by 'lesion run'.", show_default=False),
+    pilot: Path = typer.Argument(..., metavar="PILOT", help="A pilot result set written by 'lesion run'.", show_default=False),
     margin: float = typer.Option(None, "--margin", help="Practical margin in the metric's units "
                                  "(default: the spec's study.margin)."),
     axis: str = typer.Option(None, "--axis", help="Grid: plan only the comparisons of this axis."),
@@ -529,7 +639,7 @@ def seeds(
 
     Examples:
 
-      lesion seeds results/cold-chain-7da471c81b78 --axis normalization.kind --margin 0.005
+      lesion seeds results/cold-chain-af23c1abfa5f --axis normalization.kind --margin 0.005
     """
     from runtime.diff import SEEDS_COLUMNS
     from runtime.formats import render
@@ -551,28 +661,28 @@ class PlotKind(str, Enum):
     grid = "grid"
 
 
-@app.command()
+@app.command(cls=_Command)
 def plot(
-    result: Path = typer.Argument(..., help="A result set folder written by 'lesion run'.", show_default=False),
-    out: Path = typer.Option(None, "--out", "-o", help="Picture to write, .png or .svg "
+    result: Path = typer.Argument(..., metavar="RESULT", help="A result set folder written by 'lesion run'.", show_default=False),
+    out: Path = typer.Option(None, "--out", "-o", metavar="FILE", help="Picture to write, .png or .svg "
                              "(default: <result set>/plots/<kind>.png)."),
     kind: PlotKind = typer.Option(PlotKind.curves, "--kind", "-k",
                                   help="curves: per-epoch means; arms: final values per variant; "
                                        "grid: heat map of a two-axis grid."),
-    metric: list[str] = typer.Option(None, "--metric", "-m", help="Metric(s) to draw (default: the study's; "
+    metric: list[str] = typer.Option(None, "--metric", "-m", metavar="METRIC", help="Metric(s) to draw (default: the study's; "
                                      "curves also draw train and val divergence)."),
-    baseline: str = typer.Option(None, "--baseline", help="arms: the variant to mark as the baseline "
+    baseline: str = typer.Option(None, "--baseline", metavar="LABEL", help="arms: the variant to mark as the baseline "
                                  "(default: the one labelled 'base', if any)."),
-    against: Path = typer.Option(None, "--against", help="Draw the diff from RESULT (A) to this result set (B)."),
-    margin: float = typer.Option(None, "--margin", help="With --against: the practical margin, as in diff."),
+    against: Path = typer.Option(None, "--against", metavar="RESULT", help="Draw the diff from RESULT (A) to this result set (B)."),
+    margin: float = typer.Option(None, "--margin", metavar="D", help="With --against: the practical margin, as in diff."),
 ) -> None:
     """Draw a result set as a picture (PNG or SVG) and print the written path.
 
     Examples:
 
-      lesion plot results/cold-chain-7da471c81b78
+      lesion plot results/cold-chain-af23c1abfa5f
 
-      lesion plot results/cold-chain-7da471c81b78 --kind grid -o grid.svg
+      lesion plot results/cold-chain-af23c1abfa5f --kind grid -o grid.svg
 
       lesion plot results/kiln-drift-4f765a63c96a --kind arms --metric val_rmse --metric val_divergence
 

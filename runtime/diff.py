@@ -18,6 +18,8 @@ change at a time or a list, each variant against the base.
 Each *question* is one family: its p-values are adjusted together, its intervals are drawn at the
 level α* that agrees with the adjusted p-values (``runtime.stats.family_alpha``), and each row's
 verdict is read off that interval (``runtime.stats.decide``), with an optional practical margin.
+
+:func:`resolve_variant` says how a baseline may be named.
 """
 
 from __future__ import annotations
@@ -30,7 +32,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from compiler.errors import SpecError
-from compiler.expand import format_value
+from compiler.expand import BASE_LABEL, expand, format_value
 from compiler.hashing import variant_payload
 from compiler.loader import load_text
 from compiler.spec import METRICS
@@ -39,7 +41,8 @@ from runtime.stats import (POWER, Comparison, adjust, compare, decide, detectabl
                            interaction_test, interval, seeds_needed)
 from runtime.store import ResultSet, ResultSetError
 
-__all__ = ["DiffReport", "diff_result_sets", "diff_baseline", "diff_design", "DIFF_COLUMNS", "SEEDS_COLUMNS"]
+__all__ = ["DiffReport", "diff_result_sets", "diff_baseline", "diff_design", "resolve_variant", "DIFF_COLUMNS",
+           "SEEDS_COLUMNS"]
 
 DIFF_COLUMNS = ["variant_a", "variant_b", "metric", "test", "n_a", "n_b", "mean_a", "mean_b", "diff",
                 "ci_low", "ci_high", "p", "p_adjusted", "p_sign_flip", "verdict",
@@ -80,10 +83,49 @@ def _loaded(rs: ResultSet):
         raise ResultSetError(f"{rs.path}: its stored spec does not load: {err.problems[0].render()}") from None
 
 
-def _variants(rs: ResultSet) -> list[dict]:
-    loaded = _loaded(rs)
+def _variants(rs: ResultSet, loaded=None) -> list[dict]:
+    loaded = loaded or _loaded(rs)
     return [{"label": v.label, "hash": v.hash, "payload": variant_payload(v.spec), "changes": v.changes}
             for v in loaded.variants]
+
+
+def resolve_variant(loaded, given: str, option: str = "--baseline") -> int:
+    """Index of the variant ``given`` names: its full label; its index in the study; ``base`` for
+    the variant whose configuration equals the spec's base (a grid cell included); or a short
+    label: comma-separated parts each naming one part of the label, whole, by its last dotted
+    pieces or by value ("kind=batch, 0.0"), or a prefix of the label, matching one variant alone."""
+    variants = loaded.variants
+    labels = [v.label for v in variants]
+    if given in labels:
+        return labels.index(given)
+    if given.isdigit() and int(given) < len(variants):
+        return int(given)
+    if given == BASE_LABEL:
+        base = expand(loaded.spec.model_copy(update={"ablation": None}))[0].hash
+        same = [i for i, v in enumerate(variants) if v.hash == base]
+        if same:
+            return same[0]
+        return _no_variant(labels, given, option, "no variant equals the base configuration")
+    tokens = [t.strip() for t in given.split(",") if t.strip()]
+
+    def names(token: str, part: str) -> bool:
+        value = part.split("=", 1)[-1]
+        return token in (part, value) or part.endswith("." + token)
+
+    hits = [i for i, lab in enumerate(labels)
+            if lab.startswith(given) or (tokens and all(any(names(t, p) for p in lab.split(", ")) for t in tokens))]
+    if len(hits) == 1:
+        return hits[0]
+    if hits:
+        return _no_variant([labels[i] for i in hits], given, option, f"names {len(hits)} variants", [*hits])
+    return _no_variant(labels, given, option, "no such variant")
+
+
+def _no_variant(labels, given, option, why, indices=None):
+    # One label per line: labels themselves contain ", ".
+    indices = indices or range(len(labels))
+    raise ResultSetError("\n".join([f"{option} {given!r}: {why}; give a label, an index or 'base':"]
+                                   + [f"  {i}  {lab}" for i, lab in zip(indices, labels)]))
 
 
 def _values(rs: ResultSet, cols: dict, variant_hash: str, metric: str) -> dict[int, float | None]:
@@ -224,15 +266,14 @@ def diff_result_sets(rs_a: ResultSet, rs_b: ResultSet, *, metrics: list[str] | N
 def diff_baseline(rs: ResultSet, baseline: str, *, metrics: list[str] | None = None,
                   correction: str = "holm", alpha: float = 0.05, margin: float | None = None,
                   power: float = POWER) -> DiffReport:
-    variants = _variants(rs)
-    base = [v for v in variants if v["label"] == baseline]
-    if not base:
-        raise ResultSetError(f"--baseline {baseline!r}: no such variant (labels: "
-                             f"{', '.join(v['label'] for v in variants)})")
-    pairs = [(base[0], v) for v in variants if v is not base[0]]
+    loaded = _loaded(rs)
+    variants = _variants(rs, loaded)
+    base = variants[resolve_variant(loaded, baseline)]
+    pairs = [(base, v) for v in variants if v is not base]
     metrics = _metrics(rs, metrics)
     items = _pair_rows(pairs, rs, rs, metrics)
-    return _report([(f"each variant vs '{baseline}'", "contrasts", items)], correction, alpha,
+    title = f"each variant vs '{base['label']}'"
+    return _report([(title, "contrasts", items)], correction, alpha,
                    _margins(rs, metrics, margin), power, changes=[], same_study=True)
 
 

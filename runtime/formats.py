@@ -1,7 +1,12 @@
 """Rendering rows of results as a terminal table, JSON, CSV or Markdown.
 
-Every report (show, diff, replay) builds a list of plain dicts and one column list; this module is
-the only place that turns them into text, so the four formats always agree on content.
+Every report (show, diff, replay, check) builds a list of plain dicts and one column list; this
+module is the only place that turns them into text, so the four formats always agree on content.
+
+A terminal table is fitted to a width: each report declares with a :class:`Fit` which columns it
+must keep, which go first and which may wrap; a column added to a report's list later needs no
+layout of its own (unless declared, it may be dropped, right to left). ``width=None`` is the wide
+layout: every column, one line per row.
 """
 
 from __future__ import annotations
@@ -10,9 +15,10 @@ import csv
 import io
 import json
 import math
+from dataclasses import dataclass
 from typing import Any, Sequence
 
-__all__ = ["FORMATS", "render", "fmt_number"]
+__all__ = ["FORMATS", "Fit", "render", "fmt_number"]
 
 FORMATS = ("table", "json", "csv", "markdown")
 
@@ -45,9 +51,29 @@ def _json_safe(value):
     return value
 
 
+@dataclass(frozen=True)
+class Fit:
+    """How a report's table gives way when the terminal is narrower than the table.
+
+    Columns whose cells are all empty go first, then ``drop`` in its order, then every other column
+    not in ``keep`` from the right; ``wrap`` columns break at spaces (labels such as
+    ``a=1, b=2`` break between their parts) instead of being dropped.
+    """
+
+    keep: tuple[str, ...] = ()
+    drop: tuple[str, ...] = ()
+    wrap: tuple[str, ...] = ()
+
+
+# Between two columns: a blank rule and one space of padding on its left.
+_GAP = 2
+
+
 def render(rows: Sequence[dict], columns: Sequence[str], fmt: str, *, title: str = "",
-           headers: dict[str, str] | None = None, extra: dict | None = None) -> str:
-    """``extra`` is carried whole into JSON (e.g. a spec diff) and as lines above the other formats."""
+           headers: dict[str, str] | None = None, extra: dict | None = None,
+           width: int | None = None, fit: Fit = Fit()) -> str:
+    """``extra`` is carried whole into JSON (e.g. a spec diff) and as lines above the other formats;
+    ``width`` and ``fit`` only shape the table format."""
     headers = headers or {}
     if fmt == "json":
         doc = {"title": title, **(extra or {}), "rows": [{c: _json_safe(r.get(c)) for c in columns} for r in rows]}
@@ -68,18 +94,67 @@ def render(rows: Sequence[dict], columns: Sequence[str], fmt: str, *, title: str
         lines += ["| " + " | ".join(x.replace("|", "\\|") for x in row) + " |" for row in cells]
         return "\n".join(lines)
     if fmt == "table":
-        from rich.console import Console
-        from rich.table import Table
-
-        table = Table(title=title or None, show_lines=False, header_style="bold")
-        for c, h in zip(columns, heads):
-            table.add_column(h, justify="right" if _numeric(rows, c) else "left", overflow="fold")
-        for row in cells:
-            table.add_row(*row)
-        console = Console(file=io.StringIO(), width=200, color_system=None, force_terminal=False)
-        console.print(table)
-        return console.file.getvalue().rstrip("\n")
+        return _table(rows, list(columns), cells, heads, title, width, fit)
     raise ValueError(f"unknown format {fmt!r} (expected one of {', '.join(FORMATS)})")
+
+
+def _table(rows, columns, cells, heads, title, width, fit) -> str:
+    import textwrap
+
+    from rich import box
+    from rich.cells import cell_len
+    from rich.console import Console
+    from rich.table import Table
+
+    def longest(c: int, words: bool) -> int:
+        texts = [heads[c]] + [row[c] for row in cells]
+        return max(cell_len(w) for t in texts for w in (t.split() if words else [t]) or [""])
+
+    def need(c: int) -> int:
+        # Narrowest a column can be: its longest cell, or its longest word when it may wrap.
+        return longest(c, width is not None and columns[c] in fit.wrap)
+
+    shown = [i for i, c in enumerate(columns) if any(row[i] for row in cells) or not cells]
+    dropped = []
+    if width is not None:
+        order = [c for c in fit.drop if c in columns] + [c for c in reversed(columns) if c not in fit.drop]
+        order = [columns.index(c) for c in order if c not in fit.keep and columns.index(c) in shown]
+        while sum(map(need, shown)) + _GAP * (len(shown) - 1) > width and order:
+            i = order.pop(0)
+            shown.remove(i)
+            dropped.append(columns[i])
+    # Widths are decided here, not by rich: it would squeeze any column, and the narrow layout
+    # promises that only the wrapping ones give way (the widest first, never below a word).
+    widths = {i: longest(i, False) for i in shown}
+    if width is not None:
+        while sum(widths.values()) + _GAP * (len(shown) - 1) > width:
+            give = [i for i in shown if columns[i] in fit.wrap and widths[i] > need(i)]
+            if not give:
+                break
+            widths[max(give, key=widths.get)] -= 1
+        for i in shown:
+            if columns[i] in fit.wrap:
+                # No wider than the longest line its cells actually wrap to.
+                widths[i] = max(cell_len(line) for t in [heads[i]] + [row[i] for row in cells]
+                                for line in textwrap.wrap(t, widths[i], break_long_words=False) or [""])
+    table = Table(box=box.SIMPLE_HEAD, show_edge=False, pad_edge=False, padding=(0, 1, 0, 0), header_style="bold")
+    for i in shown:
+        table.add_column(heads[i], justify="right" if _numeric(rows, columns[i]) else "left",
+                         no_wrap=columns[i] not in fit.wrap, overflow="fold", width=widths[i])
+    for row in cells:
+        table.add_row(*(row[i] for i in shown))
+    # The wide layout is as wide as its longest row; a console wider than any table lets it be.
+    console = Console(file=io.StringIO(), width=width or 100_000, color_system=None, force_terminal=False,
+                      markup=False, highlight=False, emoji=False)
+    console.print(table)
+    lines = [x.rstrip() for x in console.file.getvalue().rstrip("\n").splitlines()]
+    if title:
+        lines[:0] = textwrap.wrap(title, width) if width else [title]
+    if dropped:
+        note = (f"not shown at {width} columns: {', '.join(sorted(dropped, key=columns.index))} "
+                f"(--wide shows every column)")
+        lines += textwrap.wrap(note, width)
+    return "\n".join(lines)
 
 
 def _numeric(rows, column) -> bool:

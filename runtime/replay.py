@@ -100,7 +100,7 @@ def _select(cols, run: str | None, variant: str | None, everything: bool) -> lis
     if run is not None:
         idx = [i for i in idx if cols["run_id"][i] == run or cols["run_id"][i].startswith(run)]
         if not idx:
-            raise ResultSetError(f"no run {run!r} in this result set (see 'lesion show' for run ids)")
+            raise ResultSetError(f"no run {run!r} in this result set ('lesion show --runs' lists them)")
         return idx[:1] if len(idx) > 1 and not everything else idx
     if variant is not None:
         idx = [i for i in idx if cols["variant_label"][i] == variant]

@@ -10,13 +10,22 @@ from __future__ import annotations
 
 import numpy as np
 
+from runtime.formats import Fit
 from runtime.stats import summarize
 from runtime.store import ResultSet
 
-__all__ = ["summary_rows", "curve_rows", "SUMMARY_COLUMNS"]
+__all__ = ["summary_rows", "curve_rows", "run_rows", "axis_values", "SUMMARY_COLUMNS", "SUMMARY_FIT", "CURVES_FIT",
+           "RUNS_FIT"]
 
 SUMMARY_COLUMNS = ["variant", "ok", "diverged", "mean", "sd", "ci_low", "ci_high",
                    "val_divergence", "val_divergence_sd", "groups", "seconds", "warnings"]
+# On a narrow terminal the headline's interval outlives the bookkeeping and the second metric;
+# "ok" out of the study's seeds still tells how many diverged.
+SUMMARY_FIT = Fit(keep=("variant", "ok", "mean", "ci_low", "ci_high"),
+                  drop=("groups", "seconds", "val_divergence_sd", "val_divergence", "diverged"), wrap=("variant",))
+CURVES_FIT = Fit(keep=("variant", "epoch"), wrap=("variant",))
+# The seed is also the run id's "-s<seed>"; the metrics' columns are added to keep by the caller.
+RUNS_FIT = Fit(keep=("run_id", "variant", "status"), drop=("seconds", "seed"), wrap=("variant",))
 
 
 def _variants(rs: ResultSet) -> list[tuple[int, str]]:
@@ -71,3 +80,26 @@ def curve_rows(rs: ResultSet, metrics: list[str] | None = None) -> tuple[list[di
                 row[m] = float(np.mean([curves[m][i] for i in sel]))
             rows.append(row)
     return rows, ["variant", "epoch", "runs", *metrics]
+
+
+def run_rows(rs: ResultSet, metrics: list[str]) -> tuple[list[dict], list[str]]:
+    """One row per stored run: its id (what ``lesion replay --run`` takes), seed, status and final
+    values."""
+    cols = rs.runs.to_pydict()
+    for m in metrics:
+        if f"final_{m}" not in cols:
+            have = sorted(c[len("final_"):] for c in cols if c.startswith("final_"))
+            raise ValueError(f"metric {m!r} is not in this result set (it has: {', '.join(have)})")
+    order = sorted(range(len(cols["run_id"])), key=lambda i: (cols["variant_index"][i], cols["seed"][i]))
+    rows = [{"run_id": cols["run_id"][i], "variant": cols["variant_label"][i], "seed": cols["seed"][i],
+             "status": cols["status"][i], "diverged_at": cols["diverged_at"][i],
+             **{m: cols[f"final_{m}"][i] for m in metrics}, "seconds": cols["run_seconds"][i]} for i in order]
+    return rows, ["run_id", "variant", "seed", "status", "diverged_at", *metrics, "seconds"]
+
+
+def axis_values(rs: ResultSet) -> tuple[list[str], dict[str, dict]]:
+    """The varied keys and, per variant label, each key's value: the result set stores one column
+    per varied key, named by its dotted path (no other column name has a dot)."""
+    keys = [c for c in rs.runs.column_names if "." in c]
+    cols = rs.runs.select(["variant_label", *keys]).to_pydict()
+    return keys, {lab: {k: cols[k][i] for k in keys} for i, lab in enumerate(cols["variant_label"])}

@@ -166,6 +166,13 @@ def _cannot_write(target: Path, err: OSError) -> ResultSetError:
                           "the result set keeps its previous complete state")
 
 
+def _umask() -> int:
+    # Reading the umask means setting it; it is set straight back.
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
 def _atomic_write(table: pa.Table, target: Path) -> None:
     try:
         fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=_TMP, dir=target.parent)
@@ -174,6 +181,9 @@ def _atomic_write(table: pa.Table, target: Path) -> None:
             raise _cannot_write(target, err) from None
         raise
     try:
+        # mkstemp creates 0600; the result set is a shared artifact, so it gets the mode any new
+        # file of the user would (0666 less the umask).
+        os.fchmod(fd, 0o666 & ~_umask())
         with os.fdopen(fd, "wb") as fh:
             pq.write_table(table, fh, compression="zstd")
             fh.flush()

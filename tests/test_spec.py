@@ -88,3 +88,47 @@ def test_study_margin_unset_keeps_the_study_hash_and_a_set_one_is_part_of_it(tmp
     assert margined.spec.study.margin == 0.01 and margined.study_hash != before
     # a run's identity does not depend on it: same variants, same hashes
     assert [v.hash for v in margined.variants] == [v.hash for v in load_study(ROOT / "specs" / "cold-chain.toml").variants]
+
+def test_schema_has_an_id_and_every_key_a_description(schema):
+    # JSON Schema 2020-12 Core §8.2.1: "$id" identifies a schema resource with an absolute URI
+    # (RFC 3986 §4.3: a scheme, then ":"); §9.1 (Validation): "description" annotates an instance.
+    assert schema["$id"].split(":", 1)[0] == "urn"
+    missing = []
+
+    def walk(node, path):
+        if isinstance(node, dict):
+            for key, sub in node.get("properties", {}).items():
+                if "description" not in sub and not path.endswith("/if"):
+                    missing.append(f"{path}/{key}")
+            for key, sub in node.items():
+                walk(sub, f"{path}/{key}")
+        elif isinstance(node, list):
+            for sub in node:
+                walk(sub, path)
+
+    walk(schema, "")
+    assert missing == []
+
+
+def _precise_error(schema, doc):
+    # jsonschema's best_match picks the most relevant error, as an editor would show it.
+    return jsonschema.exceptions.best_match(jsonschema.Draft202012Validator(schema).iter_errors(doc))
+
+
+@pytest.mark.parametrize("table, key, where", [
+    ({"normalization": {"kind": "batch", "epsilom": 1e-3}}, "epsilom", ["normalization"]),
+    ({"optimizer": {"kind": "adam", "schedule": {"kind": "cosine", "final_fraktion": 0.1}}}, "final_fraktion",
+     ["optimizer", "schedule"]),
+    ({"divergence": {"kind": "huber", "delt": 0.5}}, "delt", ["divergence"]),
+    ({"data": {"generater": "rings"}}, "generater", ["data"]),                # kind left out: the generators
+])
+def test_a_typo_inside_a_tagged_table_names_the_bad_key(schema, table, key, where):
+    error = _precise_error(schema, {"study": {"name": "x"}, **table})
+    assert error.validator == "additionalProperties" and repr(key) in error.message
+    assert list(error.absolute_path) == where
+
+
+def test_a_wrong_kind_lists_the_kinds(schema):
+    error = _precise_error(schema, {"study": {"name": "x"}, "normalization": {"kind": "bach"}})
+    assert list(error.absolute_path) == ["normalization", "kind"] and "'batch'" in error.message
+

@@ -8,6 +8,7 @@ import subprocess
 import sys
 from pathlib import Path
 
+import pyarrow.parquet as pq
 import pytest
 from typer.testing import CliRunner
 
@@ -88,3 +89,117 @@ def test_diff_cli_gate_and_formats(stored):
     assert alone.exit_code == 0 and "does optimizer.learning_rate matter?" in alone.stdout
     missing = runner.invoke(app, ["diff", str(path), str(path.parent / "absent")])
     assert missing.exit_code == 2 and "no such result set" in missing.stderr
+
+
+@pytest.mark.parametrize("width", [80, 120, 200])
+def test_tables_fit_the_terminal(stored, width):
+    spec, path, _ = stored
+    env = {"COLUMNS": str(width)}
+    for args in (["show", str(path)], ["show", str(path), "--curves"], ["check", str(spec)],
+                 ["diff", str(path), "--baseline", "optimizer.learning_rate=0.03"], ["diff", str(path), str(path)]):
+        res = runner.invoke(app, args, env=env)
+        assert res.exit_code == 0, res.output
+        assert max(map(len, res.stdout.splitlines())) <= width, (args, res.stdout)
+        # A generated label already says what changed; nothing spends columns on repeating that.
+        assert "(as the label says)" not in res.stdout
+    wide = runner.invoke(app, ["show", str(path), "--wide"], env={"COLUMNS": "80"}).stdout
+    assert max(map(len, wide.splitlines())) > 80 and "val_divergence_sd" in wide
+
+
+@pytest.mark.parametrize("given", ["optimizer.learning_rate=0.03", "0", "learning_rate=0.03", "0.03", "base"])
+def test_baseline_by_label_short_label_index_or_base(stored, given):
+    # The tiny study's base sets learning_rate = 0.1, which no grid cell has: 'base' is refused
+    # there; every other way names variant 0.
+    _, path, _ = stored
+    res = runner.invoke(app, ["diff", str(path), "--baseline", given, "-f", "json"])
+    if given == "base":
+        assert res.exit_code == 2 and "no variant equals the base configuration" in res.stderr
+        return
+    assert res.exit_code == 0, res.output
+    rows = json.loads(res.stdout)["rows"]
+    assert {r["variant_a"] for r in rows} == {"optimizer.learning_rate=0.03"}
+
+
+def test_unknown_baseline_lists_the_choices_one_per_line(stored):
+    _, path, _ = stored
+    res = runner.invoke(app, ["diff", str(path), "--baseline", "nope"])
+    assert res.exit_code == 2 and "Traceback" not in res.output
+    assert res.stderr.splitlines()[1:] == ["  0  optimizer.learning_rate=0.03", "  1  optimizer.learning_rate=0.3"]
+
+
+def test_show_takes_several_metrics(stored):
+    _, path, _ = stored
+    res = runner.invoke(app, ["show", str(path), "-m", "val_accuracy", "-m", "val_divergence", "-f", "json"])
+    assert res.exit_code == 0, res.output
+    rows = json.loads(res.stdout)["rows"]
+    assert [(r["variant"], r["metric"]) for r in rows] == [
+        (v, m) for v in ("optimizer.learning_rate=0.03", "optimizer.learning_rate=0.3")
+        for m in ("val_accuracy", "val_divergence")]
+
+
+def test_show_runs_lists_the_ids_replay_takes(stored):
+    _, path, _ = stored
+    res = runner.invoke(app, ["show", str(path), "--runs", "-f", "json"])
+    assert res.exit_code == 0, res.output
+    runs = json.loads(res.stdout)["rows"]
+    assert len(runs) == 6 and {r["seed"] for r in runs} == {0, 1, 2}
+    stored_ids = set(pq.read_table(path / "runs.parquet", columns=["run_id"]).column("run_id").to_pylist())
+    assert {r["run_id"] for r in runs} == stored_ids
+    table = runner.invoke(app, ["show", str(path), "--runs"], env={"COLUMNS": "80"}).stdout
+    assert all(r["run_id"] in table for r in runs)
+
+
+def test_show_json_carries_the_study_hash_and_axis_values(stored):
+    spec, path, _ = stored
+    doc = json.loads(runner.invoke(app, ["show", str(path), "-f", "json"]).stdout)
+    assert doc["study_hash"] == json.loads(runner.invoke(app, ["check", str(spec), "-f", "json"]).stdout)["study_hash"]
+    assert doc["axes"] == ["optimizer.learning_rate"]
+    assert [r["optimizer.learning_rate"] for r in doc["rows"]] == [0.03, 0.3]
+
+
+def test_version_and_help_metavars():
+    from importlib.metadata import version
+
+    res = runner.invoke(app, ["--version"])
+    assert res.exit_code == 0 and res.stdout.strip() == f"lesion {version('lesion')}"
+    for command in ("check", "run", "show", "replay", "diff", "plot"):
+        text = runner.invoke(app, [command, "--help"]).stdout
+        assert "{" not in text.splitlines()[0] and "range>" not in text and "<list[" not in text, text
+
+
+def test_help_examples_name_the_shipped_specs_hashes():
+    import re
+
+    from compiler.loader import load_study
+
+    shipped = {load_study(p).result_set for p in (ROOT / "specs").glob("*.toml")}
+    texts = [runner.invoke(app, [c, "--help"]).stdout for c in ("show", "replay", "diff", "plot")]
+    named = set(re.findall(r"results/([a-z-]+-[0-9a-f]{12})\b", " ".join(texts)))
+    assert named and named <= shipped
+
+
+def test_progress_says_compiling_then_counts_epochs_with_an_estimate():
+    import io
+    from types import SimpleNamespace
+
+    from rich.console import Console
+
+    from runtime.cli import _RunProgress
+
+    run = SimpleNamespace(variant=SimpleNamespace(spec=SimpleNamespace(training=SimpleNamespace(epochs=4))))
+    group = SimpleNamespace(runs=[run, run], lane_width=2)
+    out = io.StringIO()
+    with _RunProgress(None, console=Console(file=out, width=120)) as bar:
+        bar("plan", groups=2, runs=4, planned=4)
+        bar("group", group=group, todo=2)
+        task = bar.progress.tasks[bar.task]
+        assert "compiling" in task.description and task.fields["count"] == "0/4 epochs"
+        for done in (1, 2, 3):
+            bar("epoch", done=done, total=4)
+        assert "compiling" not in task.description and task.completed == 3
+        assert task.fields["count"] == "3/4 epochs" and task.fields["left"].endswith("left")
+        study = bar.progress.tasks[bar.study]
+        assert study.completed == 1.5 and study.fields["left"].endswith("left")
+        bar("epoch", done=4, total=4)
+        bar("stored", group=group)
+    assert study.fields["count"] == "2/4 runs"

@@ -167,3 +167,15 @@ def test_spec_margin_is_the_default(tmp_path, tiny_spec):
     [row] = diff_design(rs).rows
     assert row["margin"] == 0.9 and row["verdict"] == "equivalent"
     assert diff_design(rs, margin=1e-4).rows[0]["margin"] == 1e-4   # the command line wins
+
+def test_base_names_the_grid_cell_equal_to_the_base_configuration():
+    from pathlib import Path
+
+    from compiler.loader import load_study
+    from runtime.diff import resolve_variant
+
+    # specs/cold-chain.toml's base is batch normalization without dropout: grid cell 3.
+    study = load_study(Path(__file__).resolve().parents[2] / "specs" / "cold-chain.toml")
+    assert study.variants[3].label == "normalization.kind=batch, regularization.dropout.rate=0.0"
+    assert resolve_variant(study, "base") == 3
+    assert resolve_variant(study, "batch, dropout.rate=0.0") == 3

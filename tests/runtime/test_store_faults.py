@@ -4,6 +4,8 @@ second writer, temporary files a killed writer left, an unwritable folder."""
 from __future__ import annotations
 
 import fcntl
+import os
+import stat
 import threading
 from pathlib import Path
 
@@ -73,3 +75,15 @@ def test_a_folder_that_cannot_be_created_is_a_result_set_error():
     with pytest.raises(ResultSetError, match=r"^/sys/lesion-x/y: cannot create the result set folder"):
         with writer_lock(Path("/sys/lesion-x/y")):
             pass
+
+
+@pytest.mark.parametrize("umask, mode", [(0o022, 0o644), (0o077, 0o600), (0o002, 0o664)])
+def test_result_files_get_the_users_umask(tmp_path, umask, mode):
+    # POSIX open(2): a new file's mode is the requested mode (0666 for data files) less the umask.
+    old = os.umask(umask)
+    try:
+        store.write_results(tmp_path, META, *_tables(["a"]), previous=None)
+    finally:
+        os.umask(old)
+    assert {p.name: stat.S_IMODE(p.stat().st_mode) for p in (tmp_path / store.RUNS, tmp_path / store.CURVES)} == {
+        store.RUNS: mode, store.CURVES: mode}

@@ -1,0 +1,52 @@
+"""Terminal tables fitted to 80, 120 and 200 columns (runtime/formats.py)."""
+
+import pytest
+
+from runtime.formats import Fit, render
+
+LABELS = [f"normalization.kind={k}, regularization.dropout.rate={r}" for k in ("none", "batch", "layer")
+          for r in ("0.0", "0.15", "0.3")]
+COLUMNS = ["variant", "ok", "diverged", "mean", "sd", "ci_low", "ci_high", "val_divergence",
+           "val_divergence_sd", "groups", "seconds", "warnings"]
+ROWS = [{"variant": lab, "ok": 5, "diverged": 0, "mean": 0.9873, "sd": 0.007226, "ci_low": 0.9784,
+         "ci_high": 0.9963, "val_divergence": 0.08665, "val_divergence_sd": 0.01382, "groups": 1,
+         "seconds": 0.2441, "warnings": None} for lab in LABELS]
+FIT = Fit(keep=("variant", "mean"), drop=("groups", "seconds"), wrap=("variant",))
+
+
+@pytest.mark.parametrize("width", [80, 120, 200])
+def test_every_line_fits_and_no_word_is_cut(width):
+    text = render(ROWS, COLUMNS, "table", title="a title", width=width, fit=FIT)
+    lines = text.splitlines()
+    assert max(map(len, lines)) <= width
+    # Labels wrap only between their parts: every "key=value" piece stays whole on one line.
+    pieces = {p for lab in LABELS for p in lab.split(", ")}
+    body = [w.rstrip(",") for line in lines for w in line.split()]
+    assert pieces <= set(body)
+
+
+def test_narrow_drops_declared_columns_first_and_says_so():
+    text = render(ROWS, COLUMNS, "table", width=80, fit=FIT)
+    head = text.splitlines()[0].split()
+    assert head[:2] == ["variant", "ok"] and "mean" in head
+    assert "groups" not in head and "seconds" not in head
+    note = " ".join(text.splitlines()[-2:])
+    assert "not shown at 80 columns:" in note and "groups" in note and "--wide" in note
+
+
+def test_wide_layout_keeps_every_filled_column_and_one_line_per_row():
+    text = render(ROWS, COLUMNS, "table", width=None, fit=FIT)
+    lines = text.splitlines()
+    assert len(lines) == 2 + len(ROWS)
+    # An all-empty column carries nothing for a reader (warnings here); csv/json still have it.
+    assert lines[0].split() == COLUMNS[:-1]
+    assert "not shown" not in text
+    at200 = render(ROWS, COLUMNS, "table", width=200, fit=FIT)
+    assert at200 == text
+
+
+def test_a_column_added_later_needs_no_layout_of_its_own():
+    rows = [{**r, "effect_size": 1.25} for r in ROWS]
+    text = render(rows, COLUMNS + ["effect_size"], "table", width=80, fit=FIT)
+    assert max(map(len, text.splitlines())) <= 80
+    assert "effect_size" in " ".join(text.splitlines()[-2:]) and "effect_size" not in text.splitlines()[0]
