@@ -24,7 +24,7 @@ What is drawn:
 - ``grid``: for a two-axis grid study, the final-epoch mean per cell, darker = better.
 - ``diff``: per matched variant B − A with its 95 % interval, coloured by the verdict.
 
-Colours: :data:`PALETTE` ("lesion ten"), ten colours chosen for this project so that every pair
+Colours: :data:`PALETTE` (:data:`PALETTE_NAME`), ten colours chosen for this project so that every pair
 stays at least 20 CIELAB ΔE apart under simulated protanopia, deuteranopia and tritanopia;
 lines also differ by marker, so colour is never the only cue.
 """
@@ -57,7 +57,8 @@ __all__ = ["PlotError", "PALETTE", "PALETTE_NAME", "SEQUENTIAL", "KINDS", "DPI",
            "plot", "plot_curves", "plot_arms", "plot_grid", "plot_diff", "save_figure", "default_path",
            "short_labels"]
 
-PALETTE_NAME = "lesion ten"
+# A plain description, not a brand: what the colours are for.
+PALETTE_NAME = "ten colours apart under colour-vision deficiency"
 PALETTE = ("#0c5886", "#c7680f", "#33948d", "#ce2c66", "#8dbb5a",
            "#7235ba", "#8c5a2b", "#54c0fd", "#eda217", "#454735")
 MARKERS = ("o", "s", "^", "D", "v", "P", "X", "<", ">", "h")
