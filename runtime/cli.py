@@ -377,6 +377,30 @@ def replay(
         raise typer.Exit(1)
 
 
+@app.command()
+def export(
+    result: Path = typer.Argument(..., help="A result set folder written by 'lesion run'.", show_default=False),
+    run: str = typer.Option(..., "--run", help="The run id to export (a unique prefix is enough).", show_default=False),
+    out: Path = typer.Option(..., "--out", "-o", help="The .npz file to write.", show_default=False),
+) -> None:
+    """Write a run's trained parameters and running statistics to a .npz file.
+
+    The run is re-executed from the result set's own spec; the file is written only if the
+    parameters' digest equals the stored one (exit 2 and nothing written otherwise).
+
+    Examples:
+
+      lesion export results/cold-chain-7da471c81b78 --run 3f0c9a1e27d4b8c5-s2 -o winner.npz
+    """
+    from runtime.export import export_run
+
+    done = export_run(result, run, out, on_group=lambda g: _err(f"re-executing run {run} "
+                                                                f"at lane width {g.lane_width} ..."))
+    note = " (the run diverged: these are its last finite parameters)" if done.status != "ok" else ""
+    _err(f"parameter digest {done.param_digest[:16]}… matches the stored one; {done.arrays} arrays written{note}")
+    typer.echo(str(done.path))
+
+
 class FailOn(str, Enum):
     worse = "worse"
     never = "never"
