@@ -21,7 +21,12 @@ What is drawn:
 - ``arms``: per variant the final-epoch mean and its 95 % Student t interval
   (``mean ± t_{n-1,0.975} · s/√n``), every ok seed as a dot, best first in the metric's
   direction, the baseline's mean as a vertical line.
-- ``grid``: for a two-axis grid study, the final-epoch mean per cell, darker = better.
+- ``grid``: for a two-axis grid study, per cell the final-epoch mean ± sd as text; the colour is
+  the cell's gap to the best cell in half-widths of the 95 % interval of their difference (the
+  comparison of ``lesion diff --baseline <best>``) on a fixed scale 0 … :data:`GAP_SCALE`, so
+  cells within seed noise of the best stay as dark as it; cells with no detectable change from the best
+  (adjusted verdict) are outlined dashed. A scale spanning only the observed range would turn
+  noise into contrast.
 - ``diff``: per matched variant B − A with its 95 % interval, coloured by the verdict.
 
 Colours: :data:`PALETTE` (:data:`PALETTE_NAME`), ten colours chosen for this project so that every pair
@@ -54,7 +59,7 @@ from runtime.stats import summarize  # noqa: E402
 from runtime.store import ResultSet  # noqa: E402
 
 __all__ = ["PlotError", "PALETTE", "PALETTE_NAME", "SEQUENTIAL", "KINDS", "DPI", "LOG_SPAN",
-           "plot", "plot_curves", "plot_arms", "plot_grid", "plot_diff", "save_figure", "default_path",
+           "GAP_SCALE", "plot", "plot_curves", "plot_arms", "plot_grid", "plot_diff", "save_figure", "default_path",
            "short_labels"]
 
 # A plain description, not a brand: what the colours are for.
@@ -70,6 +75,8 @@ VERDICT_COLOURS = {"better": PALETTE[2], "worse": PALETTE[3], "no detectable cha
 KINDS = ("curves", "arms", "grid")
 DPI = 150
 LOG_SPAN = 30.0
+# Grid colour scale: gaps to the best of 0 … GAP_SCALE half-widths of the 95 % interval (beyond: the palest).
+GAP_SCALE = 4.0
 _LABEL_WIDTH = 28
 # Leaf names that say nothing without their section (``rate`` of what?).
 _GENERIC_LEAVES = {"kind", "rate", "delta", "momentum", "epsilon", "fraction", "value", "values", "size",
@@ -404,8 +411,25 @@ def _cell_text(r: dict) -> str:
     return text
 
 
+def _gaps_to_best(rs: ResultSet, metric: str, best: str) -> dict[str, dict]:
+    """Per variant, its comparison with the best cell by ``lesion diff --baseline`` (same test,
+    same adjustment), and ``gap``: |B − A| in half-widths of its 95 % interval (below 1 the
+    interval holds 0; NaN without an interval)."""
+    from runtime.diff import diff_baseline
+
+    out = {best: {"gap": 0.0, "verdict": "best"}}
+    for row in diff_baseline(rs, best, metrics=[metric]).rows:
+        half = (row["ci_high"] - row["ci_low"]) / 2 if row["ci_low"] is not None else math.nan
+        diff = row["diff"] if row["diff"] is not None else math.nan
+        gap = abs(diff) / half if math.isfinite(half) and half > 0 else (0.0 if diff == 0 else math.inf)
+        out[row["variant_b"]] = {"gap": gap if math.isfinite(diff) else math.nan, "verdict": row["verdict"]}
+    return out
+
+
 def plot_grid(rs: ResultSet, metrics: list[str] | None = None) -> Figure:
-    """Heat map of the final-epoch mean over the two axes of a grid study (darker = better)."""
+    """Heat map over the two axes of a grid study: colour = distance from the best cell in units
+    of that comparison's uncertainty, on a fixed scale; text = mean ± sd; cells not
+    distinguishable from the best (the verdict of ``lesion diff --baseline <best>``) marked."""
     ax_y, ax_x = _grid_axes(rs)
     metrics = _metrics_of(rs, metrics)
     runs = _runs_by_variant(rs)
@@ -416,41 +440,54 @@ def plot_grid(rs: ResultSet, metrics: list[str] | None = None) -> Figure:
         j = next(j for j, v in enumerate(ax_x["values"]) if v == ch.get(ax_x["key"]))
         cell_of[label] = (i, j)
     ny, nx = len(ax_y["values"]), len(ax_x["values"])
-    fig = _figure(2.2 + (1.25 * nx + 1.6) * len(metrics), 1.9 + 0.85 * ny)
+    fig = _figure(2.2 + (1.25 * nx + 1.9) * len(metrics), 2.3 + 0.85 * ny)
     axes = fig.subplots(1, len(metrics), squeeze=False)[0]
+    # Dark = close to the best on a fixed scale: cells within seed noise of the best stay as dark
+    # as it, so noise does not turn into contrast.
+    cmap = SEQUENTIAL.reversed().with_extremes(bad="#d9d9d9", over=SEQUENTIAL(0.0))
     for ax, m in zip(axes, metrics):
         table = {r["variant"]: r for r in summary_rows(rs, m)}
+        means = {label: table[label]["mean"] for label in cell_of}
+        finite = [label for label in cell_of if math.isfinite(means[label])]
+        sign = 1.0 if METRICS.get(m, "max") == "max" else -1.0
+        best = max(finite, key=lambda label: sign * means[label]) if finite else None
+        gaps = _gaps_to_best(rs, m, best) if best else {}
         grid = np.full((ny, nx), np.nan)
         for label, (i, j) in cell_of.items():
-            grid[i, j] = table[label]["mean"]
-        cmap = SEQUENTIAL if METRICS.get(m, "max") == "max" else SEQUENTIAL.reversed()
-        cmap = cmap.with_extremes(bad="#d9d9d9")
-        finite = grid[np.isfinite(grid)]
-        lo, hi = (finite.min(), finite.max()) if finite.size else (0.0, 1.0)
-        if lo == hi:
-            lo, hi = lo - 0.5, hi + 0.5
-        image = ax.imshow(np.ma.masked_invalid(grid), cmap=cmap, vmin=lo, vmax=hi, aspect="auto", gid=f"grid:{m}")
+            grid[i, j] = gaps.get(label, {}).get("gap", math.nan)
+        image = ax.imshow(np.ma.masked_invalid(grid), cmap=cmap, vmin=0.0, vmax=GAP_SCALE, aspect="auto",
+                          gid=f"grid:{m}")
         for label, (i, j) in cell_of.items():
             v = grid[i, j]
-            shade = (v - lo) / (hi - lo) if math.isfinite(v) else 0.0
-            dark = shade > 0.55 if cmap.name == SEQUENTIAL.name else shade < 0.45
-            ax.text(j, i, _cell_text(table[label]), ha="center", va="center", fontsize=8.5,
-                    color="white" if math.isfinite(v) and dark else "black", gid=f"cell:{m}:{label}")
-        if finite.size:
-            best = np.nanargmax(grid) if METRICS.get(m, "max") == "max" else np.nanargmin(grid)
-            bi, bj = np.unravel_index(best, grid.shape)
-            ax.add_patch(Rectangle((bj - 0.5, bi - 0.5), 1, 1, fill=False, edgecolor=PALETTE[1], linewidth=2.5))
+            text = _cell_text(table[label])
+            verdict = gaps.get(label, {}).get("verdict")
+            if label == best:
+                text += "\nbest"
+            elif verdict in ("no detectable change", "no test possible"):
+                text += "\n≈ best" if verdict == "no detectable change" else "\nuntested"
+                ax.add_patch(Rectangle((j - 0.5, i - 0.5), 1, 1, fill=False, edgecolor=PALETTE[1], linewidth=1.6,
+                                       linestyle=(0, (3, 2)), gid=f"tied:{m}:{label}"))
+            dark = math.isfinite(v) and v < 0.45 * GAP_SCALE
+            ax.text(j, i, text, ha="center", va="center", fontsize=8.5,
+                    color="white" if dark else "black", gid=f"cell:{m}:{label}")
+        if best is not None:
+            bi, bj = cell_of[best]
+            ax.add_patch(Rectangle((bj - 0.5, bi - 0.5), 1, 1, fill=False, edgecolor=PALETTE[1], linewidth=2.5,
+                                   gid=f"best:{m}:{best}"))
         ax.set_xticks(range(nx), [format_value(v) for v in ax_x["values"]])
         ax.set_yticks(range(ny), [format_value(v) for v in ax_y["values"]])
         ax.set_xlabel(ax_x["key"])
         ax.set_ylabel(ax_y["key"])
+        ax.set_title(f"final {m} ({_direction_text(m)})", fontsize=9.5)
         ax.tick_params(length=0)
         for spine in ax.spines.values():
             spine.set_visible(False)
-        bar = fig.colorbar(image, ax=ax, shrink=0.9)
-        bar.set_label(f"final {m}\n({_direction_text(m)}; darker = better)", fontsize=8.5)
+        bar = fig.colorbar(image, ax=ax, shrink=0.9, extend="max")
+        bar.set_label("gap to the best cell, in half-widths\nof its 95 % interval (< 1: interval holds 0)",
+                      fontsize=8.5)
     _suptitle(fig, _title(rs, f"final {', '.join(metrics)} over {ax_y['key']} × {ax_x['key']}"),
-              f"cells: mean ± sd of the final epoch over ok seeds, best outlined; "
+              f"cells: mean ± sd over ok seeds; colour: distance from the best cell (solid outline) on a fixed "
+              f"scale; dashed: no detectable change from the best ('lesion diff --baseline', adjusted); "
               f"{_seed_counts(runs)}; {_diverged_text(runs)}")
     return fig
 

@@ -213,19 +213,45 @@ def test_grid_cells_hold_the_summary_means_on_the_axis_values(sets):
     rs = sets["grid"]
     fig = P.plot_grid(rs)
     ax = fig.axes[0]
-    image = ax.get_images()[0]
-    grid = np.ma.filled(image.get_array(), np.nan)
-    assert grid.shape == (2, 2)
     assert ax.get_ylabel() == "optimizer.learning_rate" and ax.get_xlabel() == "regularization.weight_decay"
     assert [t.get_text() for t in ax.get_yticklabels()] == ["0.03", "0.3"]
     assert [t.get_text() for t in ax.get_xticklabels()] == ["0", "0.01"]
     means = {r["variant"]: r["mean"] for r in summary_rows(rs)}
+    for lr, wd in itertools.product(["0.03", "0.3"], ["0.0", "0.01"]):
+        label = f"optimizer.learning_rate={lr}, regularization.weight_decay={wd}"
+        [text] = [t for t in ax.texts if t.get_gid() == f"cell:val_accuracy:{label}"]
+        assert text.get_text().startswith(f"{means[label]:.3g}")
+
+
+def test_grid_colour_is_the_gap_to_the_best_in_interval_half_widths_on_a_fixed_scale(sets):
+    rs = sets["grid"]
+    fig = P.plot_grid(rs)
+    ax = fig.axes[0]
+    image = ax.get_images()[0]
+    # a fixed scale, not the observed range: equal gaps get equal colours in every study
+    assert image.norm.vmin == 0.0 and image.norm.vmax == P.GAP_SCALE
+    grid = np.ma.filled(image.get_array(), np.nan)
+    runs = rs.runs.to_pandas()
+    by = {label: g.sort_values("seed").final_val_accuracy.to_numpy(dtype=float)
+          for label, g in runs.groupby("variant_label")}
+    best = max(by, key=lambda label: by[label].mean())
+    assert [p.get_gid() for p in ax.patches if (p.get_gid() or "").startswith("best:")] == [f"best:val_accuracy:{best}"]
     for i, lr in enumerate(["0.03", "0.3"]):
         for j, wd in enumerate(["0.0", "0.01"]):
             label = f"optimizer.learning_rate={lr}, regularization.weight_decay={wd}"
-            assert grid[i, j] == means[label]
+            d = by[label] - by[best]
+            if label == best:
+                assert grid[i, j] == 0.0
+                continue
+            if np.all(d == d[0]):
+                continue  # no spread: the interval is decided, not estimated (runtime.stats)
+            ci = sps.ttest_rel(by[label], by[best]).confidence_interval(0.95)  # paired t, scipy
+            assert grid[i, j] == pytest.approx(abs(d.mean()) / ((ci.high - ci.low) / 2), rel=1e-9)
             [text] = [t for t in ax.texts if t.get_gid() == f"cell:val_accuracy:{label}"]
-            assert text.get_text().startswith(f"{means[label]:.3g}")
+            # cells whose interval holds 0 cannot be told from the best (Holm only widens that)
+            if ci.low <= 0 <= ci.high:
+                assert text.get_text().endswith("≈ best")
+                assert any(p.get_gid() == f"tied:val_accuracy:{label}" for p in ax.patches)
 
 
 def test_diff_intervals_match_a_paired_t_interval_by_scipy(sets):
