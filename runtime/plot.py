@@ -59,7 +59,7 @@ from runtime.stats import summarize  # noqa: E402
 from runtime.store import ResultSet  # noqa: E402
 
 __all__ = ["PlotError", "PALETTE", "PALETTE_NAME", "SEQUENTIAL", "KINDS", "DPI", "LOG_SPAN",
-           "GAP_SCALE", "plot", "plot_curves", "plot_arms", "plot_grid", "plot_diff", "save_figure", "default_path",
+           "GAP_SCALE", "FACET_OVER", "plot", "plot_curves", "plot_arms", "plot_grid", "plot_diff", "save_figure", "default_path",
            "short_labels"]
 
 # A plain description, not a brand: what the colours are for.
@@ -75,6 +75,8 @@ VERDICT_COLOURS = {"better": PALETTE[2], "worse": PALETTE[3], "no detectable cha
 KINDS = ("curves", "arms", "grid")
 DPI = 150
 LOG_SPAN = 30.0
+# curves: a grid with more variants than this is drawn as small multiples (one panel per level).
+FACET_OVER = 4
 # Grid colour scale: gaps to the best of 0 … GAP_SCALE half-widths of the 95 % interval (beyond: the palest).
 GAP_SCALE = 4.0
 _LABEL_WIDTH = 28
@@ -207,9 +209,33 @@ def _style(metric: str) -> str:
     return "--" if metric.startswith("train_") else "-"
 
 
+def _facets(rs: ResultSet, labels: list[str], names: dict[str, str]):
+    """How ``curves`` splits variants into panels: ``[(panel title, [labels])]``, each label's
+    colour index and its legend name. A grid over two or more axes with more than
+    :data:`FACET_OVER` variants gets one panel per level of its first axis, each variant coloured
+    by its levels of the other axes (the same colour means the same levels in every panel);
+    otherwise one panel holds every variant."""
+    ab = rs.tree.get("ablation") or {}
+    axes = ab.get("axis") or []
+    if ab.get("mode") != "grid" or len(axes) < 2 or ab.get("variant") or len(labels) <= FACET_OVER:
+        return [(None, labels)], {label: i for i, label in enumerate(labels)}, names
+    runs = _runs_by_variant(rs)
+    changes = {label: json.loads(runs[label][0]["changes"]) for label in labels}
+    keys = [a["key"] for a in axes]
+    short = {k: _short_key(k, keys) for k in keys}
+    panels = [(f"{short[keys[0]]} = {format_value(v)}", [label for label in labels if changes[label].get(keys[0]) == v])
+              for v in axes[0]["values"]]
+    rest = {label: tuple(json.dumps(changes[label].get(k)) for k in keys[1:]) for label in labels}
+    levels = list(dict.fromkeys(rest[label] for label in labels))
+    legend = {label: ", ".join(f"{short[k]}={format_value(changes[label].get(k))}" for k in keys[1:])
+              for label in labels}
+    return [p for p in panels if p[1]], {label: levels.index(rest[label]) for label in labels}, legend
+
+
 def plot_curves(rs: ResultSet, metrics: list[str] | None = None) -> Figure:
-    """Per-epoch mean ± 1 sd over ok seeds of each metric; train dashed, validation solid; one panel
-    per metric family (``train_divergence`` and ``val_divergence`` share a panel)."""
+    """Per-epoch mean ± 1 sd over ok seeds of each metric; train dashed, validation solid; one row
+    of panels per metric family (``train_divergence`` and ``val_divergence`` share one), one
+    column per level of a grid's first axis when there are many variants (:func:`_facets`)."""
     have = [c for c in rs.curves.column_names if c not in ("run_id", "variant_label", "seed", "epoch")]
     for m in metrics or []:
         if m not in have:
@@ -219,69 +245,88 @@ def plot_curves(rs: ResultSet, metrics: list[str] | None = None) -> Figure:
     families = list(dict.fromkeys(_family(m) for m in metrics))
     labels = _variants(rs)
     names = short_labels(rs)
+    panels, colour_of, legend_names = _facets(rs, labels, names)
+    faceted = len(panels) > 1
     runs = _runs_by_variant(rs)
     ok_ids = {r["run_id"] for rr in runs.values() for r in rr if r["status"] == "ok"}
     diverged = sum(r["status"] != "ok" for rr in runs.values() for r in rr)
-    bad_variants = [label for label in labels if any(r["status"] != "ok" for r in runs[label])]
     curves = rs.curves.to_pydict()
     ok_rows: dict[tuple[str, int], list[int]] = {}
     for i, (label, epoch, rid) in enumerate(zip(curves["variant_label"], curves["epoch"], curves["run_id"])):
         if rid in ok_ids:
             ok_rows.setdefault((label, epoch), []).append(i)
 
-    fig = _figure(max(6.4, 5.4 * len(families)), 4.4 + 0.22 * math.ceil(len(labels) / 3))
-    axes = fig.subplots(1, len(families), squeeze=False)[0]
-    for ax, fam in zip(axes, families):
-        top = blended_transform_factory(ax.transData, ax.transAxes)
-        panel = [m for m in metrics if _family(m) == fam]
+    legend_rows = math.ceil(len(set(colour_of.values())) / 3)
+    if faceted:
+        fig = _figure(max(6.4, 1.3 + 3.7 * len(panels)), 1.9 + 2.9 * len(families) + 0.22 * legend_rows)
+        grid = fig.subplots(len(families), len(panels), squeeze=False, sharex=True, sharey="row")
+    else:
+        fig = _figure(max(6.4, 5.4 * len(families)), 4.4 + 0.22 * legend_rows)
+        grid = fig.subplots(1, len(families), squeeze=False).T
+    for r, fam in enumerate(families):
+        panel_metrics = [m for m in metrics if _family(m) == fam]
         values = []
-        for vi, label in enumerate(labels):
-            colour, marker = PALETTE[vi % len(PALETTE)], MARKERS[vi % len(MARKERS)]
-            mine = [r for r in rows if r["variant"] == label]
-            for m in panel:
-                if mine:
-                    x = [r["epoch"] for r in mine]
-                    y = [r[m] for r in mine]
-                    line, = ax.plot(x, y, _style(m), color=colour, marker=marker, markersize=3.5,
-                                    markevery=max(1, len(x) // 8), linewidth=1.6, gid=f"mean:{m}:{label}")
-                    values += [v for v in y if math.isfinite(v)]
-                    sd = np.array([summarize([curves[m][i] for i in ok_rows[(label, e)]]).sd for e in x])
-                    if np.isfinite(sd).any():
-                        lo, hi = np.asarray(y) - sd, np.asarray(y) + sd
-                        # On a log axis a band below zero would vanish: stop it near the panel's floor.
-                        lo = np.maximum(lo, 0.5 * min(v for v in y if v > 0)) if min(y) > 0 else lo
-                        ax.fill_between(x, lo, hi, color=colour, alpha=0.15, linewidth=0)
-            stops = sorted(r["diverged_at"] for r in runs[label] if r["status"] != "ok" and r["diverged_at"])
-            # Just above the data area (diverged values are unbounded and would crush the scale),
-            # one row per variant so that runs stopping at the same epoch do not hide each other.
-            row = 1.03 + 0.05 * bad_variants.index(label) if stops else 0.0
-            for epoch in dict.fromkeys(stops):
-                ax.plot([epoch], [row], "x", color=colour, markersize=8, markeredgewidth=2,
-                        transform=top, clip_on=False, gid=f"diverged:{label}:{epoch}")
-                if stops.count(epoch) > 1:
-                    ax.annotate(f"×{stops.count(epoch)}", (epoch, row), xycoords=top, xytext=(6, 0),
-                                textcoords="offset points", va="center", fontsize=7.5, color=colour,
-                                annotation_clip=False)
+        for c, (title, members) in enumerate(panels):
+            ax = grid[r, c]
+            top = blended_transform_factory(ax.transData, ax.transAxes)
+            bad_variants = [label for label in members if any(x["status"] != "ok" for x in runs[label])]
+            for label in members:
+                colour, marker = PALETTE[colour_of[label] % len(PALETTE)], MARKERS[colour_of[label] % len(MARKERS)]
+                mine = [x for x in rows if x["variant"] == label]
+                for m in panel_metrics:
+                    if mine:
+                        x = [e["epoch"] for e in mine]
+                        y = [e[m] for e in mine]
+                        ax.plot(x, y, _style(m), color=colour, marker=marker, markersize=3.5,
+                                markevery=max(1, len(x) // 8), linewidth=1.6, gid=f"mean:{m}:{label}")
+                        values += [v for v in y if math.isfinite(v)]
+                        sd = np.array([summarize([curves[m][i] for i in ok_rows[(label, e)]]).sd for e in x])
+                        if np.isfinite(sd).any():
+                            lo, hi = np.asarray(y) - sd, np.asarray(y) + sd
+                            # On a log axis a band below zero would vanish: stop it near the panel's floor.
+                            lo = np.maximum(lo, 0.5 * min(v for v in y if v > 0)) if min(y) > 0 else lo
+                            ax.fill_between(x, lo, hi, color=colour, alpha=0.15, linewidth=0)
+                stops = sorted(x["diverged_at"] for x in runs[label] if x["status"] != "ok" and x["diverged_at"])
+                # Just above the data area (diverged values are unbounded and would crush the scale),
+                # one row per variant so that runs stopping at the same epoch do not hide each other.
+                row = 1.03 + 0.05 * bad_variants.index(label) if stops else 0.0
+                for epoch in dict.fromkeys(stops):
+                    ax.plot([epoch], [row], "x", color=colour, markersize=8, markeredgewidth=2,
+                            transform=top, clip_on=False, gid=f"diverged:{label}:{epoch}")
+                    if stops.count(epoch) > 1:
+                        ax.annotate(f"×{stops.count(epoch)}", (epoch, row), xycoords=top, xytext=(6, 0),
+                                    textcoords="offset points", va="center", fontsize=7.5, color=colour,
+                                    annotation_clip=False)
+            styles = " and ".join(f"{m} ({'dashed' if _style(m) == '--' else 'solid'})" for m in panel_metrics)
+            if faceted:
+                ax.set_title(title if r == 0 else "", fontsize=9.5, pad=6 + 14 * len(bad_variants))
+            else:
+                ax.set_title(styles, fontsize=9.5, pad=6 + 14 * len(bad_variants))
+            ax.grid(True, alpha=0.25, linewidth=0.6)
+            ax.xaxis.get_major_locator().set_params(integer=True)
+            if r == len(families) - 1 or not faceted:
+                ax.set_xlabel("epoch")
+            for side in ("top", "right"):
+                ax.spines[side].set_visible(False)
         positive = [v for v in values if v > 0]
         log = bool(positive) and len(positive) == len(values) and max(positive) / min(positive) > LOG_SPAN
-        if log:
-            ax.set_yscale("log")
-        ax.set_xlabel("epoch")
-        ax.set_ylabel(fam + (" (log scale)" if log else ""))
-        styles = " and ".join(f"{m} ({'dashed' if _style(m) == '--' else 'solid'})" for m in panel)
-        ax.set_title(styles, fontsize=9.5, pad=6 + 14 * len(bad_variants))
-        ax.grid(True, alpha=0.25, linewidth=0.6)
-        ax.xaxis.get_major_locator().set_params(integer=True)
-        for side in ("top", "right"):
-            ax.spines[side].set_visible(False)
+        for ax in grid[r]:
+            if log:
+                ax.set_yscale("log")
+        grid[r, 0].set_ylabel(fam + (" (log scale)" if log else ""))
 
-    handles = []
-    for vi, label in enumerate(labels):
-        ok = sum(r["status"] == "ok" for r in runs[label])
-        bad = len(runs[label]) - ok
-        tail = f" ({ok} ok, {bad} diverged)" if bad else f" (n={ok})"
-        handles.append(Line2D([], [], color=PALETTE[vi % len(PALETTE)], marker=MARKERS[vi % len(MARKERS)],
-                              markersize=4, label=names[label].replace("\n", ", ") + tail))
+    handles, seen = [], set()
+    for label in labels:
+        if colour_of[label] in seen:
+            continue
+        seen.add(colour_of[label])
+        same = [x for lab in labels if colour_of[lab] == colour_of[label] for x in runs[lab]]
+        ok = sum(x["status"] == "ok" for x in same)
+        bad = len(same) - ok
+        tail = f" ({ok} ok, {bad} diverged)" if bad else ("" if faceted else f" (n={ok})")
+        handles.append(Line2D([], [], color=PALETTE[colour_of[label] % len(PALETTE)],
+                              marker=MARKERS[colour_of[label] % len(MARKERS)], markersize=4,
+                              label=legend_names[label].replace("\n", ", ") + tail))
     # The key to styles goes in the legend's title: in a column of its own it would be read as a variant.
     key = []
     if any(m.startswith("train_") for m in metrics) and any(not m.startswith("train_") for m in metrics):
@@ -290,11 +335,13 @@ def plot_curves(rs: ResultSet, metrics: list[str] | None = None) -> Figure:
         key.append("shaded band = ±1 sd across ok seeds")
     if diverged:
         key.append("× = a diverged run, at the epoch it stopped")
-    _legend_below(fig, handles, 3, title="   ·   ".join(key) or None)
+    _legend_below(fig, handles, 3 if not faceted else len(handles), title="   ·   ".join(key) or None)
     one = _seed_counts(runs) == "one seed per variant"
     what = ("lines are single runs (one seed per variant: no spread to show)" if one else
             f"mean over ok seeds with a ±1 sd band; {_seed_counts(runs)}")
     sub = f"{what}; {_diverged_text(runs)}" + ("; diverged runs left out of the means" if diverged else "")
+    if faceted:
+        sub += f"; one column per {panels[0][0].split(' = ')[0]}"
     _suptitle(fig, _title(rs, "learning curves"), sub)
     return fig
 

@@ -77,6 +77,8 @@ def sets(tmp_path_factory, tiny_spec):
         "diverged": _run(tiny_spec(tmp, "flare", seeds=3, epochs=3, rates="[0.05, 1e5]", extra=GRID_AXIS), tmp / "r"),
         "single": _run(tiny_spec(tmp, "lone", seeds=1, epochs=3), tmp / "r"),
         "regression": _run(tmp / "slag-depth.toml", tmp / "r"),
+        "nine": _run(tiny_spec(tmp, "vats", seeds=2, epochs=2, rates="[0.03, 0.1, 0.3]", extra=GRID_AXIS.replace(
+            "[0.0, 0.01]", "[0.0, 0.001, 0.01]")), tmp / "r"),
     }
 
 
@@ -297,6 +299,30 @@ def test_diverged_runs_are_marked_at_their_epoch_and_said(sets):
     assert "6 of 12 runs diverged" in _subtitle(arms)
 
 
+def test_curves_of_a_large_grid_are_small_multiples_one_panel_per_level(sets):
+    rs = sets["nine"]
+    fig = P.plot_curves(rs)
+    runs = rs.runs.to_pandas()
+    assert runs.variant_label.nunique() == 9 > P.FACET_OVER
+    # two metric families (accuracy; train and val divergence) × three learning rates
+    assert len(fig.axes) == 2 * 3
+    top = [ax for ax in fig.axes if ax.get_title()]
+    assert [ax.get_title() for ax in top] == ["learning_rate = 0.03", "learning_rate = 0.1", "learning_rate = 0.3"]
+    colour_of_decay = {}
+    for ax in fig.axes:
+        means = [l for l in ax.get_lines() if (l.get_gid() or "").startswith("mean:")]
+        labels = {l.get_gid().split(":", 2)[2] for l in means}
+        assert len(labels) == 3  # one line per weight decay, not all nine
+        assert len({lab.split(",")[0] for lab in labels}) == 1  # a single learning rate per panel
+        for line in means:
+            decay = line.get_gid().split("weight_decay=")[1]
+            # the same level of the other axis keeps its colour in every panel
+            assert colour_of_decay.setdefault(decay, line.get_color()) == line.get_color()
+    assert len(set(colour_of_decay.values())) == 3
+    legend = [t.get_text() for t in fig.legends[0].get_texts()]
+    assert legend == ["weight_decay=0.0", "weight_decay=0.001", "weight_decay=0.01"]
+
+
 def test_one_seed_says_so_and_draws_no_spread(sets):
     rs = sets["single"]
     fig = P.plot_curves(rs)
@@ -335,7 +361,8 @@ def _overlap(a, b) -> bool:
 
 
 @pytest.mark.parametrize("name,kind", [("grid", "curves"), ("grid", "arms"), ("grid", "grid"),
-                                       ("diverged", "curves"), ("regression", "arms"), ("grid", "diff")])
+                                       ("diverged", "curves"), ("regression", "arms"), ("grid", "diff"),
+                                       ("nine", "curves")])
 def test_text_stays_on_the_canvas_and_legends_stay_off_the_axes(sets, name, kind, tmp_path):
     fig = P.plot_diff(sets["grid"], sets["grid_b"]) if kind == "diff" else P.plot(sets[name], kind)
     FigureCanvasAgg(fig).draw()  # lays the figure out as saving does
