@@ -539,6 +539,38 @@ def plot(
         raise UsageError(str(err)) from None
 
 
+@app.command()
+def report(
+    result: Path = typer.Argument(..., help="A result set folder written by 'lesion run'.", show_default=False),
+    out: Path = typer.Option(None, "--out", "-o", help="The HTML file to write (default: <result set>/report.html)."),
+    baseline: str = typer.Option(None, "--baseline", help="The variant the verdicts compare against "
+                                 "(default: 'base', else the first variant)."),
+) -> None:
+    """Write one self-contained HTML page about a result set: question, summary, verdicts,
+    pictures, spec, environment and how to replay; print its path.
+
+    Examples:
+
+      lesion report results/cold-chain-7da471c81b78
+
+      lesion report results/cold-chain-7da471c81b78 --baseline "normalization.kind=none, regularization.dropout.rate=0.0" -o review.html
+    """
+    from runtime.report import render_report  # imports matplotlib
+    from runtime.store import open_result_set
+
+    rs = open_result_set(result)
+    target = out or rs.path / "report.html"
+    if target.suffix.lower() not in (".html", ".htm"):
+        raise UsageError(f"-o {target}: expected a file ending in .html")
+    page = render_report(rs, baseline)
+    try:
+        target.parent.mkdir(parents=True, exist_ok=True)
+        target.write_text(page, encoding="utf-8")
+    except OSError as err:
+        raise UsageError(f"-o {target}: cannot write ({err.strerror or err})") from None
+    typer.echo(str(target))
+
+
 def main() -> None:
     """Console-script entry point (``lesion = "runtime.cli:main"``)."""
     app()

@@ -36,6 +36,7 @@ lines also differ by marker, so colour is never the only cue.
 
 from __future__ import annotations
 
+import io
 import json
 import math
 import textwrap
@@ -59,7 +60,7 @@ from runtime.stats import summarize  # noqa: E402
 from runtime.store import ResultSet  # noqa: E402
 
 __all__ = ["PlotError", "PALETTE", "PALETTE_NAME", "SEQUENTIAL", "KINDS", "DPI", "LOG_SPAN",
-           "GAP_SCALE", "FACET_OVER", "plot", "plot_curves", "plot_arms", "plot_grid", "plot_diff", "save_figure", "default_path",
+           "GAP_SCALE", "FACET_OVER", "plot", "plot_curves", "plot_arms", "plot_grid", "plot_diff", "save_figure", "svg_markup", "default_path",
            "short_labels"]
 
 # A plain description, not a brand: what the colours are for.
@@ -619,8 +620,22 @@ def save_figure(fig: Figure, path: str | Path) -> Path:
     if fmt not in ("png", "svg"):
         raise PlotError(f"-o {path}: expected a file ending in .png or .svg")
     path.parent.mkdir(parents=True, exist_ok=True)
-    # No date in the file, fixed SVG ids: the same result set gives the same bytes.
-    metadata = {"Date": None} if fmt == "svg" else {}
-    with matplotlib.rc_context({"svg.hashsalt": "lesion", "svg.fonttype": "path"}):
-        fig.savefig(path, format=fmt, dpi=DPI, metadata=metadata)
+    _savefig(fig, path, fmt)
     return path
+
+
+def svg_markup(fig: Figure, salt: str) -> str:
+    """``fig`` as one ``<svg>`` element to place inside an HTML page; ``salt`` keeps its element
+    ids apart from those of the page's other pictures."""
+    buffer = io.StringIO()
+    _savefig(fig, buffer, "svg", salt)
+    text = buffer.getvalue()
+    return text[text.index("<svg"):]
+
+
+def _savefig(fig: Figure, target, fmt: str, salt: str = "lesion") -> None:
+    # No date in the file, fixed SVG ids, text drawn as paths (no font needed where it is shown):
+    # the same result set gives the same bytes.
+    metadata = {"Date": None} if fmt == "svg" else {}
+    with matplotlib.rc_context({"svg.hashsalt": salt, "svg.fonttype": "path"}):
+        fig.savefig(target, format=fmt, dpi=DPI, metadata=metadata)
