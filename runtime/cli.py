@@ -60,6 +60,8 @@ app = typer.Typer(
          "  lesion show results/cold-chain-<hash>\n\n"
          "  lesion replay results/cold-chain-<hash>\n\n"
          "  lesion diff results/A results/B --fail-on worse\n\n"
+         "  lesion report results/cold-chain-<hash>      # one HTML page for a review\n\n"
+         "  lesion export results/cold-chain-<hash> --run RUN_ID -o best.npz\n\n"
          "  lesion schema > lesion.schema.json",
     no_args_is_help=True,
     add_completion=False,
@@ -555,14 +557,18 @@ def report(
 
       lesion report results/cold-chain-7da471c81b78 --baseline "normalization.kind=none, regularization.dropout.rate=0.0" -o review.html
     """
-    from runtime.report import render_report  # imports matplotlib
+    from runtime.plot import PlotError  # imports matplotlib
+    from runtime.report import render_report
     from runtime.store import open_result_set
 
     rs = open_result_set(result)
     target = out or rs.path / "report.html"
     if target.suffix.lower() not in (".html", ".htm"):
         raise UsageError(f"-o {target}: expected a file ending in .html")
-    page = render_report(rs, baseline)
+    try:
+        page = render_report(rs, baseline)
+    except PlotError as err:
+        raise UsageError(str(err)) from None
     try:
         target.parent.mkdir(parents=True, exist_ok=True)
         target.write_text(page, encoding="utf-8")

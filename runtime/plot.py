@@ -469,8 +469,13 @@ def _gaps_to_best(rs: ResultSet, metric: str, best: str) -> dict[str, dict]:
     for row in diff_baseline(rs, best, metrics=[metric]).rows:
         half = (row["ci_high"] - row["ci_low"]) / 2 if row["ci_low"] is not None else math.nan
         diff = row["diff"] if row["diff"] is not None else math.nan
-        gap = abs(diff) / half if math.isfinite(half) and half > 0 else (0.0 if diff == 0 else math.inf)
-        out[row["variant_b"]] = {"gap": gap if math.isfinite(diff) else math.nan, "verdict": row["verdict"]}
+        if not (math.isfinite(diff) and math.isfinite(half)):
+            gap = math.nan  # untested (too few seeds) or diverged: grey, not "far from the best"
+        elif half > 0:
+            gap = abs(diff) / half
+        else:  # every seed differs by the same amount: decided, not estimated
+            gap = 0.0 if diff == 0 else math.inf
+        out[row["variant_b"]] = {"gap": gap, "verdict": row["verdict"]}
     return out
 
 
