@@ -127,6 +127,12 @@ def short_labels(rs: ResultSet) -> dict[str, str]:
     return out
 
 
+def _one_line(label: str, name: str) -> str:
+    """A display name on one line: a label the user wrote comes back as written (it was only
+    wrapped at spaces), a derived one's parts are joined by commas."""
+    return label if name.replace("\n", " ") == label else name.replace("\n", ", ")
+
+
 def _variants(rs: ResultSet) -> list[str]:
     pairs = sorted(set(zip(rs.runs.column("variant_index").to_pylist(), rs.runs.column("variant_label").to_pylist())))
     return [label for _, label in pairs]
@@ -327,7 +333,7 @@ def plot_curves(rs: ResultSet, metrics: list[str] | None = None) -> Figure:
         tail = f" ({ok} ok, {bad} diverged)" if bad else ("" if faceted else f" (n={ok})")
         handles.append(Line2D([], [], color=PALETTE[colour_of[label] % len(PALETTE)],
                               marker=MARKERS[colour_of[label] % len(MARKERS)], markersize=4,
-                              label=legend_names[label].replace("\n", ", ") + tail))
+                              label=_one_line(label, legend_names[label]) + tail))
     # The key to styles goes in the legend's title: in a column of its own it would be read as a variant.
     key = []
     if any(m.startswith("train_") for m in metrics) and any(not m.startswith("train_") for m in metrics):

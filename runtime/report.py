@@ -63,7 +63,10 @@ def _opening_comment(source: str) -> str:
 
 
 def _cell(value, numeric: bool) -> str:
-    text = escape(fmt_number(value) if numeric else ("" if value is None else str(value)))
+    if value is None or (isinstance(value, float) and not math.isfinite(value)):
+        text = ""  # no test, no interval: an empty cell, as in the CSV of lesion diff
+    else:
+        text = escape(fmt_number(value) if numeric else str(value))
     return f'<td class="n">{text}</td>' if numeric else f"<td>{text}</td>"
 
 
@@ -137,7 +140,8 @@ def render_report(rs: ResultSet, baseline: str | None = None) -> str:
         f"<p>Each variant against the baseline <b>{escape(baseline)}</b> "
         f"(<code>lesion diff RESULT --baseline</code>): {counts['better']} better, {counts['worse']} worse, "
         f"{len(report.rows) - counts['better'] - counts['worse']} without a detectable change, p-values adjusted by "
-        f"{'Holm' if report.correction == 'holm' else 'Benjamini–Hochberg'} over the {len(report.rows)} comparisons.</p>",
+        f"{'Holm' if report.correction == 'holm' else 'Benjamini–Hochberg'} over {len(report.rows)} "
+        f"comparison{'s' if len(report.rows) != 1 else ''}.</p>",
         _table(verdict_rows, VERDICT_COLUMNS, set(VERDICT_COLUMNS[2:-1]),
                row_class=lambda r: r["verdict"] if r["verdict"] in ("better", "worse") else ""),
         "</section>",

@@ -142,3 +142,13 @@ def test_bad_output_name_and_unknown_baseline_are_one_line_exit_2(page, tmp_path
         result = CliRunner().invoke(app, ["report", str(path), *args])
         assert result.exit_code == 2, result.output
         assert len(result.stderr.strip().splitlines()) == 1 and message in result.stderr
+
+
+def test_a_label_the_user_wrote_is_shown_as_written_in_the_legend(page):
+    from runtime.plot import plot_curves
+    from runtime.store import open_result_set
+
+    path, _ = page
+    legend = [t.get_text() for t in plot_curves(open_result_set(path)).legends[0].get_texts()]
+    assert f"{LABEL} (n=3)" in legend  # wrapped at its spaces for ticks, never given commas
+
