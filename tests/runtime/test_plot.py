@@ -76,6 +76,7 @@ def sets(tmp_path_factory, tiny_spec):
         "grid_b": _run(noisy, tmp / "rb"),
         "diverged": _run(tiny_spec(tmp, "flare", seeds=3, epochs=3, rates="[0.05, 1e5]", extra=GRID_AXIS), tmp / "r"),
         "single": _run(tiny_spec(tmp, "lone", seeds=1, epochs=3), tmp / "r"),
+        "single_grid": _run(tiny_spec(tmp, "lone-grid", seeds=1, epochs=3, extra=GRID_AXIS), tmp / "r"),
         "regression": _run(tmp / "slag-depth.toml", tmp / "r"),
         "nine": _run(tiny_spec(tmp, "vats", seeds=2, epochs=2, rates="[0.03, 0.1, 0.3]", extra=GRID_AXIS.replace(
             "[0.0, 0.01]", "[0.0, 0.001, 0.01]")), tmp / "r"),
@@ -297,6 +298,16 @@ def test_diverged_runs_are_marked_at_their_epoch_and_said(sets):
     ticks = [t.get_text() for t in arms.axes[0].get_yticklabels()]
     assert sum("all 3 diverged" in t for t in ticks) == 2
     assert "6 of 12 runs diverged" in _subtitle(arms)
+
+
+def test_grid_cells_without_an_interval_are_grey_and_say_untested(sets):
+    # one seed per cell: lesion diff has no test (runtime.stats), so no gap can be measured
+    fig = P.plot_grid(sets["single_grid"])
+    ax = fig.axes[0]
+    grid = np.ma.filled(ax.get_images()[0].get_array(), np.nan)
+    assert np.sum(grid == 0.0) == 1 and np.isnan(grid).sum() == 3  # the best, and three unknown
+    texts = [t.get_text() for t in ax.texts if (t.get_gid() or "").startswith("cell:")]
+    assert sum(t.endswith("untested") for t in texts) == 3
 
 
 def test_curves_of_a_large_grid_are_small_multiples_one_panel_per_level(sets):
