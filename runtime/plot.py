@@ -6,10 +6,11 @@ writes it as PNG or SVG at exactly ``figsize × DPI`` pixels (constrained layout
 outside the axes by the layout, never ``bbox_inches="tight"``). The numbers drawn come from the
 modules that print them — :func:`runtime.show.curve_rows` and :func:`runtime.show.summary_rows`
 for means, :func:`runtime.stats.summarize` for spreads and intervals, and
-:func:`runtime.diff.diff_result_sets` for differences — so a picture never disagrees with
+:func:`runtime.diff.diff_result_sets` and :func:`runtime.diff.diff_baseline` for differences — so a picture never disagrees with
 ``lesion show`` or ``lesion diff``. Each plotted mean carries a ``gid`` (``mean:<metric>:<variant>``,
 ``arm:<metric>:<variant>``, ``seeds:<metric>:<variant>``, ``cell:<metric>:<variant>``,
-``diff:<metric>:<variant>``) so that its data can be read back from the figure.
+``diff:<metric>:<variant>``; grid outlines ``best:…`` and ``tied:…``) so that its data can be read
+back from the figure.
 
 What is drawn:
 
@@ -17,7 +18,9 @@ What is drawn:
   deviation (ddof = 1) across those runs; train metrics dashed, validation metrics solid, one
   colour and marker per variant; a log axis when a panel's values span more than
   :data:`LOG_SPAN` (ratio of largest to smallest); each diverged run as a × at the top of the
-  panel at its ``diverged_at`` epoch (its values there are unbounded, so they are not drawn).
+  panel at its ``diverged_at`` epoch (its values there are unbounded, so they are not drawn). A
+  grid of more than :data:`FACET_OVER` variants becomes small multiples (:func:`_facets`): nine
+  lines in one panel cannot be followed.
 - ``arms``: per variant the final-epoch mean and its 95 % Student t interval
   (``mean ± t_{n-1,0.975} · s/√n``), every ok seed as a dot, best first in the metric's
   direction, the baseline's mean as a vertical line.
