@@ -77,6 +77,8 @@ app = typer.Typer(
          "  lesion diff results/cold-chain-af23c1abfa5f --axis normalization.kind --margin 0.005\n\n"
          "  lesion seeds results/cold-chain-af23c1abfa5f --margin 0.005   # plan seeds from a pilot\n\n"
          "  lesion diff results/A results/B --fail-on worse\n\n"
+         "  lesion report results/cold-chain-<hash>      # one HTML page for a review\n\n"
+         "  lesion export results/cold-chain-<hash> --run RUN_ID -o best.npz\n\n"
          "  lesion schema > lesion.schema.json",
     no_args_is_help=True,
     add_completion=False,
@@ -476,6 +478,30 @@ def replay(
         raise typer.Exit(1)
 
 
+@app.command()
+def export(
+    result: Path = typer.Argument(..., help="A result set folder written by 'lesion run'.", show_default=False),
+    run: str = typer.Option(..., "--run", help="The run id to export (a unique prefix is enough).", show_default=False),
+    out: Path = typer.Option(..., "--out", "-o", help="The .npz file to write.", show_default=False),
+) -> None:
+    """Write a run's trained parameters and running statistics to a .npz file.
+
+    The run is re-executed from the result set's own spec; the file is written only if the
+    parameters' digest equals the stored one (exit 2 and nothing written otherwise).
+
+    Examples:
+
+      lesion export results/cold-chain-7da471c81b78 --run 3f0c9a1e27d4b8c5-s2 -o winner.npz
+    """
+    from runtime.export import export_run
+
+    done = export_run(result, run, out, on_group=lambda g: _err(f"re-executing run {run} "
+                                                                f"at lane width {g.lane_width} ..."))
+    note = " (the run diverged: these are its last finite parameters)" if done.status != "ok" else ""
+    _err(f"parameter digest {done.param_digest[:16]}… matches the stored one; {done.arrays} arrays written{note}")
+    typer.echo(str(done.path))
+
+
 class FailOn(str, Enum):
     worse = "worse"
     never = "never"
@@ -706,6 +732,42 @@ def plot(
         typer.echo(str(save_figure(fig, target)))
     except PlotError as err:
         raise UsageError(str(err)) from None
+
+
+@app.command()
+def report(
+    result: Path = typer.Argument(..., help="A result set folder written by 'lesion run'.", show_default=False),
+    out: Path = typer.Option(None, "--out", "-o", help="The HTML file to write (default: <result set>/report.html)."),
+    baseline: str = typer.Option(None, "--baseline", help="The variant the verdicts compare against "
+                                 "(default: 'base', else the first variant)."),
+) -> None:
+    """Write one self-contained HTML page about a result set: question, summary, verdicts,
+    pictures, spec, environment and how to replay; print its path.
+
+    Examples:
+
+      lesion report results/cold-chain-7da471c81b78
+
+      lesion report results/cold-chain-7da471c81b78 --baseline "normalization.kind=none, regularization.dropout.rate=0.0" -o review.html
+    """
+    from runtime.plot import PlotError  # imports matplotlib
+    from runtime.report import render_report
+    from runtime.store import open_result_set
+
+    rs = open_result_set(result)
+    target = out or rs.path / "report.html"
+    if target.suffix.lower() not in (".html", ".htm"):
+        raise UsageError(f"-o {target}: expected a file ending in .html")
+    try:
+        page = render_report(rs, baseline)
+    except PlotError as err:
+        raise UsageError(str(err)) from None
+    try:
+        target.parent.mkdir(parents=True, exist_ok=True)
+        target.write_text(page, encoding="utf-8")
+    except OSError as err:
+        raise UsageError(f"-o {target}: cannot write ({err.strerror or err})") from None
+    typer.echo(str(target))
 
 
 def main() -> None:

@@ -52,6 +52,9 @@ class LaneResult:
     diverged_at: int | None             # 1-based epoch, None when the run stayed finite
     param_digest: str
     warnings: list[str] = field(default_factory=list)
+    # Only with keep_arrays: "params/<layer>/<name>", "state/<layer>/<name>" (what the digest
+    # covers) and "input/mean", "input/scale", "split/validation" (what using them needs).
+    arrays: dict[str, np.ndarray] | None = None
 
 
 @dataclass
@@ -260,11 +263,13 @@ def _compiled(group: Group, dataset, knobs, seeds, reuse: bool, environment: dic
 
 
 def execute_group(group: Group, dataset, environment: dict,
-                  on_epoch: Callable[[int, int], None] | None = None, reuse: bool = True) -> GroupResult:
+                  on_epoch: Callable[[int, int], None] | None = None, reuse: bool = True,
+                  keep_arrays: bool = False) -> GroupResult:
     """Train every run of a group at the group's lane width and return its numbers.
 
     ``reuse=False`` compiles afresh even when this process already compiled the structure
-    (replay proves the bits with a new compile)."""
+    (replay proves the bits with a new compile). ``keep_arrays`` returns each lane's trained
+    arrays too (export); runs never store them."""
     import jax
     import jax.numpy as jnp
 
@@ -301,8 +306,19 @@ def execute_group(group: Group, dataset, environment: dict,
             diverged_at=int(at[i]) + 1 if bool(diverged[i]) else None,
             param_digest=param_digest(lane_params),
             warnings=_warnings(run.variant.spec, curves),
+            arrays=_lane_arrays(lane_params, carry, i) if keep_arrays else None,
         ))
     return GroupResult(group.group_id, group.lane_width, names, results, compile_seconds, run_seconds, environment)
+
+
+def _lane_arrays(lane_params, carry, i) -> dict[str, np.ndarray]:
+    import jax
+
+    out = {"/".join(str(k.key) for k in path): np.asarray(leaf)
+           for path, leaf in jax.tree_util.tree_flatten_with_path(lane_params)[0]}
+    out["input/mean"], out["input/scale"] = np.asarray(carry.x_mean[i]), np.asarray(carry.x_scale[i])
+    out["split/validation"] = np.asarray(carry.val_idx[i])
+    return out
 
 
 class InProcess:

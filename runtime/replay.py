@@ -56,6 +56,7 @@ class ReplayReport:
     path: Path
     rows: list[ReplayRow]
     environment_changes: list[str] = field(default_factory=list)
+    arrays: dict[str, dict] = field(default_factory=dict)  # run id -> trained arrays (keep_arrays)
 
     @property
     def identical(self) -> bool:
@@ -116,7 +117,7 @@ def _select(cols, run: str | None, variant: str | None, everything: bool) -> lis
 
 
 def replay(path: str | Path, *, run: str | None = None, variant: str | None = None, everything: bool = False,
-           on_group=None) -> ReplayReport:
+           on_group=None, keep_arrays: bool = False) -> ReplayReport:
     rs = open_result_set(path)
     loaded, by_hash, cols = _verify(rs)
     chosen = _select(cols, run, variant, everything)
@@ -138,7 +139,7 @@ def replay(path: str | Path, *, run: str | None = None, variant: str | None = No
     data = datasets_for(plans, base)
     curves = rs.curves.to_pydict()
     row_of = {cols["run_id"][i]: i for i in chosen}
-    rows = []
+    rows, arrays = [], {}
     for g in plans:
         d = data[g.group_id]
         for r in g.runs:
@@ -149,10 +150,12 @@ def replay(path: str | Path, *, run: str | None = None, variant: str | None = No
                                     f"recorded {stored}); restore the data the run used")
         if on_group:
             on_group(g)
-        result = execute_group(g, d, current, reuse=False)
+        result = execute_group(g, d, current, reuse=False, keep_arrays=keep_arrays)
         for lane in result.lanes:
             rows.append(_compare(lane, cols, row_of[lane.run_id], curves, result.metric_names))
-    return ReplayReport(rs.path, rows, changes)
+            if keep_arrays:
+                arrays[lane.run_id] = lane.arrays
+    return ReplayReport(rs.path, rows, changes, arrays)
 
 
 def _compare(lane, cols, i, curves, metric_names) -> ReplayRow:
