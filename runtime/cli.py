@@ -190,6 +190,14 @@ def _terminal_width(wide: bool = False) -> int | None:
     return shutil.get_terminal_size().columns
 
 
+def _echo_fitted(text: str, wide: bool = False) -> None:
+    """A line of prose, wrapped at the terminal's width like the tables above it."""
+    import textwrap
+
+    width = _terminal_width(wide)
+    typer.echo(text if width is None else textwrap.fill(text, width, subsequent_indent="  "))
+
+
 def _seeds_text(seeds: list[int]) -> str:
     if len(seeds) > 3 and seeds == list(range(seeds[0], seeds[0] + len(seeds))):
         return f"{seeds[0]}..{seeds[-1]}"
@@ -591,9 +599,9 @@ def diff(
         if format is Output.table:
             untested = [r for r in report.rows if r["verdict"] == "no test possible"]
             if untested:
-                typer.echo(f"{len(untested)} row(s): {untested[0]['reason']}")
+                _echo_fitted(f"{len(untested)} row(s): {untested[0]['reason']}", wide)
             for note in report.notes:
-                typer.echo(f"note: {note}")
+                _echo_fitted(f"note: {note}", wide)
     if fail_on is FailOn.worse and report.worse:
         raise typer.Exit(1)
 
