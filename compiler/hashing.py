@@ -59,12 +59,16 @@ def run_id(vhash: str, seed: int) -> str:
     return f"{vhash[:16]}-s{seed}"
 
 
+# Keys that dumps leave out at their default so older study hashes hold (compiler.spec.Standardize).
+OMITTED_AT_DEFAULT = {"data.standardize": True}
+
+
 def lookup(tree: dict, path: str):
-    """The value at a dotted path of a nested dict, or None where the path does not exist."""
+    """The value at a dotted path of a spec's dump, or None where the path does not exist."""
     node = tree
     for part in path.split("."):
         if not isinstance(node, dict) or part not in node:
-            return None
+            return OMITTED_AT_DEFAULT.get(path)
         node = node[part]
     return node
 

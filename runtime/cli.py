@@ -124,7 +124,8 @@ def check(
     format: Format = typer.Option(Format.table, "--format", "-f", help="table for people, json for programs."),
     wide: bool = typer.Option(False, "--wide", help=_WIDE_HELP),
 ) -> None:
-    """Validate a spec and list the variants and runs it expands to; exit 2 listing every problem.
+    """Validate a spec and its data files; list the variants and runs it expands to; exit 2 listing
+    every problem.
 
     Examples:
 
@@ -132,13 +133,23 @@ def check(
 
       lesion check specs/cold-chain.toml --format json
     """
-    from compiler.loader import load_study
-
-    study = load_study(spec)
+    study = _load_runnable(spec)
     if format is Format.json:
         typer.echo(json.dumps(_check_report(study), indent=2, ensure_ascii=False))
         return
     _print_check_table(study, wide)
+
+
+def _load_runnable(spec: Path):
+    """The loaded study, once its spec and its data files' metadata (columns, rows, memory) hold
+    no problem; every problem at once otherwise."""
+    from compiler.data import check_files
+    from compiler.loader import load_study
+    from runtime.guard import data_room
+
+    study = load_study(spec)
+    check_files(study, room=data_room())
+    return study
 
 
 def _check_report(study) -> dict:
@@ -249,10 +260,8 @@ def run(
 
       lesion run specs/cold-chain.toml --cluster local:4
     """
-    from compiler.loader import load_study
-
-    study = load_study(spec)
-    from runtime.runner import run_study  # imports jax: after the spec is known to be good
+    study = _load_runnable(spec)
+    from runtime.runner import run_study  # imports jax: after the spec and its data are known to be good
 
     progress = None if quiet else _RunProgress(study)
     executor = None

@@ -8,8 +8,9 @@ Contract:
 - :func:`lane_budget` ``(groups, data, budget_bytes=None) -> {structure: lanes}``: for each
   structure, the most lanes whose estimate fits in ``budget_bytes`` (default
   :func:`memory_budget`), for :func:`runtime.plan.plan`'s ``lane_budget``;
-- :func:`check_data` ``(groups, where, available=None)`` raises :class:`ResourceError` before a
-  built-in data set too large to generate is drawn;
+- :func:`check_data` ``(groups, where, base_dir, available=None)`` raises :class:`ResourceError`
+  before a built-in data set too large to generate is drawn, or a data file too large to load (by
+  its metadata) is read; :func:`data_room` is the memory a data set may take now;
 - :func:`check` ``(estimate, lanes_given, where, available=None)`` raises :class:`ResourceError`,
   one line naming the estimate, what is available and the knob to turn, when the peak exceeds
   :func:`available_bytes`.
@@ -43,7 +44,7 @@ from compiler.spec import train_size
 from runtime.plan import Group, lane_bytes
 
 __all__ = ["Estimate", "ResourceError", "estimate", "lane_budget", "check", "check_data", "available_bytes",
-           "memory_budget", "total_bytes", "XLA_SLACK", "RUNTIME_BYTES", "FLOPS_PER_SECOND"]
+           "memory_budget", "total_bytes", "data_room", "XLA_SLACK", "RUNTIME_BYTES", "FLOPS_PER_SECOND"]
 
 XLA_SLACK = 1.5
 RUNTIME_BYTES = 512 * 2**20
@@ -52,6 +53,7 @@ FLOPS_PER_SECOND = 30e9
 STEP_SECONDS = 1e-3        # small grid: ~0.7 s for 480 vmapped steps of a tiny model
 COMPILE_SECONDS = 2.0      # one per-epoch program
 BUDGET_SHARE = 0.75        # of total memory, for choosing lane widths
+CGROUP_ROOT = "/sys/fs/cgroup"
 
 
 class ResourceError(Exception):
@@ -146,19 +148,31 @@ def check(est: Estimate, *, lanes_given: bool, where: str, available: int | None
                         f"data {_size(est.data_bytes)}), but {_size(free)} is available; {knob}")
 
 
-def check_data(groups: list[Group], *, where: str, available: int | None = None) -> None:
-    """Before generating anything: raise :class:`ResourceError` when a built-in data set alone
-    (drawn in float64, then kept in float32) would not fit. File data is bounded by its file."""
+def check_data(groups: list[Group], *, where: str, base_dir=".", available: int | None = None) -> None:
+    """Before generating or loading anything: raise :class:`ResourceError` when a data set alone
+    would not fit — a built-in one drawn in float64 then kept in float32, a file as its metadata
+    declares it (:func:`compiler.data.load_bytes`: NPZ headers, Parquet row counts, CSV size), so
+    a small file that expands hugely is refused instead of killing the process."""
+    from compiler.data import inspect_file, load_bytes
+
     free = available_bytes() if available is None else available
     for g in groups:
         data = g.runs[0].variant.spec.data
-        if data.kind != "synthetic":
-            continue
-        need = RUNTIME_BYTES + 12 * data.samples * (data.features + 1)
+        if data.kind == "synthetic":
+            need = RUNTIME_BYTES + 12 * data.samples * (data.features + 1)
+            what = f"data.samples = {data.samples} × data.features = {data.features}"
+            fix = "lower data.samples or data.features"
+        else:
+            need = RUNTIME_BYTES + load_bytes(inspect_file(data, base_dir), data)
+            what, fix = f"data.path = {data.path}", "use a sample of its rows or fewer columns"
         if need > free:
-            raise ResourceError(f"{where}: data.samples = {data.samples} × data.features = {data.features} needs "
-                                f"about {_size(need)} of memory just to generate, but {_size(free)} is available; "
-                                "lower data.samples or data.features")
+            raise ResourceError(f"{where}: {what} needs about {_size(need)} of memory just to load, but "
+                                f"{_size(free)} is available; {fix}")
+
+
+def data_room() -> int:
+    """Memory a data set may take now: what is available, less the interpreter's share."""
+    return available_bytes() - RUNTIME_BYTES
 
 
 # ── this machine ────────────────────────────────────────────────────────────────────────────────
@@ -174,17 +188,30 @@ def _meminfo() -> dict[str, int]:
     return out
 
 
-def _cgroup() -> tuple[int, int] | None:
-    # A container's limit (cgroup v2) can be far below the machine's memory: (limit, in use).
+def _read_int(path: str) -> int | None:
     try:
-        with open("/sys/fs/cgroup/memory.max") as fh:
-            limit = fh.read().strip()
-        if limit == "max":
-            return None
-        with open("/sys/fs/cgroup/memory.current") as fh:
-            return int(limit), int(fh.read().strip())
-    except (OSError, ValueError):
+        with open(path) as fh:
+            text = fh.read().strip()
+    except OSError:
         return None
+    return int(text) if text.isdigit() else None   # cgroup v2 writes "max" for no limit
+
+
+# cgroup v1 writes "no limit" as the largest page-aligned signed 64-bit value; anything from 2**60
+# bytes up is read as none.
+_NO_LIMIT = 2**60
+
+
+def _cgroup(root: str = CGROUP_ROOT) -> tuple[int, int] | None:
+    """A container's memory limit and what it uses, (limit, in use), or None without a limit: cgroup
+    v2 (``memory.max``, ``memory.current``) or v1 (``memory/memory.limit_in_bytes``,
+    ``memory/memory.usage_in_bytes``). Either can be far below the machine's memory."""
+    for limit_file, usage_file in (("memory.max", "memory.current"),
+                                   ("memory/memory.limit_in_bytes", "memory/memory.usage_in_bytes")):
+        limit = _read_int(os.path.join(root, limit_file))
+        if limit is not None and limit < _NO_LIMIT:
+            return limit, _read_int(os.path.join(root, usage_file)) or 0
+    return None
 
 
 def total_bytes() -> int:

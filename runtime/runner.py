@@ -231,6 +231,21 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
     spec = loaded.spec
     headline = spec.study.metric
     seeds = spec.study.seed_list
+    base_dir = Path(loaded.path).resolve().parent if loaded.path else Path.cwd()
+    where = loaded.path or loaded.spec.study.name
+    # Everything that can refuse the study (data, memory) is decided before the result set's
+    # folder exists, from all runs: the widths never depend on what is already stored.
+    groups = plan(loaded.variants, seeds, lanes=lanes)
+    if executor is None:  # the memory checked is this machine's
+        guard.check_data(groups, where=where, base_dir=base_dir)
+    loaded_data: dict = {}
+    data = datasets_for(groups, base_dir, loaded_data)
+    if executor is None:
+        budget = guard.lane_budget(groups, data)
+        if lanes is None and any(g.lane_width > budget[g.structure] for g in groups):
+            groups = plan(loaded.variants, seeds, lane_budget=budget)
+            data = datasets_for(groups, base_dir, loaded_data)
+        guard.check(guard.estimate(groups, data), lanes_given=lanes is not None, where=where)
     with writer_lock(path, on_wait=on_wait):
         stored = None if fresh else _stored(path)
         if stored is not None and stored.study_hash != loaded.study_hash:
@@ -241,23 +256,8 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
                                stored.runs.column("env_fingerprint").to_pylist()):
                 if fp == env_fp:
                     done.add(rid)
-        groups = plan(loaded.variants, seeds, lanes=lanes)
         todo = _missing(groups, done)
-        base_dir = Path(loaded.path).resolve().parent if loaded.path else Path.cwd()
-        where = loaded.path or loaded.spec.study.name
-        if executor is None:  # the memory checked is this machine's
-            guard.check_data(todo, where=where)
-        loaded_data: dict = {}
-        data = datasets_for(todo, base_dir, loaded_data)
-        estimate = None
-        if executor is None:
-            budget = guard.lane_budget(todo, data)
-            if lanes is None and any(g.lane_width > budget[g.structure] for g in todo):
-                groups = plan(loaded.variants, seeds, lane_budget=budget)
-                todo = _missing(groups, done)
-                data = datasets_for(todo, base_dir, loaded_data)
-            estimate = guard.estimate(todo, data)
-            guard.check(estimate, lanes_given=lanes is not None, where=where)
+        estimate = guard.estimate(todo, data) if executor is None else None
         planned = sum(len(g.runs) for g in groups)
         if progress:
             progress("plan", groups=len(todo), runs=sum(len(g.runs) for g in todo), planned=planned,
