@@ -533,9 +533,12 @@ def save_figure(fig: Figure, path: str | Path) -> Path:
     fmt = path.suffix.lower().lstrip(".")
     if fmt not in ("png", "svg"):
         raise PlotError(f"-o {path}: expected a file ending in .png or .svg")
-    path.parent.mkdir(parents=True, exist_ok=True)
     # No date in the file, fixed SVG ids: the same result set gives the same bytes.
     metadata = {"Date": None} if fmt == "svg" else {}
-    with matplotlib.rc_context({"svg.hashsalt": "lesion", "svg.fonttype": "path"}):
-        fig.savefig(path, format=fmt, dpi=DPI, metadata=metadata)
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        with matplotlib.rc_context({"svg.hashsalt": "lesion", "svg.fonttype": "path"}):
+            fig.savefig(path, format=fmt, dpi=DPI, metadata=metadata)
+    except OSError as err:
+        raise PlotError(f"{path}: cannot write the picture ({err.strerror or err}); choose a writable -o") from None
     return path

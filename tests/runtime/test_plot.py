@@ -404,3 +404,12 @@ def test_cli_bad_input_is_one_line_and_exit_2(sets, args, message):
     assert out.exit_code == 2, out.output
     assert message in out.stderr and len(out.stderr.strip().splitlines()) == 1
     assert "Traceback" not in out.output
+
+
+@pytest.mark.parametrize("target", ["/sys/lesion-plot.png", "/sys/lesion-plots/arms.png"])
+def test_cli_an_unwritable_picture_path_is_one_line_and_exit_2(sets, target):
+    # /sys refuses new files (EACCES) and folders (EPERM) even to root, where a read-only chmod would not
+    out = CliRunner().invoke(app, ["plot", str(sets["single"].path), "--kind", "arms", "-o", target])
+    assert out.exit_code == 2, out.exception
+    (line,) = out.stderr.splitlines()
+    assert line.startswith(target) and "cannot write the picture" in line, line
