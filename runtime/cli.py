@@ -12,7 +12,9 @@ Contract:
 
 from __future__ import annotations
 
+import errno
 import json
+import os
 import sys
 from enum import Enum
 from pathlib import Path
@@ -516,8 +518,49 @@ def plot(
 
 
 def main() -> None:
-    """Console-script entry point (``lesion = "runtime.cli:main"``)."""
-    app()
+    """Console-script entry point (``lesion = "runtime.cli:main"``).
+
+    Standard output that cannot take what a command prints (closed with ``>&-``, a full disk,
+    ``>/dev/full``) is a one-line error and exit 2, never a traceback nor output silently
+    dropped; a pipe closed by its reader (``| head``) keeps click's quiet exit 1."""
+    if sys.stdout is None:  # descriptor 1 closed at start: refuse before any work is done
+        _err("lesion: standard output is closed; redirect it instead (e.g. >/dev/null)")
+        sys.exit(2)
+    try:
+        app()
+    except SystemExit as done:
+        _flush_stdout()
+        raise done from None
+    except OSError as err:
+        # lesion's own files turn their OSErrors into user errors naming the file; one without a
+        # file name and of this kind is the console stream refusing bytes.
+        if err.filename is not None or err.errno not in _STREAM_ERRORS:
+            raise
+        _quiet_stdout()
+        _err(f"lesion: cannot write to standard output ({err.strerror or err})")
+        sys.exit(2)
+
+
+_STREAM_ERRORS = (errno.ENOSPC, errno.EDQUOT, errno.EFBIG, errno.EBADF, errno.EIO)
+
+
+def _quiet_stdout() -> None:
+    """Point descriptor 1 at /dev/null, so the interpreter's own flush at exit does not fail
+    again with a traceback."""
+    devnull = os.open(os.devnull, os.O_WRONLY)
+    os.dup2(devnull, sys.stdout.fileno())
+    os.close(devnull)
+
+
+def _flush_stdout() -> None:
+    try:
+        sys.stdout.flush()
+    except OSError as err:
+        if err.errno not in _STREAM_ERRORS:
+            raise
+        _quiet_stdout()
+        _err(f"lesion: cannot write to standard output ({err.strerror or err})")
+        sys.exit(2)
 
 
 if __name__ == "__main__":

@@ -86,3 +86,23 @@ def test_diff_cli_gate_and_formats(stored):
     assert both.exit_code == 2 and "--baseline" in both.stderr
     missing = runner.invoke(app, ["diff", str(path), str(path.parent / "absent")])
     assert missing.exit_code == 2 and "no such result set" in missing.stderr
+
+
+@pytest.mark.parametrize("redirect, message", [
+    (">/dev/full", "lesion: cannot write to standard output (No space left on device)"),
+    (">&-", "lesion: standard output is closed; redirect it instead (e.g. >/dev/null)"),
+])
+def test_an_unwritable_standard_output_is_one_line_and_exit_2(redirect, message):
+    # /dev/full refuses every write with ENOSPC (Linux null(4)/full(4) man page); `>&-` closes
+    # descriptor 1 (POSIX shell redirection)
+    out = subprocess.run(["bash", "-c", f'"$0" -m runtime.cli schema {redirect}', sys.executable],
+                         capture_output=True, text=True, cwd=ROOT, timeout=120)
+    assert out.returncode == 2, out.stderr
+    assert out.stderr.splitlines() == [message]
+
+
+def test_a_pipe_closed_by_its_reader_stays_quiet():
+    # `| head` closing early is normal use, not an error worth a message (common practice)
+    out = subprocess.run(["bash", "-c", '"$0" -m runtime.cli schema | head -c 1 >/dev/null; exit ${PIPESTATUS[0]}',
+                          sys.executable], capture_output=True, text=True, cwd=ROOT, timeout=120)
+    assert out.returncode in (0, 1) and out.stderr == "", out.stderr
