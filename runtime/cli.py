@@ -38,11 +38,15 @@ USER_ERRORS: tuple[type[Exception], ...] = (SpecError, ResultSetError, UsageErro
 
 
 class _Group(TyperGroup):
-    """Turns a user error raised by any command into its printed problems and exit code 2."""
+    """Turns a user error raised by any command into its printed problems and exit code 2, and
+    Ctrl-C into exit 130."""
 
     def invoke(self, ctx: typer.Context):
         try:
             return super().invoke(ctx)
+        except KeyboardInterrupt:  # Ctrl-C outside `run`'s own handling: nothing of lesion's is half-written
+            typer.echo("interrupted", err=True)
+            raise typer.Exit(130) from None
         except Exception as err:
             if not isinstance(err, USER_ERRORS + _loaded_user_errors()):
                 raise
@@ -212,24 +216,39 @@ def run(
 
       lesion run specs/cold-chain.toml --cluster local:4
     """
-    from compiler.loader import load_study
+    from runtime.interrupt import Interrupted, interrupt_guard
 
-    study = load_study(spec)
-    from runtime.runner import run_study  # imports jax: after the spec is known to be good
+    # Before anything heavy is imported: from here on Ctrl-C only asks the run to stop at its
+    # next safe point (runtime/interrupt.py says why).
+    with interrupt_guard("interrupted again: stopping at once; finished groups are stored") as ctrl_c:
+        from compiler.loader import load_study
 
-    progress = None if quiet else _RunProgress(study)
-    executor = None
-    if cluster is not None:
-        from runtime.cluster import DaskExecutor
-        executor = DaskExecutor(cluster, on_warning=lambda text: _err(f"warning: {text}"))
-    try:
-        with executor or _nothing(), progress or _nothing():
-            report = run_study(study, out, lanes=lanes, fresh=fresh, progress=progress, executor=executor,
-                               on_wait=lambda: _err("waiting: another 'lesion run' is writing this result set"))
-    except KeyboardInterrupt:
-        _err(f"interrupted: finished groups are stored in {out / study.result_set}; "
-             f"run the same command again to compute only what is missing")
-        raise typer.Exit(130) from None
+        study = load_study(spec)
+        folder = out / study.result_set
+        try:
+            ctrl_c.check()
+            from runtime.runner import run_study  # imports jax: after the spec is known to be good
+
+            ctrl_c.check()
+            progress = None if quiet else _RunProgress(study)
+            executor = None
+            if cluster is not None:
+                from runtime.cluster import DaskExecutor
+                executor = DaskExecutor(cluster, on_warning=lambda text: _err(f"warning: {text}"))
+            with executor or _nothing(), progress or _nothing():
+                report = run_study(study, out, lanes=lanes, fresh=fresh, progress=progress, executor=executor,
+                                   checkpoint=ctrl_c.check,
+                                   on_wait=lambda: _err("waiting: another 'lesion run' is writing this result set"))
+        except Interrupted:
+            if fresh:
+                from runtime.store import STAGING
+                _err(f"interrupted: the stored result set in {folder} is unchanged; the runs recomputed so far "
+                     f"are kept in {folder / STAGING}, and the same command (with --fresh) computes only the "
+                     "rest, then replaces the stored runs")
+            else:
+                _err(f"interrupted: finished groups are stored in {folder}; "
+                     f"run the same command again to compute only what is missing")
+            raise typer.Exit(130) from None
     if not quiet:
         _err(f"{report.planned} runs: {report.computed} computed, {report.reused} already stored; "
              f"{report.diverged} diverged; {report.groups} groups, "

@@ -24,6 +24,7 @@ import json
 import os
 import stat
 import tempfile
+import time
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -253,8 +254,8 @@ class writer_lock:
     ``O_NOFOLLOW``), and a lock file with other hard links is refused: the pid written into it
     must not land in another file."""
 
-    def __init__(self, path: Path, on_wait=None):
-        self.path, self.on_wait, self.fd = Path(path), on_wait, -1
+    def __init__(self, path: Path, on_wait=None, checkpoint=None):
+        self.path, self.on_wait, self.checkpoint, self.fd = Path(path), on_wait, checkpoint, -1
 
     def __enter__(self):
         lock = self.path / ".lock"
@@ -280,7 +281,7 @@ class writer_lock:
         except BlockingIOError:
             if self.on_wait:
                 self.on_wait()
-            fcntl.flock(fd, fcntl.LOCK_EX)
+            self._wait(fd)
         try:
             os.ftruncate(fd, 0)
             os.pwrite(fd, str(os.getpid()).encode(), 0)
@@ -291,6 +292,24 @@ class writer_lock:
             self.__exit__()
             raise _cannot_write(lock, err) from None
         return self
+
+    def _wait(self, fd: int) -> None:
+        if self.checkpoint is None:
+            fcntl.flock(fd, fcntl.LOCK_EX)
+            return
+        # Polled, so that ``checkpoint`` (Ctrl-C) can end the wait: a blocking flock is resumed
+        # after a signal handler returns.
+        while True:
+            try:
+                self.checkpoint()
+            except BaseException:
+                os.close(fd)
+                raise
+            try:
+                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+                return
+            except BlockingIOError:
+                time.sleep(0.1)
 
     def __exit__(self, *exc):
         fcntl.flock(self.fd, fcntl.LOCK_UN)
