@@ -19,11 +19,15 @@ import sys
 from enum import Enum
 from pathlib import Path
 
-import typer
-from typer.core import TyperGroup
+try:
+    import typer
+    from typer.core import TyperGroup
 
-from compiler.errors import SpecError
-from runtime.store import ResultSetError
+    from compiler.errors import SpecError
+    from runtime.store import ResultSetError
+except KeyboardInterrupt:  # Ctrl-C while lesion starts: nothing is computed yet, nothing to keep
+    sys.stderr.write("interrupted\n")
+    raise SystemExit(130) from None
 
 __all__ = ["app", "main", "USER_ERRORS"]
 

@@ -22,7 +22,7 @@ from typer.testing import CliRunner
 
 from compiler.loader import load_study
 from runtime.cli import app
-from runtime.store import CURVES, RUNS, open_result_set
+from runtime.store import CURVES, RUNS, STAGING, open_result_set
 
 ROOT = Path(__file__).parents[2]
 RUNS_TOTAL, EPOCHS = 12, 3
@@ -235,7 +235,7 @@ def test_a_read_only_result_set_is_a_clean_error(stored):
 
 
 # ── Ctrl-C at a terminal ─────────────────────────────────────────────────────────────────────────
-def _at_terminal(spec: Path, out: Path, *extra: str) -> tuple[int, int]:
+def _at_terminal(spec: Path, out: Path, *extra: str, python: tuple = ()) -> tuple[int, int]:
     """`lesion run` on a pseudo-terminal of its own (its session and foreground process group):
     returns (pid, master fd). Typing Ctrl-C is writing the INTR character (0x03) to the master;
     the terminal's line discipline turns it into SIGINT to the foreground group (POSIX termios,
@@ -244,7 +244,7 @@ def _at_terminal(spec: Path, out: Path, *extra: str) -> tuple[int, int]:
     pid, fd = pty.fork()
     if pid == 0:  # the child: pty.fork made the terminal its controlling one
         os.chdir(ROOT)
-        os.execv(sys.executable, [sys.executable, "-m", "runtime.cli", "run", str(spec), "--out", str(out),
+        os.execv(sys.executable, [sys.executable, *python, "-m", "runtime.cli", "run", str(spec), "--out", str(out),
                                   "--lanes", "1", *extra])
     return pid, fd
 
@@ -268,11 +268,17 @@ def _interrupt_at(spec: Path, out: Path, moment: str, rng: random.Random, *extra
     """Press Ctrl-C once at `moment` (import, compile, execution, write); returns (exit status or
     None when a signal ended it, everything it printed, seconds from Ctrl-C to exit)."""
     folder = out / load_study(spec).result_set
-    pid, fd = _at_terminal(spec, out, *extra)
+    if "--fresh" in extra:  # its groups are written beside the stored set until the study is complete
+        folder = folder / STAGING
+    # -X importtime reports each import as it ends: the interpreter's own start-up (before the
+    # `site` module) is Python's, not lesion's, to handle.
+    pid, fd = _at_terminal(spec, out, *extra, python=("-X", "importtime") if moment == "import" else ())
     text = bytearray()
     deadline = time.monotonic() + 300
-    if moment == "import":  # while Python imports typer, pydantic, jax
-        _drain(fd, text, rng.uniform(0.05, 0.6))
+    if moment == "import":  # while lesion imports typer, pyarrow, pydantic, jax
+        while b"| site\r\n" not in text and time.monotonic() < deadline:
+            _drain(fd, text, 0.002)
+        _drain(fd, text, rng.uniform(0.0, 1.0))
     elif moment == "compile":  # the plan is printed just before the first compile
         while b"runs to compute" not in text and time.monotonic() < deadline:
             _drain(fd, text, 0.01)
