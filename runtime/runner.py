@@ -212,10 +212,9 @@ def _missing(groups: list[Group], done: set) -> list[Group]:
     return todo
 
 
-def _recorded_widths(stored: ResultSet | None, done: set, lanes: int | None, where: Path, fresh: bool) -> dict[str, int]:
-    """structure -> the lane width its reused runs were computed at. Bits depend on the width, so
-    the rest of a structure is computed at that width too; a ``--lanes`` that says otherwise is
-    refused rather than mixing widths in one structure."""
+def _recorded_widths(stored: ResultSet | None, done: set) -> dict[str, int]:
+    """structure -> the lane width its reused runs were computed at (bits depend on the width, so
+    the rest of the structure is computed at that width too)."""
     if stored is None or not done:
         return {}
     found: dict[str, set] = {}
@@ -223,15 +222,19 @@ def _recorded_widths(stored: ResultSet | None, done: set, lanes: int | None, whe
     for rid, structure, width in zip(cols["run_id"], cols["structure"], cols["lane_width"]):
         if rid in done:
             found.setdefault(structure, set()).add(width)
-    widths = {s: next(iter(w)) for s, w in found.items() if len(w) == 1}
-    clash = sorted({w for w in widths.values() if lanes is not None and w != lanes})
+    return {s: next(iter(w)) for s, w in found.items() if len(w) == 1}
+
+
+def _refuse_other_width(todo: list[Group], widths: dict[str, int], lanes: int | None, where: Path, fresh: bool):
+    """A ``--lanes`` that differs from the width of a structure's stored runs would mix widths in
+    that structure: refused, rather than silently overridden, when runs of it are still missing."""
+    clash = sorted({widths[g.structure] for g in todo if g.structure in widths and lanes not in (None, widths[g.structure])})
     if clash:
         raise ResultSetError(
             f"{where}: runs stored there were computed at lane width {', '.join(map(str, clash))}; --lanes {lanes} "
             "would compute the rest of their structure at another width (a run's bits depend on it); "
             + (f"omit --lanes to keep it, or delete {where} to start the fresh computation over" if fresh else
                f"omit --lanes to keep it, or recompute every run with --fresh --lanes {lanes}"))
-    return widths
 
 
 def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = False,
@@ -282,9 +285,10 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
                                stored.runs.column("env_fingerprint").to_pylist()):
                 if fp == env_fp:
                     done.add(rid)
-        widths = _recorded_widths(stored, done, lanes, target, fresh)
+        widths = _recorded_widths(stored, done)
         groups = plan(loaded.variants, seeds, lanes=lanes, widths=widths)
         todo = _missing(groups, done)
+        _refuse_other_width(todo, widths, lanes, target, fresh)
         base_dir = Path(loaded.path).resolve().parent if loaded.path else Path.cwd()
         where = loaded.path or loaded.spec.study.name
         if executor is None:  # the memory checked is this machine's
