@@ -79,12 +79,13 @@ app = typer.Typer(
 
 
 def _loaded_user_errors() -> tuple[type[Exception], ...]:
-    # compiler.data, runtime.cluster, runtime.guard and runtime.execute are only in sys.modules
-    # when a command needed data, a cluster, a resource estimate or the compile cache; then their
-    # errors count too.
+    # compiler.data, runtime.cluster, runtime.guard, runtime.execute and runtime.environment are
+    # only in sys.modules when a command needed data, a cluster, a resource estimate, the compile
+    # cache or jax's settings; then their errors count too.
     found = [getattr(sys.modules[name], error) for name, error in
              (("compiler.data", "DataError"), ("runtime.cluster", "ClusterError"),
-              ("runtime.guard", "ResourceError"), ("runtime.execute", "CacheError")) if name in sys.modules]
+              ("runtime.guard", "ResourceError"), ("runtime.execute", "CacheError"),
+              ("runtime.environment", "SettingError")) if name in sys.modules]
     return tuple(found)
 
 

@@ -261,6 +261,7 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
     ``progress(event, **info)`` receives ("plan", groups=…, runs=…, estimate=…), ("group", group=…,
     todo=…), ("epoch", done=…, total=…), ("stored", group=…, result=…)."""
     enable_compile_cache()
+    environment.check_settings()
     env = environment.capture()
     # Stored runs are reused when they match the environment that will compute the missing ones
     # (an executor's workers, when it says so), not necessarily this process's.
