@@ -51,8 +51,10 @@ class interrupt_guard:
 
     def __enter__(self) -> "interrupt_guard":
         # Only the main thread may install handlers; elsewhere (a caller's worker thread) SIGINT
-        # never reaches this code anyway.
-        if threading.current_thread() is threading.main_thread():
+        # never reaches this code anyway. An ignored SIGINT (a background job of a shell without
+        # job control) stays ignored, as Python itself leaves it.
+        if threading.current_thread() is threading.main_thread() and \
+                signal.getsignal(signal.SIGINT) is not signal.SIG_IGN:
             self._previous = signal.signal(signal.SIGINT, self._handle)
         return self
 

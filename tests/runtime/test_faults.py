@@ -244,6 +244,7 @@ def _at_terminal(spec: Path, out: Path, *extra: str, python: tuple = ()) -> tupl
     pid, fd = pty.fork()
     if pid == 0:  # the child: pty.fork made the terminal its controlling one
         os.chdir(ROOT)
+        signal.signal(signal.SIGINT, signal.SIG_DFL)  # a foreground job, even if pytest runs in the background
         os.execv(sys.executable, [sys.executable, *python, "-m", "runtime.cli", "run", str(spec), "--out", str(out),
                                   "--lanes", "1", *extra])
     return pid, fd
