@@ -12,14 +12,15 @@ Contract:
 
 from __future__ import annotations
 
-import errno
-import json
-import os
 import sys
-from enum import Enum
-from pathlib import Path
 
 try:
+    import errno
+    import json
+    import os
+    from enum import Enum
+    from pathlib import Path
+
     import typer
     from typer.core import TyperGroup
 
