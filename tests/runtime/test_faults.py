@@ -241,7 +241,12 @@ def _at_terminal(spec: Path, out: Path, *extra: str, python: tuple = ()) -> tupl
     the terminal's line discipline turns it into SIGINT to the foreground group (POSIX termios,
     ISIG), as at an interactive shell."""
     import pty
-    pid, fd = pty.fork()
+    import warnings
+    with warnings.catch_warnings():
+        # jax warns of forking a threaded process; the child only changes folder and signal
+        # disposition (system calls, no lock another thread could hold) before it execs
+        warnings.simplefilter("ignore", RuntimeWarning)
+        pid, fd = pty.fork()
     if pid == 0:  # the child: pty.fork made the terminal its controlling one
         os.chdir(ROOT)
         signal.signal(signal.SIGINT, signal.SIG_DFL)  # a foreground job, even if pytest runs in the background
