@@ -101,8 +101,9 @@ class _Parts(NamedTuple):
 
 
 def seed_key(seed: int) -> jax.Array:
-    """The root key of a run: a typed threefry key."""
-    return jax.random.key(seed)
+    """The root key of a run: a typed threefry key. The generator is named, not taken from
+    ``jax_default_prng_impl``: another one (``rbg``) would draw other numbers from the same seed."""
+    return jax.random.key(seed, impl="threefry2x32")
 
 
 def permutation(key: jax.Array, n: int) -> jax.Array:
@@ -227,7 +228,7 @@ def compile_variant(variant: Spec, dataset: Dataset, zero_knobs: frozenset[str] 
     def scores(p, params, state, x, y):
         """Inference-mode divergence and accuracy/RMSE on standardized inputs."""
         # Inference draws no dropout masks, so any key will do.
-        z, _ = p.network.apply(params, state, x, jax.random.key(0), None, False)
+        z, _ = p.network.apply(params, state, x, seed_key(0), None, False)
         out = {"divergence": jnp.mean(p.divergence.per_example(z, y))}
         if not classification:
             out["rmse"] = jnp.sqrt(jnp.mean(jnp.square(z - y)))

@@ -12,17 +12,24 @@ Contract:
 
 from __future__ import annotations
 
-import json
 import sys
-import time
-from enum import Enum
-from pathlib import Path
 
-import typer
-from typer.core import TyperCommand, TyperGroup
+try:
+    import errno
+    import json
+    import os
+    import time
+    from enum import Enum
+    from pathlib import Path
 
-from compiler.errors import SpecError
-from runtime.store import ResultSetError
+    import typer
+    from typer.core import TyperCommand, TyperGroup
+
+    from compiler.errors import SpecError
+    from runtime.store import ResultSetError
+except KeyboardInterrupt:  # Ctrl-C while lesion starts: nothing is computed yet, nothing to keep
+    sys.stderr.write("interrupted\n")
+    raise SystemExit(130) from None
 
 __all__ = ["app", "main", "USER_ERRORS"]
 
@@ -37,11 +44,15 @@ USER_ERRORS: tuple[type[Exception], ...] = (SpecError, ResultSetError, UsageErro
 
 
 class _Group(TyperGroup):
-    """Turns a user error raised by any command into its printed problems and exit code 2."""
+    """Turns a user error raised by any command into its printed problems and exit code 2, and
+    Ctrl-C into exit 130."""
 
     def invoke(self, ctx: typer.Context):
         try:
             return super().invoke(ctx)
+        except KeyboardInterrupt:  # Ctrl-C outside `run`'s own handling: nothing of lesion's is half-written
+            typer.echo("interrupted", err=True)
+            raise typer.Exit(130) from None
         except Exception as err:
             if not isinstance(err, USER_ERRORS + _loaded_user_errors()):
                 raise
@@ -94,12 +105,13 @@ def _main(version: bool = typer.Option(False, "--version", callback=_version, is
 
 
 def _loaded_user_errors() -> tuple[type[Exception], ...]:
-    # compiler.data, runtime.cluster, runtime.guard and runtime.execute are only in sys.modules
-    # when a command needed data, a cluster, a resource estimate or the compile cache; then their
-    # errors count too.
+    # compiler.data, runtime.cluster, runtime.guard, runtime.execute and runtime.environment are
+    # only in sys.modules when a command needed data, a cluster, a resource estimate, the compile
+    # cache or jax's settings; then their errors count too.
     found = [getattr(sys.modules[name], error) for name, error in
              (("compiler.data", "DataError"), ("runtime.cluster", "ClusterError"),
-              ("runtime.guard", "ResourceError"), ("runtime.execute", "CacheError")) if name in sys.modules]
+              ("runtime.guard", "ResourceError"), ("runtime.execute", "CacheError"),
+              ("runtime.environment", "SettingError")) if name in sys.modules]
     return tuple(found)
 
 
@@ -260,22 +272,38 @@ def run(
 
       lesion run specs/cold-chain.toml --cluster local:4
     """
-    study = _load_runnable(spec)
-    from runtime.runner import run_study  # imports jax: after the spec and its data are known to be good
+    from runtime.interrupt import Interrupted, interrupt_guard
 
-    progress = None if quiet else _RunProgress(study)
-    executor = None
-    if cluster is not None:
-        from runtime.cluster import DaskExecutor
-        executor = DaskExecutor(cluster, on_warning=lambda text: _err(f"warning: {text}"))
-    try:
-        with executor or _nothing(), progress or _nothing():
-            report = run_study(study, out, lanes=lanes, fresh=fresh, progress=progress, executor=executor,
-                               on_wait=lambda: _err("waiting: another 'lesion run' is writing this result set"))
-    except KeyboardInterrupt:
-        _err(f"interrupted: finished groups are stored in {out / study.result_set}; "
-             f"run the same command again to compute only what is missing")
-        raise typer.Exit(130) from None
+    # Before anything heavy is imported: from here on Ctrl-C only asks the run to stop at its
+    # next safe point (runtime/interrupt.py says why).
+    with interrupt_guard("interrupted again: stopping at once; finished groups are stored") as ctrl_c:
+
+        study = _load_runnable(spec)
+        folder = out / study.result_set
+        try:
+            ctrl_c.check()
+            from runtime.runner import run_study  # imports jax: after the spec and its data are known to be good
+
+            ctrl_c.check()
+            progress = None if quiet else _RunProgress(study)
+            executor = None
+            if cluster is not None:
+                from runtime.cluster import DaskExecutor
+                executor = DaskExecutor(cluster, on_warning=lambda text: _err(f"warning: {text}"))
+            with executor or _nothing(), progress or _nothing():
+                report = run_study(study, out, lanes=lanes, fresh=fresh, progress=progress, executor=executor,
+                                   checkpoint=ctrl_c.check,
+                                   on_wait=lambda: _err("waiting: another 'lesion run' is writing this result set"))
+        except Interrupted:
+            if fresh:
+                from runtime.store import STAGING
+                _err(f"interrupted: the stored result set in {folder} is unchanged; the runs recomputed so far "
+                     f"are kept in {folder / STAGING}, and the same command (with --fresh) computes only the "
+                     "rest, then replaces the stored runs")
+            else:
+                _err(f"interrupted: finished groups are stored in {folder}; "
+                     f"run the same command again to compute only what is missing")
+            raise typer.Exit(130) from None
     if not quiet:
         _err(f"{report.planned} runs: {report.computed} computed, {report.reused} already stored; "
              f"{report.diverged} diverged; {report.groups} groups, "
@@ -788,8 +816,49 @@ def report(
 
 
 def main() -> None:
-    """Console-script entry point (``lesion = "runtime.cli:main"``)."""
-    app()
+    """Console-script entry point (``lesion = "runtime.cli:main"``).
+
+    Standard output that cannot take what a command prints (closed with ``>&-``, a full disk,
+    ``>/dev/full``) is a one-line error and exit 2, never a traceback nor output silently
+    dropped; a pipe closed by its reader (``| head``) keeps click's quiet exit 1."""
+    if sys.stdout is None:  # descriptor 1 closed at start: refuse before any work is done
+        _err("lesion: standard output is closed; redirect it instead (e.g. >/dev/null)")
+        sys.exit(2)
+    try:
+        app()
+    except SystemExit as done:
+        _flush_stdout()
+        raise done from None
+    except OSError as err:
+        # lesion's own files turn their OSErrors into user errors naming the file; one without a
+        # file name and of this kind is the console stream refusing bytes.
+        if err.filename is not None or err.errno not in _STREAM_ERRORS:
+            raise
+        _quiet_stdout()
+        _err(f"lesion: cannot write to standard output ({err.strerror or err})")
+        sys.exit(2)
+
+
+_STREAM_ERRORS = (errno.ENOSPC, errno.EDQUOT, errno.EFBIG, errno.EBADF, errno.EIO)
+
+
+def _quiet_stdout() -> None:
+    """Point descriptor 1 at /dev/null, so the interpreter's own flush at exit does not fail
+    again with a traceback."""
+    devnull = os.open(os.devnull, os.O_WRONLY)
+    os.dup2(devnull, sys.stdout.fileno())
+    os.close(devnull)
+
+
+def _flush_stdout() -> None:
+    try:
+        sys.stdout.flush()
+    except OSError as err:
+        if err.errno not in _STREAM_ERRORS:
+            raise
+        _quiet_stdout()
+        _err(f"lesion: cannot write to standard output ({err.strerror or err})")
+        sys.exit(2)
 
 
 if __name__ == "__main__":

@@ -327,14 +327,30 @@ class InProcess:
     An executor's contract: ``run(groups, data, environment, progress)`` yields
     ``(group, GroupResult)`` as groups finish, in any order; ``data`` maps a group id to its
     Dataset; ``progress`` (or None) receives the ("group", group=…) and ("epoch", done=…, total=…)
-    events. The caller writes each result as it arrives."""
+    events. The caller writes each result as it arrives.
+
+    ``checkpoint()`` (optional) is called before each group and after each epoch, outside any
+    jax call, so that it may raise to abandon the group in flight (Ctrl-C)."""
+
+    def __init__(self, checkpoint: Callable[[], None] | None = None):
+        self.checkpoint = checkpoint
 
     def run(self, groups, data, environment, progress=None):
+        check = self.checkpoint
+
+        def on_epoch(done, total):
+            if progress:
+                progress("epoch", done=done, total=total)
+            if check:
+                check()
+
         for g in groups:
+            if check:
+                check()
             if progress:
                 progress("group", group=g, todo=len(g.runs))
-            on_epoch = (lambda d, t: progress("epoch", done=d, total=t)) if progress else None
-            yield g, execute_group(g, data[g.group_id], environment, on_epoch=on_epoch)
+            yield g, execute_group(g, data[g.group_id], environment,
+                                   on_epoch=on_epoch if check or progress else None)
 
 
 def _warnings(spec, curves: dict[str, np.ndarray]) -> list[str]:

@@ -640,8 +640,11 @@ def save_figure(fig: Figure, path: str | Path) -> Path:
     fmt = path.suffix.lower().lstrip(".")
     if fmt not in ("png", "svg"):
         raise PlotError(f"-o {path}: expected a file ending in .png or .svg")
-    path.parent.mkdir(parents=True, exist_ok=True)
-    _savefig(fig, path, fmt)
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        _savefig(fig, path, fmt)
+    except OSError as err:
+        raise PlotError(f"{path}: cannot write the picture ({err.strerror or err}); choose a writable -o") from None
     return path
 
 

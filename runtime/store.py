@@ -22,7 +22,9 @@ import errno
 import fcntl
 import json
 import os
+import stat
 import tempfile
+import time
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -31,11 +33,13 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 __all__ = ["column", "ResultSet", "ResultSetError", "open_result_set", "result_dir", "write_results", "writer_lock",
-           "META_KEYS", "RUNS", "CURVES"]
+           "META_KEYS", "RUNS", "CURVES", "STAGING", "refuse_link"]
 
 RUNS = "runs.parquet"
 _TMP = ".parquet-tmp"
 CURVES = "curves.parquet"
+# Where ``lesion run --fresh`` writes its new runs until the whole study is computed.
+STAGING = ".fresh"
 META_KEYS = ("spec_source", "spec_path", "canonical_json", "study_hash", "version", "environment")
 
 
@@ -215,6 +219,7 @@ def write_results(path: Path, meta: dict, runs: pa.Table, curves: pa.Table, *,
                   previous: ResultSet | None) -> ResultSet:
     """Merge new run rows (and their curves) into the result set at ``path``, replacing rows of
     the same run ids, and write both files atomically (curves first; runs is the commit)."""
+    refuse_link(path)
     path.mkdir(parents=True, exist_ok=True)
     new_ids = set(runs.column("run_id").to_pylist())
     old_runs = old_curves = None
@@ -232,40 +237,91 @@ def write_results(path: Path, meta: dict, runs: pa.Table, curves: pa.Table, *,
     return ResultSet(path, all_runs, all_curves, {**meta})
 
 
+def refuse_link(path: Path) -> None:
+    """Refuse a result-set path that is a symbolic link: writing through it would put files
+    outside ``--out``, or overwrite whatever it points to."""
+    try:
+        st = os.lstat(path)
+    except FileNotFoundError:
+        return
+    except OSError as err:
+        raise ResultSetError(f"{path}: cannot inspect ({err.strerror or err})") from None
+    if stat.S_ISLNK(st.st_mode):
+        raise ResultSetError(f"{path}: is a symbolic link; lesion writes a result set only as a real folder "
+                             "under --out (remove the link or choose another --out)")
+
+
 class writer_lock:
     """Exclusive ``flock`` on ``<result set>/.lock`` for the whole of one ``lesion run``.
 
     A second process on the same result set waits for the first, then finds the runs already
     stored and computes only what is still missing: no run is computed or stored twice. The lock
     is released by the kernel when the holder dies, so a killed run never leaves a stale lock;
-    the next holder removes the temporary file such a run may have left mid-write."""
+    the next holder removes the temporary files such a run may have left mid-write (in the
+    result set and in its ``--fresh`` staging folder).
 
-    def __init__(self, path: Path, on_wait=None):
-        self.path, self.on_wait, self.fh = Path(path), on_wait, None
+    The folder and the lock file are never followed through a symbolic link (``lstat``,
+    ``O_NOFOLLOW``), and a lock file with other hard links is refused: the pid written into it
+    must not land in another file."""
+
+    def __init__(self, path: Path, on_wait=None, checkpoint=None):
+        self.path, self.on_wait, self.checkpoint, self.fd = Path(path), on_wait, checkpoint, -1
 
     def __enter__(self):
+        lock = self.path / ".lock"
+        refuse_link(self.path)
         try:
             self.path.mkdir(parents=True, exist_ok=True)
-            self.fh = open(self.path / ".lock", "a+")
+            refuse_link(self.path)
+            fd = os.open(lock, os.O_RDWR | os.O_CREAT | os.O_NOFOLLOW | os.O_CLOEXEC, 0o644)
         except OSError as err:
+            if err.errno == errno.ELOOP:
+                raise ResultSetError(f"{lock}: is a symbolic link; refusing to write through it "
+                                     "(remove it: lesion creates its own lock file)") from None
             raise ResultSetError(f"{self.path}: cannot create the result set folder or its lock "
                                  f"({err.strerror or err}); choose a writable --out") from None
+        self.fd = fd
+        st = os.fstat(fd)
+        if not stat.S_ISREG(st.st_mode) or st.st_nlink != 1:
+            os.close(fd)
+            raise ResultSetError(f"{lock}: is not a plain file of its own (hard-linked or special); refusing "
+                                 "to write into it (remove it: lesion creates its own lock file)")
         try:
-            fcntl.flock(self.fh, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
         except BlockingIOError:
             if self.on_wait:
                 self.on_wait()
-            fcntl.flock(self.fh, fcntl.LOCK_EX)
-        self.fh.seek(0)
-        self.fh.truncate()
-        self.fh.write(str(os.getpid()))
-        self.fh.flush()
-        # Holding the lock, any temporary file here is left by a writer that was killed mid-write.
-        for stale in self.path.glob(f".*{_TMP}"):
-            stale.unlink(missing_ok=True)
+            self._wait(fd)
+        try:
+            os.ftruncate(fd, 0)
+            os.pwrite(fd, str(os.getpid()).encode(), 0)
+            # Holding the lock, any temporary file here is left by a writer killed mid-write.
+            for stale in [*self.path.glob(f".*{_TMP}"), *self.path.glob(f"{STAGING}/.*{_TMP}")]:
+                stale.unlink(missing_ok=True)
+        except OSError as err:
+            self.__exit__()
+            raise _cannot_write(lock, err) from None
         return self
 
+    def _wait(self, fd: int) -> None:
+        if self.checkpoint is None:
+            fcntl.flock(fd, fcntl.LOCK_EX)
+            return
+        # Polled, so that ``checkpoint`` (Ctrl-C) can end the wait: a blocking flock is resumed
+        # after a signal handler returns.
+        while True:
+            try:
+                self.checkpoint()
+            except BaseException:
+                os.close(fd)
+                raise
+            try:
+                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+                return
+            except BlockingIOError:
+                time.sleep(0.1)
+
     def __exit__(self, *exc):
-        fcntl.flock(self.fh, fcntl.LOCK_UN)
-        self.fh.close()
+        fcntl.flock(self.fd, fcntl.LOCK_UN)
+        os.close(self.fd)
         return False

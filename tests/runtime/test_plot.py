@@ -498,3 +498,11 @@ def test_palette_name_describes_its_purpose_and_readme_does_not_brand_it():
     assert P.PALETTE_NAME == "ten colours apart under colour-vision deficiency"
     readme = (Path(__file__).parents[2] / "README.md").read_text()
     assert "lesion ten" not in readme
+
+@pytest.mark.parametrize("target", ["/sys/lesion-plot.png", "/sys/lesion-plots/arms.png"])
+def test_cli_an_unwritable_picture_path_is_one_line_and_exit_2(sets, target):
+    # /sys refuses new files (EACCES) and folders (EPERM) even to root, where a read-only chmod would not
+    out = CliRunner().invoke(app, ["plot", str(sets["single"].path), "--kind", "arms", "-o", target])
+    assert out.exit_code == 2, out.exception
+    (line,) = out.stderr.splitlines()
+    assert line.startswith(target) and "cannot write the picture" in line, line
