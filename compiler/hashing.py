@@ -15,6 +15,7 @@
 from __future__ import annotations
 
 import hashlib
+import json
 from typing import Any
 
 import rfc8785
@@ -22,7 +23,7 @@ import rfc8785
 from compiler.spec import Spec
 
 __all__ = ["canonical_json", "sha256_hex", "study_hash", "variant_hash", "run_id",
-           "KNOBS", "knobs_of", "structure_key", "variant_payload", "lookup"]
+           "KNOBS", "knobs_of", "structure_key", "identity", "variant_payload", "lookup"]
 
 # Dotted paths of traced scalars. A path missing in a variant (another kind) is simply absent.
 KNOBS: tuple[str, ...] = (
@@ -34,8 +35,20 @@ KNOBS: tuple[str, ...] = (
 )
 
 
-def canonical_json(obj: Any) -> bytes:
-    return rfc8785.dumps(obj)
+def canonical_json(obj: Any, memo: dict[str, bytes] | None = None) -> bytes:
+    """RFC 8785 bytes of ``obj``. With ``memo``, the members of a top-level object are
+    canonicalized once per distinct value (keyed by their plain JSON text, which tells 1 from
+    1.0 and true): the scheme writes an object member by member in UTF-16 key order, so the
+    joined members are the same bytes, and the variants of a study share most of their sections."""
+    if memo is None or not isinstance(obj, dict):
+        return rfc8785.dumps(obj)
+    members = []
+    for key in sorted(obj, key=lambda k: k.encode("utf-16-be")):
+        text = json.dumps(obj[key], sort_keys=True)
+        if text not in memo:
+            memo[text] = rfc8785.dumps(obj[key])
+        members.append(rfc8785.dumps(key) + b":" + memo[text])
+    return b"{" + b",".join(members) + b"}"
 
 
 def sha256_hex(data: bytes) -> str:
@@ -81,10 +94,17 @@ def knobs_of(variant: Spec) -> dict[str, float]:
 
 
 def structure_key(variant: Spec) -> str:
+    return identity(variant)[1]
+
+
+def identity(variant: Spec, memo: dict[str, bytes] | None = None) -> tuple[str, str]:
+    """(variant hash, structure key) from one dump of the variant; ``memo`` as in
+    :func:`canonical_json`, shared across the variants of a study."""
     tree = variant_payload(variant)
+    vhash = sha256_hex(canonical_json(tree, memo))
     for path in KNOBS:
         *head, last = path.split(".")
         node = lookup(tree, ".".join(head)) if head else tree
         if isinstance(node, dict):
             node.pop(last, None)
-    return sha256_hex(canonical_json(tree))[:12]
+    return vhash, sha256_hex(canonical_json(tree, memo))[:12]
