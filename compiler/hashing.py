@@ -15,7 +15,6 @@
 from __future__ import annotations
 
 import hashlib
-import json
 from typing import Any
 
 import rfc8785
@@ -35,20 +34,34 @@ KNOBS: tuple[str, ...] = (
 )
 
 
-def canonical_json(obj: Any, memo: dict[str, bytes] | None = None) -> bytes:
-    """RFC 8785 bytes of ``obj``. With ``memo``, the members of a top-level object are
-    canonicalized once per distinct value (keyed by their plain JSON text, which tells 1 from
-    1.0 and true): the scheme writes an object member by member in UTF-16 key order, so the
-    joined members are the same bytes, and the variants of a study share most of their sections."""
-    if memo is None or not isinstance(obj, dict):
+def canonical_json(obj: Any, memo: dict | None = None) -> bytes:
+    """RFC 8785 bytes of ``obj``. With ``memo`` (a dict kept across calls), every scalar and key is
+    serialized by ``rfc8785`` once per distinct (type, value), and objects and arrays are joined
+    here once per distinct value: the scheme writes them member by member (objects in UTF-16 key order) without
+    whitespace, so the bytes are the same, and the variants of a study share almost all their
+    values. Types tell 1 from 1.0 from true; 0.0 and -0.0 share a key and a form ("0")."""
+    if memo is None:
         return rfc8785.dumps(obj)
-    members = []
-    for key in sorted(obj, key=lambda k: k.encode("utf-16-be")):
-        text = json.dumps(obj[key], sort_keys=True)
-        if text not in memo:
-            memo[text] = rfc8785.dumps(obj[key])
-        members.append(rfc8785.dumps(key) + b":" + memo[text])
-    return b"{" + b",".join(members) + b"}"
+    return _joined(obj, memo)
+
+
+def _joined(obj: Any, memo: dict) -> bytes:
+    kind = type(obj)
+    if kind is dict or kind is list:
+        # repr is exact enough for a key (1, 1.0 and True print apart) and cheap next to joining.
+        form = memo.get(key := repr(obj))
+        if form is None:
+            if kind is dict:
+                order = sorted(obj, key=lambda k: k.encode("utf-16-be"))
+                form = b"{" + b",".join(_joined(k, memo) + b":" + _joined(obj[k], memo) for k in order) + b"}"
+            else:
+                form = b"[" + b",".join(_joined(x, memo) for x in obj) + b"]"
+            memo[key] = form
+        return form
+    form = memo.get(key := (kind, obj))
+    if form is None:
+        form = memo[key] = rfc8785.dumps(obj)
+    return form
 
 
 def sha256_hex(data: bytes) -> str:
