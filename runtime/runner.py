@@ -9,6 +9,7 @@ group atomically before starting the next. An interruption loses at most the gro
 from __future__ import annotations
 
 import json
+import time
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
@@ -19,7 +20,7 @@ import pyarrow as pa
 
 from compiler.hashing import canonical_json, lookup, variant_payload
 from compiler.spec import METRICS
-from runtime import __version__, environment, guard
+from runtime import __version__, environment, execute, guard
 from runtime.execute import GroupResult, InProcess, enable_compile_cache
 from runtime.plan import Group, plan
 from runtime.store import ResultSet, ResultSetError, column, open_result_set, result_dir, write_results, writer_lock
@@ -207,6 +208,10 @@ def _missing(groups: list[Group], done: set) -> list[Group]:
     return todo
 
 
+def _timing_path() -> Path:
+    return execute.cache_dir() / "timing.json"
+
+
 def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = False,
               progress: Callable | None = None, on_wait: Callable | None = None, executor=None) -> RunReport:
     """Compute every run of the study not already stored; write each group as it finishes.
@@ -256,7 +261,9 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
                 groups = plan(loaded.variants, seeds, lane_budget=budget)
                 todo = _missing(groups, done)
                 data = datasets_for(todo, base_dir, loaded_data)
-            estimate = guard.estimate(todo, data)
+            preparation = execute.preparation(todo, data, env)
+            calibration = guard.Calibration.load(_timing_path())
+            estimate = guard.estimate(todo, data, preparation=preparation, calibration=calibration)
             guard.check(estimate, lanes_given=lanes is not None, where=where)
         planned = sum(len(g.runs) for g in groups)
         if progress:
@@ -266,7 +273,11 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
         diverged, warnings = 0, []
         compile_s = run_s = 0.0
         current = stored
+        started = time.perf_counter()
+        compiled, loaded_s = [], []
         for g, result in (executor or InProcess()).run(todo, data, env, progress):
+            if estimate is not None and preparation[g.group_id] != "reuse":
+                (compiled if preparation[g.group_id] == "compile" else loaded_s).append(result.compile_seconds)
             runs_t, curves_t = group_tables(result, g, loaded.study_hash, headline, key_columns,
                                             data[g.group_id].fingerprint)
             current = write_results(path, meta, runs_t, curves_t, previous=current)
@@ -276,6 +287,12 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
             run_s += result.run_seconds
             if progress:
                 progress("stored", group=g, result=result)
+        if estimate is not None and todo:
+            # What this invocation measured calibrates the next estimate on this machine.
+            rest = time.perf_counter() - started - compile_s - run_s
+            modelled = sum(guard.model_seconds(g, data[g.group_id]) for g in todo)
+            calibration.updated(compiled=compiled, loaded=loaded_s, executed=(run_s, modelled),
+                                other=(rest, len(todo))).save(_timing_path())
         if current is None:  # nothing to compute and nothing stored: an empty study cannot happen
             raise ResultSetError(f"{path}: nothing was computed")
         computed = sum(len(g.runs) for g in todo)
