@@ -20,7 +20,7 @@ from pathlib import Path
 import typer
 from typer.core import TyperGroup
 
-from compiler.errors import SpecError
+from compiler.errors import SpecError, printable
 from runtime.store import ResultSetError
 
 __all__ = ["app", "main", "USER_ERRORS"]
@@ -45,7 +45,7 @@ class _Group(TyperGroup):
             if not isinstance(err, USER_ERRORS + _loaded_user_errors()):
                 raise
             for line in str(err).splitlines() or [type(err).__name__]:
-                typer.echo(line, err=True)
+                typer.echo(printable(line), err=True)
             raise typer.Exit(2) from None
 
 
@@ -107,7 +107,9 @@ def check(
 
     study = load_study(spec)
     if format is Format.json:
-        typer.echo(json.dumps(_check_report(study), indent=2, ensure_ascii=False))
+        # ASCII: labels and values are the user's text, and JSON's \u escapes keep them exact
+        # while no control or bidirectional character reaches the terminal.
+        typer.echo(json.dumps(_check_report(study), indent=2))
         return
     _print_check_table(study)
 
@@ -149,7 +151,7 @@ def _print_check_table(study) -> None:
         changes = ", ".join(f"{k}={format_value(x)}" for k, x in v.changes.items()) or "(nothing: the base)"
         if changes == v.label:
             changes = "(as the label says)"
-        table.add_row(str(v.index), v.label, changes, v.hash[:12], seeds, v.structure)
+        table.add_row(str(v.index), printable(v.label), printable(changes), v.hash[:12], seeds, v.structure)
     Console(markup=False, highlight=False, emoji=False, width=_terminal_width()).print(table)
 
 
@@ -432,11 +434,11 @@ def diff(
     else:
         if format in (Output.table, Output.markdown) and b is not None:
             lines = ["spec: identical studies (a reproducibility check)"] if report.same_study else \
-                ["spec changes (A → B):"] + [f"  {c.render()}" for c in report.changes]
+                ["spec changes (A → B):"] + [f"  {printable(c.render())}" for c in report.changes]
             if report.only_a:
-                lines.append("only in A: " + "; ".join(report.only_a))
+                lines.append("only in A: " + "; ".join(map(printable, report.only_a)))
             if report.only_b:
-                lines.append("only in B: " + "; ".join(report.only_b))
+                lines.append("only in B: " + "; ".join(map(printable, report.only_b)))
             typer.echo("\n".join(lines if format is Output.table else [f"    {x}" if x.startswith("  ") else x for x in lines]) + "\n")
         if format is Output.table:
             rows, columns = _compact_diff(report.rows, baseline is not None)

@@ -17,7 +17,7 @@ from __future__ import annotations
 import re
 from dataclasses import dataclass, field
 
-from compiler.errors import SpecError
+from compiler.errors import SpecError, printable
 from compiler.hashing import variant_payload
 from compiler.loader import load_text
 from compiler.spec import METRICS
@@ -131,10 +131,11 @@ def diff_result_sets(rs_a: ResultSet, rs_b: ResultSet, *, metrics: list[str] | N
 def diff_baseline(rs: ResultSet, baseline: str, *, metrics: list[str] | None = None,
                   correction: str = "holm", alpha: float = 0.05) -> DiffReport:
     variants = _variants(rs)
-    base = [v for v in variants if v["label"] == baseline]
+    # A label is also found as printed (escaped), so it can be copied from a table.
+    base = [v for v in variants if baseline in (v["label"], printable(v["label"]))]
     if not base:
         raise ResultSetError(f"--baseline {baseline!r}: no such variant (labels: "
-                             f"{', '.join(v['label'] for v in variants)})")
+                             f"{', '.join(printable(v['label']) for v in variants)})")
     pairs = [(base[0], v) for v in variants if v is not base[0]]
     rows = _rows(pairs, rs, rs, _metrics(rs, metrics), correction, alpha)
     return DiffReport([], rows, correction=correction, same_study=True)

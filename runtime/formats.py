@@ -12,6 +12,8 @@ import json
 import math
 from typing import Any, Sequence
 
+from compiler.errors import printable
+
 __all__ = ["FORMATS", "render", "fmt_number"]
 
 FORMATS = ("table", "json", "csv", "markdown")
@@ -59,8 +61,10 @@ def render(rows: Sequence[dict], columns: Sequence[str], fmt: str, *, title: str
         for r in rows:
             writer.writerow(["" if r.get(c) is None else r.get(c) for c in columns])
         return buf.getvalue().rstrip("\n")
-    cells = [[fmt_number(r.get(c)) for c in columns] for r in rows]
+    # The terminal formats: user text (labels, values) as one visible line each.
+    cells = [[printable(fmt_number(r.get(c))) for c in columns] for r in rows]
     heads = [headers.get(c, c) for c in columns]
+    title = printable(title)
     if fmt == "markdown":
         lines = [f"**{title}**", ""] if title else []
         lines.append("| " + " | ".join(heads) + " |")
@@ -76,7 +80,9 @@ def render(rows: Sequence[dict], columns: Sequence[str], fmt: str, *, title: str
             table.add_column(h, justify="right" if _numeric(rows, c) else "left", overflow="fold")
         for row in cells:
             table.add_row(*row)
-        console = Console(file=io.StringIO(), width=200, color_system=None, force_terminal=False)
+        # No markup: a label such as "[bold]x" is text to show, not a style to apply.
+        console = Console(file=io.StringIO(), width=200, color_system=None, force_terminal=False, markup=False,
+                          highlight=False, emoji=False)
         console.print(table)
         return console.file.getvalue().rstrip("\n")
     raise ValueError(f"unknown format {fmt!r} (expected one of {', '.join(FORMATS)})")
