@@ -199,6 +199,13 @@ class NeuronBudget(Strict):
 
     @model_validator(mode="after")
     def _divides(self):
+        if self.neurons > MAX_WIDTH * self.depth:
+            # The same limit per layer as the list form, which the budget expands to.
+            need = -(-self.neurons // MAX_WIDTH)
+            raise ValueError(
+                f"@neurons: {self.neurons} neurons over {self.depth} layer{'s' if self.depth > 1 else ''} make layers "
+                f"of {self.neurons // self.depth}, above the {MAX_WIDTH} a layer may have; "
+                f"use depth >= {need} or neurons <= {MAX_WIDTH * self.depth}")
         if self.neurons % self.depth:
             lo = self.neurons // self.depth * self.depth
             raise ValueError(

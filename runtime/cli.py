@@ -25,7 +25,7 @@ try:
     import typer
     from typer.core import TyperCommand, TyperGroup
 
-    from compiler.errors import SpecError
+    from compiler.errors import SpecError, printable
     from runtime.store import ResultSetError
 except KeyboardInterrupt:  # Ctrl-C while lesion starts: nothing is computed yet, nothing to keep
     sys.stderr.write("interrupted\n")
@@ -57,7 +57,7 @@ class _Group(TyperGroup):
             if not isinstance(err, USER_ERRORS + _loaded_user_errors()):
                 raise
             for line in str(err).splitlines() or [type(err).__name__]:
-                typer.echo(line, err=True)
+                typer.echo(printable(line), err=True)
             raise typer.Exit(2) from None
 
 
@@ -147,7 +147,9 @@ def check(
     """
     study = _load_runnable(spec)
     if format is Format.json:
-        typer.echo(json.dumps(_check_report(study), indent=2, ensure_ascii=False))
+        # ASCII: labels and values are the user's text, and JSON's \u escapes keep them exact
+        # while no control or bidirectional character reaches the terminal.
+        typer.echo(json.dumps(_check_report(study), indent=2))
         return
     _print_check_table(study, wide)
 
@@ -611,11 +613,11 @@ def diff(
     else:
         if format in (Output.table, Output.markdown) and b is not None:
             lines = ["spec: identical studies (a reproducibility check)"] if report.same_study else \
-                ["spec changes (A → B):"] + [f"  {c.render()}" for c in report.changes]
+                ["spec changes (A → B):"] + [f"  {printable(c.render())}" for c in report.changes]
             if report.only_a:
-                lines.append("only in A: " + "; ".join(report.only_a))
+                lines.append("only in A: " + "; ".join(map(printable, report.only_a)))
             if report.only_b:
-                lines.append("only in B: " + "; ".join(report.only_b))
+                lines.append("only in B: " + "; ".join(map(printable, report.only_b)))
             typer.echo("\n".join(lines if format is Output.table else [f"    {x}" if x.startswith("  ") else x for x in lines]) + "\n")
         if format is Output.csv:
             typer.echo(render(report.rows, DIFF_COLUMNS, "csv"))

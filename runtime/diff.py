@@ -31,7 +31,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from compiler.errors import SpecError
+from compiler.errors import SpecError, printable
 from compiler.expand import BASE_LABEL, expand, format_value
 from compiler.hashing import variant_payload
 from compiler.loader import load_text
@@ -98,6 +98,9 @@ def resolve_variant(loaded, given: str, option: str = "--baseline") -> int:
     labels = [v.label for v in variants]
     if given in labels:
         return labels.index(given)
+    shown = [printable(label) for label in labels]   # a label as a table printed it, escapes and all
+    if given in shown:
+        return shown.index(given)
     if given.isdigit() and int(given) < len(variants):
         return int(given)
     if given == BASE_LABEL:
@@ -124,8 +127,8 @@ def resolve_variant(loaded, given: str, option: str = "--baseline") -> int:
 def _no_variant(labels, given, option, why, indices=None):
     # One label per line: labels themselves contain ", ".
     indices = indices or range(len(labels))
-    raise ResultSetError("\n".join([f"{option} {given!r}: {why}; give a label, an index or 'base':"]
-                                   + [f"  {i}  {lab}" for i, lab in zip(indices, labels)]))
+    raise ResultSetError("\n".join([f"{option} {printable(repr(given))}: {why}; give a label, an index or 'base':"]
+                                   + [f"  {i}  {printable(lab)}" for i, lab in zip(indices, labels)]))
 
 
 def _values(rs: ResultSet, cols: dict, variant_hash: str, metric: str) -> dict[int, float | None]:

@@ -32,7 +32,7 @@ import numpy as np
 
 from runtime.plan import Group
 
-__all__ = ["GroupResult", "LaneResult", "execute_group", "InProcess", "enable_compile_cache", "cache_dir",
+__all__ = ["GroupResult", "LaneResult", "execute_group", "InProcess", "enable_compile_cache", "cache_dir", "preparation",
            "CacheError", "cache_limit_bytes",
            "BN_COLLAPSE_RATIO"]
 
@@ -119,6 +119,38 @@ _programs: dict[tuple, tuple] = {}
 def _zero_knobs(knobs: dict) -> frozenset[str]:
     """Knobs that are 0 in every lane (padding copies a real lane, so it never adds a non-zero)."""
     return frozenset(name for name, values in knobs.items() if not np.any(np.asarray(values)))
+
+
+def _knob_arrays(group: Group) -> dict[str, np.ndarray]:
+    """Each knob's value per lane (padding lanes copy the first run), float32."""
+    from compiler.build import knob_vector
+
+    vectors = [knob_vector(r.variant.spec) for r in list(group.runs) + [group.runs[0]] * group.padding]
+    return {n: np.array([v[n] for v in vectors], dtype=np.float32) for n in vectors[0]}
+
+
+def _program_key(group: Group, dataset, zero: frozenset[str]) -> tuple:
+    return group.structure, group.lane_width, _data_signature(dataset), zero
+
+
+def preparation(groups: list[Group], data: dict, environment: dict) -> dict[str, str]:
+    """What executing ``groups`` in this process will do for each group's programs, without
+    doing it: ``"compile"``, ``"load"`` (stored in the compile cache) or ``"reuse"`` (compiled
+    or loaded already by this process or an earlier group), keyed by group id; for the time
+    estimate, whose costs differ a hundredfold between these."""
+    out: dict[str, str] = {}
+    seen = set(_programs)
+    for g in groups:
+        zero = _zero_knobs(_knob_arrays(g))
+        key = _program_key(g, data[g.group_id], zero)
+        if key in seen:
+            out[g.group_id] = "reuse"
+        elif _cache_enabled and _program_path(g, data[g.group_id], zero, environment).exists():
+            out[g.group_id] = "load"
+        else:
+            out[g.group_id] = "compile"
+        seen.add(key)
+    return out
 
 
 def _data_signature(dataset) -> tuple:
@@ -226,7 +258,7 @@ def _compiled(group: Group, dataset, knobs, seeds, reuse: bool, environment: dic
     from compiler.build import compile_variant, seed_key
 
     zero = _zero_knobs(knobs)
-    key = (group.structure, group.lane_width, _data_signature(dataset), zero)
+    key = _program_key(group, dataset, zero)
     if reuse and key in _programs:
         return _programs[key] + (0.0,)
     program = compile_variant(group.runs[0].variant.spec, dataset, zero_knobs=zero)
@@ -273,12 +305,10 @@ def execute_group(group: Group, dataset, environment: dict,
     import jax
     import jax.numpy as jnp
 
-    from compiler.build import knob_vector, param_digest
+    from compiler.build import param_digest
 
     lanes = list(group.runs) + [group.runs[0]] * group.padding
-    vectors = [knob_vector(r.variant.spec) for r in lanes]
-    names = tuple(vectors[0])
-    knobs = {n: jnp.asarray(np.array([v[n] for v in vectors], dtype=np.float32)) for n in names}
+    knobs = {n: jnp.asarray(a) for n, a in _knob_arrays(group).items()}
     seeds = np.array([r.seed for r in lanes], dtype=np.int32)
 
     program, init_c, epoch_c, status_fn, params_fn, compile_seconds = _compiled(group, dataset, knobs, seeds, reuse, environment)

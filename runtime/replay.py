@@ -17,7 +17,7 @@ from pathlib import Path
 
 import numpy as np
 
-from compiler.errors import SpecError
+from compiler.errors import SpecError, printable
 from compiler.hashing import canonical_json, sha256_hex
 from compiler.hashing import run_id as make_run_id
 from compiler.loader import load_text
@@ -90,7 +90,7 @@ def _verify(rs):
         v = by_hash.get(cols["variant_hash"][i])
         if v is None or v.label != cols["variant_label"][i] or cols["study_hash"][i] != rs.study_hash:
             raise ReplayRefused(f"{rs.path}: run {rid} names variant {cols['variant_hash'][i][:12]} "
-                                f"('{cols['variant_label'][i]}') which the stored spec does not derive; refusing")
+                                f"('{printable(cols['variant_label'][i])}') which the stored spec does not derive; refusing")
         if make_run_id(v.hash, cols["seed"][i]) != rid:
             raise ReplayRefused(f"{rs.path}: run id {rid} does not match its variant and seed; refusing")
     return loaded, by_hash, cols
@@ -104,10 +104,11 @@ def _select(cols, run: str | None, variant: str | None, everything: bool) -> lis
             raise ResultSetError(f"no run {run!r} in this result set ('lesion show --runs' lists them)")
         return idx[:1] if len(idx) > 1 and not everything else idx
     if variant is not None:
-        idx = [i for i in idx if cols["variant_label"][i] == variant]
+        # A label is also found as printed (escaped), so it can be copied from a table.
+        idx = [i for i in idx if variant in (cols["variant_label"][i], printable(cols["variant_label"][i]))]
         if not idx:
             labels = sorted(set(cols["variant_label"]))
-            raise ResultSetError(f"no variant {variant!r} in this result set (it has: {', '.join(labels)})")
+            raise ResultSetError(f"no variant {variant!r} in this result set (it has: {', '.join(map(printable, labels))})")
     if everything:
         return idx
     first: dict[str, int] = {}

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import json
 import shutil
+import time
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
@@ -22,7 +23,7 @@ import pyarrow as pa
 
 from compiler.hashing import canonical_json, lookup, variant_payload
 from compiler.spec import METRICS
-from runtime import __version__, environment, guard
+from runtime import __version__, environment, execute, guard
 from runtime.execute import GroupResult, InProcess, enable_compile_cache
 from runtime.plan import Group, plan
 from runtime.store import (STAGING, ResultSet, ResultSetError, column, open_result_set, refuse_link, result_dir,
@@ -237,6 +238,10 @@ def _refuse_other_width(todo: list[Group], widths: dict[str, int], lanes: int | 
                f"omit --lanes to keep it, or recompute every run with --fresh --lanes {lanes}"))
 
 
+def _timing_path() -> Path:
+    return execute.cache_dir() / "timing.json"
+
+
 def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = False,
               progress: Callable | None = None, on_wait: Callable | None = None, executor=None,
               checkpoint: Callable[[], None] | None = None) -> RunReport:
@@ -310,7 +315,11 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
             data = datasets_for(groups, base_dir, loaded_data)
         todo = _missing(groups, done)
         _refuse_other_width(todo, widths, lanes, target, fresh)
-        estimate = guard.estimate(todo, data) if executor is None else None
+        estimate = preparation = calibration = None
+        if executor is None:
+            preparation = execute.preparation(todo, data, env)
+            calibration = guard.Calibration.load(_timing_path())
+            estimate = guard.estimate(todo, data, preparation=preparation, calibration=calibration)
         planned = sum(len(g.runs) for g in groups)
         if progress:
             progress("plan", groups=len(todo), runs=sum(len(g.runs) for g in todo), planned=planned,
@@ -319,8 +328,12 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
         diverged, warnings = 0, []
         compile_s = run_s = 0.0
         current = stored
+        started = time.perf_counter()
+        compiled, loaded_s = [], []
         check()
         for g, result in (executor or InProcess(checkpoint=checkpoint)).run(todo, data, env, progress):
+            if estimate is not None and preparation[g.group_id] != "reuse":
+                (compiled if preparation[g.group_id] == "compile" else loaded_s).append(result.compile_seconds)
             runs_t, curves_t = group_tables(result, g, loaded.study_hash, headline, key_columns,
                                             data[g.group_id].fingerprint)
             current = write_results(target, meta, runs_t, curves_t, previous=current)
@@ -331,6 +344,12 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
             if progress:
                 progress("stored", group=g, result=result)
             check()
+        if estimate is not None and todo:
+            # What this invocation measured calibrates the next estimate on this machine.
+            rest = time.perf_counter() - started - compile_s - run_s
+            modelled = sum(guard.model_seconds(g, data[g.group_id]) for g in todo)
+            calibration.updated(compiled=compiled, loaded=loaded_s, executed=(run_s, modelled),
+                                other=(rest, len(todo))).save(_timing_path())
         if current is None:  # nothing to compute and nothing stored: an empty study cannot happen
             raise ResultSetError(f"{path}: nothing was computed")
         if fresh:  # the whole study is computed: it replaces the stored one

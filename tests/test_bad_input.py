@@ -46,9 +46,24 @@ def test_a_directory_named_as_the_spec(tmp_path):
     _refused(_lesion("check", str(tmp_path / "study.toml")), str(tmp_path / "study.toml"), "is a directory")
 
 
-def test_a_device_that_never_ends_is_read_boundedly():
+def test_a_device_that_never_ends_is_refused_unread():
     # /dev/zero has no size: reading it whole would never return.
-    _refused(_lesion("check", "/dev/zero"), "/dev/zero", "larger than 1024 KiB")
+    _refused(_lesion("check", "/dev/zero"), "/dev/zero", "is a character device, not a regular file")
+
+
+@pytest.mark.parametrize("command", ["check", "run"])
+def test_a_fifo_named_as_the_spec_is_refused_without_waiting_for_a_writer(tmp_path, command):
+    # POSIX open(2): opening a FIFO read-only blocks until a writer opens it; none ever will here.
+    fifo = tmp_path / "study.toml"
+    os.mkfifo(fifo)
+    args = [command, str(fifo)] + (["--out", str(tmp_path / "results")] if command == "run" else [])
+    try:
+        out = subprocess.run([sys.executable, "-m", "runtime.cli", *args], cwd=ROOT, capture_output=True,
+                             text=True, timeout=60)
+    except subprocess.TimeoutExpired:
+        pytest.fail(f"lesion {command} waited on the FIFO")
+    _refused(out, str(fifo), "is a named pipe (FIFO), not a regular file")
+    assert not (tmp_path / "results").exists()
 
 
 def test_a_missing_file(tmp_path):

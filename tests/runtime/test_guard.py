@@ -226,3 +226,30 @@ def test_a_compressed_npz_bomb_is_refused_from_its_headers_before_loading(tmp_pa
         guard.check_data(groups, where="s.toml", base_dir=tmp_path, available=need - 1)
     guard.check_data(groups, where="s.toml", base_dir=tmp_path, available=need)
     assert compiler.data.inspect_file(spec[0].spec.data, tmp_path).rows == 2**25
+
+def test_the_time_estimate_is_calibrated_by_what_runs_measured_on_this_machine(tmp_path, tiny_spec, monkeypatch):
+    # The estimate was 2-3× low on a busy machine (issue 14): each run stores what it measured,
+    # and the next estimate is built from it. The measurements are checked against the result
+    # set's own record of them (runs.parquet: compile_seconds, run_seconds; README).
+    from runtime import execute
+
+    monkeypatch.setenv("LESION_CACHE_DIR", str(tmp_path / "cache"))
+    monkeypatch.setattr(execute, "_programs", {})  # this process has compiled nothing yet
+    loaded = load_study(tiny_spec(tmp_path, "calibrate"))
+    groups = plan(loaded.variants, loaded.seeds)
+    data = runner.datasets_for(groups, tmp_path)
+    modelled = sum(guard.model_seconds(g, data[g.group_id]) for g in groups)
+    runs = open_result_set(runner.run_study(loaded, tmp_path / "a").path).runs.to_pydict()
+    stored = guard.Calibration.load(tmp_path / "cache" / "timing.json")
+    assert stored.runs == 1
+    assert stored.compile_seconds == pytest.approx(max(runs["compile_seconds"]))
+    assert stored.execute_ratio == pytest.approx(sum(runs["run_seconds"]) / modelled)
+
+    # A second process: the programs are in the compile cache, so the estimate counts a load.
+    monkeypatch.setattr(execute, "_programs", {})
+    events = []
+    runner.run_study(loaded, tmp_path / "b", progress=lambda e, **info: events.append((e, info)))
+    est = next(info["estimate"] for e, info in events if e == "plan")
+    assert est.seconds == pytest.approx(stored.execute_ratio * modelled + stored.load_seconds
+                                        + stored.group_seconds * len(groups))
+    assert guard.Calibration.load(tmp_path / "cache" / "timing.json").runs == 2
