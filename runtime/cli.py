@@ -327,36 +327,38 @@ def show(
 @app.command()
 def replay(
     result: Path = typer.Argument(..., help="A result set folder written by 'lesion run'.", show_default=False),
-    run: str = typer.Option(None, "--run", help="Replay this run id (a unique prefix is enough)."),
+    run: str = typer.Option(None, "--run", help="Replay this run id (a prefix replays every run it starts)."),
     variant: str = typer.Option(None, "--variant", help="Replay the runs of this variant label."),
-    all_runs: bool = typer.Option(False, "--all", help="Replay every selected run, not one per variant."),
     format: Format = typer.Option(Format.table, "--format", "-f", help="table for people, json for programs."),
 ) -> None:
-    """Re-execute stored runs from the result set's own spec and compare them bit for bit.
+    """Re-execute stored runs (all of them by default) from the result set's own spec and compare
+    every cell the re-execution decides, bit for bit.
 
-    Exit 0 when every replayed run is identical, 1 when any differs, 2 when the result set is
-    refused (edited metadata, changed data file) or the arguments are wrong.
+    Exit 0 when every replayed run is identical, 1 when any differs or is missing or the tables
+    were edited after writing, 2 when the result set is refused (edited spec, duplicated runs,
+    changed data file) or the arguments are wrong.
 
     Examples:
 
       lesion replay results/cold-chain-7da471c81b78
 
-      lesion replay results/cold-chain-7da471c81b78 --variant "normalization.kind=batch, regularization.dropout.rate=0.15" --all
+      lesion replay results/cold-chain-7da471c81b78 --variant "normalization.kind=batch, regularization.dropout.rate=0.15"
     """
     if run is not None and variant is not None:
         raise UsageError("give --run or --variant, not both")
     from runtime.formats import render
     from runtime.replay import replay as do_replay
 
-    report = do_replay(result, run=run, variant=variant, everything=all_runs,
+    report = do_replay(result, run=run, variant=variant,
                        on_group=None if format is Format.json else
                        (lambda g: _err(f"replaying {len(g.runs)} run(s) at lane width {g.lane_width} ...")))
     rows = [r.as_dict() for r in report.rows]
     columns = ["run_id", "variant", "seed", "lane_width", "verdict", "first_epoch", "first_metric",
-               "max_abs", "max_rel", "digest"]
+               "max_abs", "max_rel", "digest", "cells"]
     if format is Format.json:
         typer.echo(json.dumps({"result_set": str(report.path), "identical": report.identical,
-                               "environment_changes": report.environment_changes, "runs": rows}, indent=2))
+                               "environment_changes": report.environment_changes,
+                               "warnings": report.warnings, "notes": report.notes, "runs": rows}, indent=2))
     else:
         if report.environment_changes:
             typer.echo("environment differs from the recorded one:")
@@ -364,14 +366,23 @@ def replay(
                 typer.echo(f"  {line}")
         else:
             typer.echo("environment: same as recorded")
-        typer.echo(render(rows, columns, "table", title="replay"))
-        differing = sum(r.verdict != "identical" for r in report.rows)
+        for line in report.warnings:
+            typer.echo(f"warning: {line}")
+        for line in report.notes:
+            typer.echo(f"note: {line}")
+        typer.echo(render([{**r, "cells": ", ".join(r["cells"])} for r in rows], columns, "table", title="replay"))
+        differing = sum(r.verdict == "differs" for r in report.rows)
+        missing = sum(r.verdict == "missing" for r in report.rows)
         if differing and report.environment_changes:
             typer.echo(f"{differing} run(s) differ, and the environment changed (above): differing bits are "
                        "expected from such a change; replay in the recorded environment to test the code")
         elif differing:
             typer.echo(f"{differing} run(s) differ in the recorded environment: the result set or the code changed")
-        else:
+        if missing:
+            typer.echo(f"{missing} run(s) missing: the result set is incomplete")
+        if report.edited and not differing:
+            typer.echo("every replayed cell reproduces, but the result set was edited after it was written (above)")
+        if report.identical:
             typer.echo(f"all {len(rows)} replayed run(s) identical")
     if not report.identical:
         raise typer.Exit(1)
