@@ -303,11 +303,13 @@ def show(
 
       lesion show results/cold-chain-7da471c81b78 --curves --format csv
     """
+    from runtime.audit import audit
     from runtime.formats import render
     from runtime.show import SUMMARY_COLUMNS, curve_rows, summary_rows
     from runtime.store import open_result_set
 
     rs = open_result_set(result)
+    findings = _print_audit(audit(rs))
     name = rs.tree["study"]["name"]
     try:
         if curves:
@@ -321,7 +323,16 @@ def show(
             title = f"{name} ({rs.study_hash[:12]}): final {m} across seeds (mean, sd, 95% CI)"
     except ValueError as err:
         raise UsageError(str(err)) from None
-    typer.echo(render(rows, columns, format.value, title=title))
+    typer.echo(render(rows, columns, format.value, title=title, extra={"findings": findings}))
+
+
+def _print_audit(check, side: str = "") -> list[str]:
+    """A result set's findings on stderr, so stdout stays the report (and valid JSON); returned
+    for the JSON report too."""
+    lines = [f"warning: {side}{x}" for x in check.warnings()] + [f"note: {side}{x}" for x in check.notes()]
+    for line in lines:
+        _err(line)
+    return lines
 
 
 @app.command()
@@ -423,6 +434,7 @@ def diff(
 
       lesion diff A B --format markdown --fail-on worse
     """
+    from runtime.audit import audit
     from runtime.diff import DIFF_COLUMNS, diff_baseline, diff_result_sets
     from runtime.formats import render
     from runtime.store import open_result_set
@@ -433,13 +445,16 @@ def diff(
     if baseline is not None:
         report = diff_baseline(rs_a, baseline, metrics=metric or None, correction=correction.value, alpha=alpha)
         title = f"each variant vs baseline '{baseline}'"
+        findings = _print_audit(audit(rs_a))
     else:
-        report = diff_result_sets(rs_a, open_result_set(b), metrics=metric or None,
-                                  correction=correction.value, alpha=alpha)
+        rs_b = open_result_set(b)
+        report = diff_result_sets(rs_a, rs_b, metrics=metric or None, correction=correction.value, alpha=alpha)
         title = f"B − A ({b.name} vs {a.name})"
+        findings = _print_audit(audit(rs_a), "A: ") + _print_audit(audit(rs_b), "B: ")
     title += f", p adjusted by {'Holm' if correction is Correction.holm else 'Benjamini–Hochberg'}"
     if format is Output.json:
-        typer.echo(render(report.rows, DIFF_COLUMNS + ["reason"], "json", title=title, extra=report.extra()))
+        typer.echo(render(report.rows, DIFF_COLUMNS + ["reason"], "json", title=title,
+                          extra={**report.extra(), "findings": findings}))
     else:
         if format in (Output.table, Output.markdown) and b is not None:
             lines = ["spec: identical studies (a reproducibility check)"] if report.same_study else \
@@ -457,6 +472,9 @@ def diff(
         untested = [r for r in report.rows if r["verdict"] == "no test possible"]
         if untested and format is Output.table:
             typer.echo(f"{len(untested)} row(s): {untested[0]['reason']}")
+    if fail_on is FailOn.worse and not report.rows:
+        _err("no variant matched: the gate compared nothing, so it does not pass")
+        raise typer.Exit(1)
     if fail_on is FailOn.worse and report.worse:
         raise typer.Exit(1)
 

@@ -86,15 +86,20 @@ def _rows(pairs, rs_a, rs_b, metrics, correction, alpha) -> list[dict]:
     cols_b = cols_a if rs_b is rs_a else rs_b.runs.to_pydict()
     for a, b in pairs:
         for m in metrics:
-            c = compare(_values(rs_a, cols_a, a["hash"], m), _values(rs_b, cols_b, b["hash"], m))
-            comps.append((a, b, m, c))
-    adjusted = adjust([c.p_value for *_, c in comps], method=correction)
-    for (a, b, m, c), p_adj in zip(comps, adjusted):
+            values_a, values_b = _values(rs_a, cols_a, a["hash"], m), _values(rs_b, cols_b, b["hash"], m)
+            c = compare(values_a, values_b)
+            # A variant with no stored run is an incomplete result set, not a lack of seeds.
+            absent = " and ".join(side for side, values in (("A", values_a), ("B", values_b)) if not values)
+            reason = f"no test possible: {absent} stores no run of this variant (incomplete result set)" \
+                if absent else c.reason
+            comps.append((a, b, m, c, reason))
+    adjusted = adjust([c.p_value for *_, c, _ in comps], method=correction)
+    for (a, b, m, c, reason), p_adj in zip(comps, adjusted):
         rows.append({
             "variant_a": a["label"], "variant_b": b["label"], "metric": m, "test": c.test,
             "n_a": c.n_a, "n_b": c.n_b, "mean_a": c.mean_a, "mean_b": c.mean_b, "diff": c.diff,
             "ci_low": c.ci_low, "ci_high": c.ci_high, "p": c.p_value, "p_adjusted": p_adj,
-            "p_sign_flip": c.p_permutation, "verdict": verdict(c, p_adj, METRICS[m], alpha), "reason": c.reason,
+            "p_sign_flip": c.p_permutation, "verdict": verdict(c, p_adj, METRICS[m], alpha), "reason": reason,
         })
     return rows
 
