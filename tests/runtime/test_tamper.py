@@ -77,22 +77,22 @@ def _metadata(key: bytes, edit):
     return change
 
 
-# name: (edit of runs.parquet, what replay must name)
+# name: (edit of runs.parquet, the row it edits, what replay must say: the differing cell it names
+# for that run, "refused", "missing" for that run, or "edited" when every cell still reproduces)
 TAMPER = {
-    "status_flipped": (lambda t: _edit_runs(t, "status", _first(lambda s: "diverged")), "status"),
-    "row_duplicated": (lambda t: pa.concat_tables([t, t.slice(0, 1)]), "is stored 2 times"),
-    "row_deleted": (lambda t: t.slice(1), "missing"),
-    "best_cell_changed": (lambda t: _edit_runs(t, "best_val_accuracy", _first(lambda x: x - 0.25)),
+    "status_flipped": (lambda t: _edit_runs(t, "status", _first(lambda s: "diverged")), 0, "status"),
+    "row_duplicated": (lambda t: pa.concat_tables([t, t.slice(0, 1)]), 0, "refused"),
+    "row_deleted": (lambda t: t.slice(1), 0, "missing"),
+    "best_cell_changed": (lambda t: _edit_runs(t, "best_val_accuracy", _first(lambda x: x - 0.25)), 0,
                           "best_val_accuracy"),
-    "lane_width_changed": (lambda t: _edit_runs(t, "lane_width", lambda v: v[:1] + [v[1] + 1] + v[2:]),
+    "lane_width_changed": (lambda t: _edit_runs(t, "lane_width", lambda v: v[:1] + [v[1] + 1] + v[2:]), 1,
                            "lane_width"),
-    "varied_key_changed": (lambda t: _edit_runs(t, "optimizer.learning_rate", _first(lambda x: 0.5)),
+    "varied_key_changed": (lambda t: _edit_runs(t, "optimizer.learning_rate", _first(lambda x: 0.5)), 0,
                            "optimizer.learning_rate"),
     "changes_json_changed": (lambda t: _edit_runs(t, "changes", _first(
-        lambda s: json.dumps({"optimizer.learning_rate": 0.5}))), "changes"),
-    "epochs_changed": (lambda t: _edit_runs(t, "epochs", _first(lambda e: e + 1)), "epochs"),
-    "spec_path_changed": (_metadata(b"lesion.spec_path", lambda p: b"/elsewhere/tamper.toml"),
-                          "edited after it was written"),
+        lambda s: json.dumps({"optimizer.learning_rate": 0.5}))), 0, "changes"),
+    "epochs_changed": (lambda t: _edit_runs(t, "epochs", _first(lambda e: e + 1)), 0, "epochs"),
+    "spec_path_changed": (_metadata(b"lesion.spec_path", lambda p: b"/elsewhere/tamper.toml"), 0, "edited"),
 }
 
 
@@ -101,22 +101,35 @@ def test_tampered_runs_table_is_caught_by_replay_show_and_diff(studies, tmp_path
     full, _, _ = studies
     copy = tmp_path / full.name
     shutil.copytree(full, copy, ignore=shutil.ignore_patterns(".lock"))
-    edit, fragment = TAMPER[case]
+    edit, row, expect = TAMPER[case]
     table = pq.read_table(copy / "runs.parquet")
+    rid = table.column("run_id")[row].as_py()
     pq.write_table(edit(table), copy / "runs.parquet")
 
     shown = _cli("show", copy)
     assert shown.exit_code == 0, shown.output
     assert "edited after lesion wrote it" in shown.stderr, shown.stderr
     compared = _cli("diff", full, copy)
-    assert "B: " in compared.stderr and "edited after lesion wrote it" in compared.stderr, compared.stderr
+    assert "warning: B: " in compared.stderr and "edited after lesion wrote it" in compared.stderr, compared.stderr
 
-    replayed = _cli("replay", copy)
-    assert replayed.exit_code in (1, 2), replayed.output  # 2: refused before re-executing
-    assert fragment in replayed.output, replayed.output
-    if replayed.exit_code == 1:
-        verdicts = [line for line in replayed.stdout.splitlines() if "differs" in line or "missing" in line]
-        assert verdicts or "edited after it was written" in replayed.stdout, replayed.stdout
+    replayed = _cli("replay", copy, "--format", "json")
+    if expect == "refused":
+        assert replayed.exit_code == 2 and f"run {rid} is stored 2 times" in replayed.stderr, replayed.output
+        return
+    assert replayed.exit_code == 1, replayed.output
+    doc = json.loads(replayed.stdout)
+    assert not doc["identical"]
+    runs = {r["run_id"]: r for r in doc["runs"]}
+    if expect == "missing":
+        assert runs[rid]["verdict"] == "missing"
+    elif expect == "edited":
+        # the path is not an input of any run: every cell reproduces, the digest tells the edit
+        assert all(r["verdict"] == "identical" for r in runs.values())
+        assert any("edited after lesion wrote it" in w for w in doc["warnings"]), doc["warnings"]
+    else:
+        assert runs[rid]["verdict"] == "differs" and expect in runs[rid]["cells"], runs[rid]
+        others = [r for r in runs.values() if r["run_id"] != rid]
+        assert all(r["verdict"] == "identical" for r in others), others
 
 
 def test_changed_curve_cell_is_caught_by_show(studies, tmp_path):
@@ -164,3 +177,18 @@ def test_gate_that_compared_nothing_does_not_pass(studies):
     gate = _cli("diff", full, unrelated, "--fail-on", "worse")
     assert gate.exit_code == 1, gate.output
     assert "no variant matched" in gate.stderr
+
+
+def test_result_set_written_before_digests_is_read_with_a_note(studies, tmp_path):
+    full, _, _ = studies
+    copy = tmp_path / full.name
+    shutil.copytree(full, copy, ignore=shutil.ignore_patterns(".lock"))
+    for name in ("runs.parquet", "curves.parquet"):
+        table = pq.read_table(copy / name)
+        md = {k: v for k, v in table.schema.metadata.items() if not k.endswith(b"_digest")}
+        pq.write_table(table.replace_schema_metadata(md), copy / name)
+    shown = _cli("show", copy)
+    assert shown.exit_code == 0 and shown.stderr.startswith("note: no consistency digest stored"), shown.stderr
+    assert "warning" not in shown.stderr
+    replayed = _cli("replay", copy)
+    assert replayed.exit_code == 0 and "note: no consistency digest stored" in replayed.stdout, replayed.output
