@@ -123,8 +123,9 @@ def _feed(h, data: bytes) -> None:
 def _table_digest(table: pa.Table, order: list[str], h) -> str:
     """SHA-256 over a table's values, not its file's bytes (Parquet encodings vary): rows sorted by
     ``order`` (row order carries no meaning), columns by name; per column its name, its Arrow
-    type, its validity bits and its values (numbers little-endian with every NaN as one NaN,
-    everything else UTF-8 text), each length-prefixed."""
+    type, its validity bits and its values: numbers little-endian with every NaN as one NaN;
+    strings as their UTF-8 lengths (int64 little-endian), then their bytes; each of these fields
+    preceded by its own length."""
     if table.num_rows:
         table = table.sort_by([(k, "ascending") for k in order if k in table.column_names])
     for name in sorted(table.column_names):
@@ -138,9 +139,16 @@ def _table_digest(table: pa.Table, order: list[str], h) -> str:
             if pa.types.is_floating(typ):
                 values = np.where(np.isnan(values), np.array(np.nan, dtype=values.dtype), values)
             _feed(h, np.ascontiguousarray(values, dtype=values.dtype.newbyteorder("<")).tobytes())
-        else:
-            for v in col.to_pylist():
-                _feed(h, b"" if v is None else v if isinstance(v, bytes) else str(v).encode())
+        elif pa.types.is_string(typ) or pa.types.is_large_string(typ):
+            # From the Arrow buffers: per-value Python strings made show 5x slower on 10^5 curve rows.
+            col = pc.fill_null(col, "")
+            offsets = np.frombuffer(col.buffers()[1], dtype=np.int32 if pa.types.is_string(typ) else np.int64)
+            offsets = offsets[col.offset:col.offset + len(col) + 1]
+            data = col.buffers()[2]
+            _feed(h, np.diff(offsets).astype("<i8").tobytes())
+            _feed(h, b"" if data is None else data.to_pybytes()[offsets[0]:offsets[-1]])
+        else:  # not a type lesion writes: still fed, so an edit that introduces it is seen
+            _feed(h, "\0".join(map(repr, col.to_pylist())).encode())
     return h.hexdigest()
 
 
