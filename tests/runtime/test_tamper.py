@@ -192,3 +192,55 @@ def test_result_set_written_before_digests_is_read_with_a_note(studies, tmp_path
     assert "warning" not in shown.stderr
     replayed = _cli("replay", copy)
     assert replayed.exit_code == 0 and "note: no consistency digest stored" in replayed.stdout, replayed.output
+
+
+def _documented_digest(table: pa.Table, order: list[str], prefix: list[bytes]) -> str:
+    """The digest as README.md ("Result sets") describes it, written apart from runtime/store.py."""
+    import hashlib
+    import struct
+
+    h = hashlib.sha256()
+
+    def feed(data: bytes):
+        h.update(struct.pack("<Q", len(data)) + data)
+
+    for value in prefix:
+        feed(value)
+    rows = sorted(range(table.num_rows), key=lambda i: tuple(table.column(k)[i].as_py() for k in order))
+    for name in sorted(table.column_names):
+        values = [table.column(name)[i].as_py() for i in rows]
+        typ = table.schema.field(name).type
+        feed(name.encode())
+        feed(str(typ).encode())
+        bits = bytearray((len(values) + 7) // 8)
+        for i, v in enumerate(values):
+            if v is not None:
+                bits[i // 8] |= 1 << (i % 8)
+        feed(bytes(bits))
+        if pa.types.is_string(typ):
+            encoded = [(v or "").encode() for v in values]
+            feed(b"".join(struct.pack("<q", len(e)) for e in encoded))
+            feed(b"".join(encoded))
+        else:
+            code = {pa.int32(): "<i", pa.int64(): "<q", pa.float32(): "<f", pa.float64(): "<d"}[typ]
+            feed(b"".join(struct.pack(code, 0 if v is None else v) for v in values))
+    return h.hexdigest()
+
+
+def test_digests_follow_the_documented_encoding_and_survive_a_rewrite(studies, tmp_path):
+    full, _, _ = studies
+    runs, curves = pq.read_table(full / "runs.parquet"), pq.read_table(full / "curves.parquet")
+    md = runs.schema.metadata
+    keys = ("spec_source", "spec_path", "canonical_json", "study_hash", "version", "environment")
+    assert md[b"lesion.runs_digest"].decode() == _documented_digest(
+        runs, ["run_id"], [md[f"lesion.{k}".encode()] for k in keys])
+    assert md[b"lesion.curves_digest"].decode() == _documented_digest(curves, ["run_id", "epoch"], [])
+    # Other compression, row groups and row order change the file's bytes, not its values.
+    copy = tmp_path / full.name
+    shutil.copytree(full, copy, ignore=shutil.ignore_patterns(".lock"))
+    for name, table in (("runs.parquet", runs), ("curves.parquet", curves)):
+        reordered = table.take(pa.array(range(table.num_rows - 1, -1, -1)))
+        pq.write_table(reordered, copy / name, compression="snappy", row_group_size=4)
+    assert (copy / "runs.parquet").read_bytes() != (full / "runs.parquet").read_bytes()
+    shown = _cli("show", copy)
+    assert shown.exit_code == 0 and shown.stderr == "", shown.stderr
