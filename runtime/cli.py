@@ -427,6 +427,7 @@ def show(
     """
     import dataclasses
 
+    from runtime.audit import audit
     from runtime.formats import render
     from runtime.show import (CURVES_FIT, RUNS_FIT, SUMMARY_COLUMNS, SUMMARY_FIT, axis_values, curve_rows, run_rows,
                               summary_rows)
@@ -435,6 +436,7 @@ def show(
     if curves and runs:
         raise UsageError("give --curves or --runs, not both")
     rs = open_result_set(result)
+    findings = _print_audit(audit(rs))
     name = rs.tree["study"]["name"]
     metrics = metric or [rs.headline]
     try:
@@ -458,51 +460,62 @@ def show(
             title = f"{name} ({rs.study_hash[:12]}): final {', '.join(metrics)} across seeds (mean, sd, 95% CI)"
     except ValueError as err:
         raise UsageError(str(err)) from None
-    extra = None
+    extra = {"findings": findings}
     if format in (Output.json, Output.csv):
         # Programs get the varied keys' values as fields of their own, not only inside the label.
         keys, values = axis_values(rs)
         rows = [{**r, **values.get(r["variant"], {})} for r in rows]
         columns = [*columns, *keys]
-        extra = {"study": name, "study_hash": rs.study_hash, "metrics": metrics, "axes": keys}
+        extra.update(study=name, study_hash=rs.study_hash, metrics=metrics, axes=keys)
     typer.echo(render(rows, columns, format.value, title=title, extra=extra, width=_terminal_width(wide), fit=fit))
+
+
+def _print_audit(check, side: str = "") -> list[str]:
+    """A result set's findings on stderr, so stdout stays the report (and valid JSON); returned
+    for the JSON report too."""
+    lines = [f"warning: {side}{x}" for x in check.warnings()] + [f"note: {side}{x}" for x in check.notes()]
+    for line in lines:
+        _err(line)
+    return lines
 
 
 @app.command(cls=_Command)
 def replay(
     result: Path = typer.Argument(..., metavar="RESULT", help="A result set folder written by 'lesion run'.", show_default=False),
     run: str = typer.Option(None, "--run", metavar="RUN_ID",
-                           help="Replay this run id (a unique prefix is enough; 'lesion show --runs' lists them)."),
+                           help="Replay this run id (a prefix replays every run it starts; 'lesion show --runs' lists them)."),
     variant: str = typer.Option(None, "--variant", metavar="LABEL", help="Replay the runs of this variant label."),
-    all_runs: bool = typer.Option(False, "--all", help="Replay every selected run, not one per variant."),
     format: Format = typer.Option(Format.table, "--format", "-f", help="table for people, json for programs."),
     wide: bool = typer.Option(False, "--wide", help=_WIDE_HELP),
 ) -> None:
-    """Re-execute stored runs from the result set's own spec and compare them bit for bit.
+    """Re-execute stored runs (all of them by default) from the result set's own spec and compare
+    every cell the re-execution decides, bit for bit.
 
-    Exit 0 when every replayed run is identical, 1 when any differs, 2 when the result set is
-    refused (edited metadata, changed data file) or the arguments are wrong.
+    Exit 0 when every replayed run is identical, 1 when any differs or is missing or the tables
+    were edited after writing, 2 when the result set is refused (edited spec, duplicated runs,
+    changed data file) or the arguments are wrong.
 
     Examples:
 
       lesion replay results/cold-chain-af23c1abfa5f
 
-      lesion replay results/cold-chain-af23c1abfa5f --variant "normalization.kind=batch, regularization.dropout.rate=0.15" --all
+      lesion replay results/cold-chain-af23c1abfa5f --variant "normalization.kind=batch, regularization.dropout.rate=0.15"
     """
     if run is not None and variant is not None:
         raise UsageError("give --run or --variant, not both")
     from runtime.formats import Fit, render
     from runtime.replay import replay as do_replay
 
-    report = do_replay(result, run=run, variant=variant, everything=all_runs,
+    report = do_replay(result, run=run, variant=variant,
                        on_group=None if format is Format.json else
                        (lambda g: _err(f"replaying {len(g.runs)} run(s) at lane width {g.lane_width} ...")))
     rows = [r.as_dict() for r in report.rows]
     columns = ["run_id", "variant", "seed", "lane_width", "verdict", "first_epoch", "first_metric",
-               "max_abs", "max_rel", "digest"]
+               "max_abs", "max_rel", "digest", "cells"]
     if format is Format.json:
         typer.echo(json.dumps({"result_set": str(report.path), "identical": report.identical,
-                               "environment_changes": report.environment_changes, "runs": rows}, indent=2))
+                               "environment_changes": report.environment_changes,
+                               "warnings": report.warnings, "notes": report.notes, "runs": rows}, indent=2))
     else:
         if report.environment_changes:
             typer.echo("environment differs from the recorded one:")
@@ -510,16 +523,26 @@ def replay(
                 typer.echo(f"  {line}")
         else:
             typer.echo("environment: same as recorded")
-        typer.echo(render(rows, columns, "table", title="replay", width=_terminal_width(wide),
-                          fit=Fit(keep=("run_id", "verdict"), drop=("lane_width", "max_rel", "digest"),
-                                  wrap=("variant",))))
-        differing = sum(r.verdict != "identical" for r in report.rows)
+        for line in report.warnings:
+            typer.echo(f"warning: {line}")
+        for line in report.notes:
+            typer.echo(f"note: {line}")
+        typer.echo(render([{**r, "cells": ", ".join(r["cells"])} for r in rows], columns, "table", title="replay",
+                          width=_terminal_width(wide),
+                          fit=Fit(keep=("run_id", "verdict", "cells"), drop=("lane_width", "max_rel", "digest"),
+                                  wrap=("variant", "cells"))))
+        differing = sum(r.verdict == "differs" for r in report.rows)
+        missing = sum(r.verdict == "missing" for r in report.rows)
         if differing and report.environment_changes:
             typer.echo(f"{differing} run(s) differ, and the environment changed (above): differing bits are "
                        "expected from such a change; replay in the recorded environment to test the code")
         elif differing:
             typer.echo(f"{differing} run(s) differ in the recorded environment: the result set or the code changed")
-        else:
+        if missing:
+            typer.echo(f"{missing} run(s) missing: the result set is incomplete")
+        if report.edited and not differing:
+            typer.echo("every replayed cell reproduces, but the result set was edited after it was written (above)")
+        if report.identical:
             typer.echo(f"all {len(rows)} replayed run(s) identical")
     if not report.identical:
         raise typer.Exit(1)
@@ -604,12 +627,12 @@ def diff(
         raise UsageError("--baseline and --axis compare within one result set: give A alone")
     if baseline is not None and axis is not None:
         raise UsageError("give --baseline or --axis, not both")
-    report = _decide(a, b, baseline, axis, metric, margin, correction, alpha, None)
+    report, findings = _decide(a, b, baseline, axis, metric, margin, correction, alpha, None)
     scope = f"B − A ({b.name} vs {a.name})" if b is not None else a.name
     method = "Holm" if correction is Correction.holm else "Benjamini–Hochberg"
     if format is Output.json:
         typer.echo(render(report.rows, DIFF_COLUMNS + ["reason"], "json", title=f"{scope}, p adjusted by {method}",
-                          extra=report.extra()))
+                          extra={**report.extra(), "findings": findings}))
     else:
         if format in (Output.table, Output.markdown) and b is not None:
             lines = ["spec: identical studies (a reproducibility check)"] if report.same_study else \
@@ -641,11 +664,16 @@ def diff(
                 _echo_fitted(f"{len(untested)} row(s): {untested[0]['reason']}", wide)
             for note in report.notes:
                 _echo_fitted(f"note: {note}", wide)
+    if fail_on is FailOn.worse and not report.rows:
+        _err("no variant matched: the gate compared nothing, so it does not pass")
+        raise typer.Exit(1)
     if fail_on is FailOn.worse and report.worse:
         raise typer.Exit(1)
 
 
 def _decide(a, b, baseline, axis, metric, margin, correction, alpha, power):
+    """The report the arguments ask for, and the result sets' audit findings (printed on stderr)."""
+    from runtime.audit import audit
     from runtime.diff import diff_baseline, diff_design, diff_result_sets
     from runtime.stats import POWER
     from runtime.store import open_result_set
@@ -654,10 +682,13 @@ def _decide(a, b, baseline, axis, metric, margin, correction, alpha, power):
     kw = dict(metrics=metric or None, correction=correction.value, alpha=alpha, margin=margin,
               power=POWER if power is None else power)
     if b is not None:
-        return diff_result_sets(rs_a, open_result_set(b), **kw)
+        rs_b = open_result_set(b)
+        findings = _print_audit(audit(rs_a), "A: ") + _print_audit(audit(rs_b), "B: ")
+        return diff_result_sets(rs_a, rs_b, **kw), findings
+    findings = _print_audit(audit(rs_a))
     if baseline is not None:
-        return diff_baseline(rs_a, baseline, **kw)
-    return diff_design(rs_a, axis=axis, **kw)
+        return diff_baseline(rs_a, baseline, **kw), findings
+    return diff_design(rs_a, axis=axis, **kw), findings
 
 
 def _family_title(question: str, rows: list[dict], method: str) -> str:
@@ -719,7 +750,7 @@ def seeds(
 
     if baseline is not None and axis is not None:
         raise UsageError("give --baseline or --axis, not both")
-    report = _decide(pilot, None, baseline, axis, [metric] if metric else None, margin, correction, alpha, power)
+    report, _ = _decide(pilot, None, baseline, axis, [metric] if metric else None, margin, correction, alpha, power)
     rows = [r for r in report.rows if r["test"] == "paired"]
     if not any(r["margin"] is not None for r in rows):
         raise UsageError("seeds needs a practical margin: give --margin D (in the metric's units) or set study.margin")

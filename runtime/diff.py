@@ -172,7 +172,7 @@ def _judge(question: str, items: list[tuple[dict, tuple[dict, dict]]], correctio
     adjusted = adjust(pvals, method=correction)
     level = family_alpha(pvals, alpha, correction)
     rows, notes = [], []
-    for (start, _), c, p_adj in zip(items, comps, adjusted):
+    for (start, arms), c, p_adj in zip(items, comps, adjusted):
         m = start["metric"]
         margin = margins.get(m)
         lo, hi = interval(c, level)
@@ -188,7 +188,7 @@ def _judge(question: str, items: list[tuple[dict, tuple[dict, dict]]], correctio
             "effect_sd": c.diff / c.sd_diff if c.sd_diff > 0 else math.nan,
             "p_improve": imp[0], "p_improve_low": imp[1], "p_improve_high": imp[2],
             "sd_diff": c.sd_diff, **_planning(c, level, margin, power),
-            "verdict": decide(lo, hi, METRICS[m], margin), "reason": c.reason,
+            "verdict": decide(lo, hi, METRICS[m], margin), "reason": _reason(c, arms),
         })
     paired = [c.n_a for c in comps if c.test == "paired"]
     if paired and 2 / 2 ** min(paired) > level:
@@ -196,6 +196,12 @@ def _judge(question: str, items: list[tuple[dict, tuple[dict, dict]]], correctio
         notes.append(f"{question}: with {n} seeds the exact sign-flip p cannot go below 2/2^{n} = "
                      f"{2 / 2 ** n:.4g}, above the family's level {level:.4g}: it cannot confirm any verdict here")
     return rows, notes
+
+
+def _reason(c: Comparison, arms: tuple) -> str:
+    # A variant with no stored run is an incomplete result set, not a lack of seeds.
+    absent = " and ".join(side for side, values in zip("AB", arms) if isinstance(values, dict) and not values)
+    return f"no test possible: {absent} stores no run of this variant (incomplete result set)" if absent else c.reason
 
 
 def _planning(c: Comparison, level: float, margin: float | None, power: float) -> dict:

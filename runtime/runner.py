@@ -29,7 +29,7 @@ from runtime.plan import Group, plan
 from runtime.store import (STAGING, ResultSet, ResultSetError, column, open_result_set, refuse_link, result_dir,
                            write_results, writer_lock)
 
-__all__ = ["RunReport", "run_study", "study_meta", "varied_keys", "group_tables", "datasets_for"]
+__all__ = ["RunReport", "run_study", "study_meta", "varied_keys", "typed_key_columns", "group_tables", "datasets_for"]
 
 
 @dataclass
@@ -65,7 +65,7 @@ def varied_keys(variants) -> list[str]:
     return keys
 
 
-def _key_columns(variants, keys: list[str]) -> dict[str, tuple[pa.DataType, dict]]:
+def typed_key_columns(variants, keys: list[str]) -> dict[str, tuple[pa.DataType, dict]]:
     """Each varied key's value in every resolved variant, typed when the values share a type."""
     out = {}
     for key in keys:
@@ -324,7 +324,7 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
         if progress:
             progress("plan", groups=len(todo), runs=sum(len(g.runs) for g in todo), planned=planned,
                      estimate=estimate)
-        key_columns = _key_columns(loaded.variants, varied_keys(loaded.variants))
+        key_columns = typed_key_columns(loaded.variants, varied_keys(loaded.variants))
         diverged, warnings = 0, []
         compile_s = run_s = 0.0
         current = stored

@@ -71,7 +71,7 @@ def test_replay_cli_identical_and_json(stored):
     out = lesion("replay", path, "--format", "json")
     assert out.returncode == 0, out.stderr
     doc = json.loads(out.stdout)
-    assert doc["identical"] and doc["environment_changes"] == [] and len(doc["runs"]) == 2
+    assert doc["identical"] and doc["environment_changes"] == [] and len(doc["runs"]) == 6
     bad = lesion("replay", path, "--run", "nope")
     assert bad.returncode == 2 and "no run 'nope'" in bad.stderr and "Traceback" not in bad.stderr
 

@@ -98,7 +98,7 @@ def test_runs_of_other_lesion_sources_are_recomputed_and_replay_names_the_change
     assert set(open_result_set(again.path).runs.column("env_fingerprint").to_pylist()) == {
         environment.fingerprint(environment.capture())}
     monkeypatch.setattr(environment, "source_digest", lambda: old)
-    report = replay(again.path, everything=True)
+    report = replay(again.path)
     assert f"lesion_sources: {'f' * 16} → {old}" in report.environment_changes
     assert report.identical  # the same code in fact: the bits agree, and the change is named
 
