@@ -13,7 +13,7 @@ from __future__ import annotations
 import math
 import posixpath
 import re
-from typing import Annotated, Literal, Union
+from typing import Annotated, ClassVar, Literal, Union
 
 from pydantic import BaseModel, ConfigDict, Discriminator, Field, Tag, field_validator, model_validator
 
@@ -56,6 +56,10 @@ class Strict(BaseModel):
     beyond what TOML already decided (an int may stand for a float)."""
 
     model_config = ConfigDict(extra="forbid", frozen=True, strict=True)
+
+    # The fields a compiled program takes as traced inputs (one program serves every value);
+    # every other field is structure, passed to its component as a Python value.
+    knobs: ClassVar[tuple[str, ...]] = ()
 
 
 # ── study ───────────────────────────────────────────────────────────────────────────────────────
@@ -195,6 +199,7 @@ class KL(Strict):
     """Softmax output, KL(d || y) to the (optionally smoothed) target distribution."""
     kind: Literal["kl"]
     label_smoothing: Rate = 0.0
+    knobs: ClassVar[tuple[str, ...]] = ("label_smoothing",)
 
 
 class BCE(Strict):
@@ -206,6 +211,7 @@ class Huber(Strict):
     """Identity output, Huber loss with threshold ``delta`` (regression)."""
     kind: Literal["huber"]
     delta: Positive = 1.0
+    knobs: ClassVar[tuple[str, ...]] = ("delta",)
 
 
 Divergence = Annotated[Union[L2, KL, BCE, Huber], Field(discriminator="kind")]
@@ -221,12 +227,14 @@ class BatchNorm(Strict):
     kind: Literal["batch"]
     momentum: Rate = 0.9
     epsilon: Positive = 1e-5
+    knobs: ClassVar[tuple[str, ...]] = ("momentum", "epsilon")
 
 
 class LayerNorm(Strict):
     """Ba, Kiros & Hinton 2016."""
     kind: Literal["layer"]
     epsilon: Positive = 1e-5
+    knobs: ClassVar[tuple[str, ...]] = ("epsilon",)
 
 
 Normalization = Annotated[Union[NoNorm, BatchNorm, LayerNorm], Field(discriminator="kind")]
@@ -236,12 +244,14 @@ Normalization = Annotated[Union[NoNorm, BatchNorm, LayerNorm], Field(discriminat
 class Dropout(Strict):
     rate: Rate = 0.0
     kind: Literal["inverted", "scaled", "connect"] = "inverted"
+    knobs: ClassVar[tuple[str, ...]] = ("rate",)
 
 
 class Regularization(Strict):
     weight_decay: Annotated[float, Field(ge=0.0, le=10.0, allow_inf_nan=False)] = 0.0
     decoupled: bool = False
     dropout: Dropout = Dropout()
+    knobs: ClassVar[tuple[str, ...]] = ("weight_decay",)
 
 
 # ── optimizer ───────────────────────────────────────────────────────────────────────────────────
@@ -253,12 +263,14 @@ class Exponential(Strict):
     """Learning rate multiplied by ``rate`` once per epoch (smoothly, per step)."""
     kind: Literal["exponential"]
     rate: Annotated[float, Field(gt=0.0, le=1.0, allow_inf_nan=False)] = 0.97
+    knobs: ClassVar[tuple[str, ...]] = ("rate",)
 
 
 class Cosine(Strict):
     """Cosine decay over all training steps down to ``final_fraction`` of the base rate."""
     kind: Literal["cosine"]
     final_fraction: Fraction = 0.0
+    knobs: ClassVar[tuple[str, ...]] = ("final_fraction",)
 
 
 class WarmupCosine(Strict):
@@ -266,6 +278,7 @@ class WarmupCosine(Strict):
     kind: Literal["warmup_cosine"]
     warmup_epochs: Annotated[int, Field(ge=1, le=MAX_EPOCHS)] = 1
     final_fraction: Fraction = 0.0
+    knobs: ClassVar[tuple[str, ...]] = ("final_fraction",)
 
 
 Schedule = Annotated[Union[Constant, Exponential, Cosine, WarmupCosine], Field(discriminator="kind")]
@@ -278,6 +291,7 @@ class SGD(Strict):
     momentum: Rate = 0.0
     nesterov: bool = False
     schedule: Schedule = Constant(kind="constant")
+    knobs: ClassVar[tuple[str, ...]] = ("learning_rate", "momentum")
 
 
 class Adam(Strict):
@@ -287,6 +301,7 @@ class Adam(Strict):
     b2: Rate = 0.999
     eps: Positive = 1e-8
     schedule: Schedule = Constant(kind="constant")
+    knobs: ClassVar[tuple[str, ...]] = ("learning_rate", "b1", "b2", "eps")
 
 
 class AdamW(Adam):
@@ -301,6 +316,7 @@ class RMSProp(Strict):
     eps: Positive = 1e-8
     momentum: Rate = 0.0
     schedule: Schedule = Constant(kind="constant")
+    knobs: ClassVar[tuple[str, ...]] = ("learning_rate", "decay", "eps", "momentum")
 
 
 Optimizer = Annotated[Union[SGD, Adam, AdamW, RMSProp], Field(discriminator="kind")]

@@ -32,7 +32,7 @@ def variant(**sections):
 
 def program(v, base_dir="."):
     ds = load_data(v, pathlib.Path(base_dir))
-    return build.compile_variant(v, ds), ds
+    return build.compile_structure([v], ds), ds
 
 
 def knobs(v):
