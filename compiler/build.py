@@ -195,7 +195,8 @@ def compile_structure(variants: Sequence[Spec], dataset: Dataset) -> Program:
         if no_dropout_masks:
             dropout = dropout._replace(activation=lambda key, h, train: h)
         out_width = divergence.width(dataset.classes, targets)
-        network = model.mlp(widths, out_width, variant.model.activation, variant.model.init, normalizer, dropout)
+        network = _component(model.FAMILIES, variant.model, "model.", knobs, hidden=widths, out_width=out_width,
+                             normalizer=normalizer, dropout=dropout)
         schedule = _component(optimizers.SCHEDULES, opt.schedule, "optimizer.schedule.", knobs,
                               learning_rate=knobs["optimizer.learning_rate"], steps_per_epoch=steps,
                               total_steps=steps * epochs)

@@ -15,7 +15,8 @@ import posixpath
 import re
 from typing import Annotated, ClassVar, Literal, Union
 
-from pydantic import BaseModel, ConfigDict, Discriminator, Field, Tag, field_validator, model_validator
+from pydantic import (BaseModel, ConfigDict, Discriminator, Field, SerializerFunctionWrapHandler, Tag, field_validator,
+                      model_serializer, model_validator)
 
 __all__ = [
     "Strict", "Study", "SyntheticData", "FileData", "Data", "NeuronBudget", "Model",
@@ -178,6 +179,8 @@ def _hidden_form(value) -> str:
 
 
 class Model(Strict):
+    """The network family (``kind``) and its shape."""
+    kind: Literal["mlp"] = "mlp"
     hidden: Annotated[Union[Annotated[Annotated[list[Annotated[int, Field(ge=1, le=MAX_WIDTH)]], Field(max_length=64)], Tag("widths")],
                             Annotated[NeuronBudget, Tag("budget")]],
                       Discriminator(_hidden_form)] = [32, 32]
@@ -187,6 +190,15 @@ class Model(Strict):
     @property
     def widths(self) -> list[int]:
         return self.hidden.widths if isinstance(self.hidden, NeuronBudget) else list(self.hidden)
+
+    @model_serializer(mode="wrap")
+    def _mlp_unwritten(self, handler: SerializerFunctionWrapHandler):
+        # Specs older than the family choice were all MLPs: leaving the default family out of
+        # every dump keeps their canonical JSON, hence their study, variant and structure hashes.
+        out = handler(self)
+        if out.get("kind") == "mlp":
+            del out["kind"]
+        return out
 
 
 # ── divergence ──────────────────────────────────────────────────────────────────────────────────

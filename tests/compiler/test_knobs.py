@@ -15,7 +15,7 @@ import jax
 import jax.numpy as jnp
 import pytest
 
-from compiler import build, divergences, normalization, optimizers, regularization
+from compiler import build, divergences, model, normalization, optimizers, regularization
 from compiler.data import load_data
 from compiler.expand import expand
 from compiler.hashing import KNOBS, knobs_of, models_in, sections, structure_key, variant_payload
@@ -71,6 +71,7 @@ TRAINED = [name for name in BASES if name != "file-data"]
 
 # The family registries and the spec section each is built from.
 REGISTRIES = {
+    "model": model.FAMILIES,
     "divergence": divergences.REGISTRY,
     "normalization": normalization.REGISTRY,
     "regularization.dropout": regularization.REGISTRY,
