@@ -1,11 +1,13 @@
 """From a resolved variant to pure JAX training functions: where the spec meets the components.
 
-Contract (what the runtime relies on): :func:`compile_variant` ``(variant, dataset) -> Program``
-builds — but does not jit — pure, vmappable functions of
+Contract (what the runtime relies on): :func:`compile_structure` ``(variants, dataset) -> Program``
+builds — but does not jit — the program of variants sharing one structure key: pure, vmappable
+functions of
 
-- ``knobs``: ``{name: f32 scalar}`` for the names in ``Program.knob_names`` (the variant's entries
-  of :data:`compiler.hashing.KNOBS`, from :func:`knob_vector`). Every knob is traced, so one XLA
-  program serves every variant of a structure key;
+- ``knobs``: ``{name: f32 scalar}`` for the names in ``Program.knob_names`` (the variant's knob
+  fields, :func:`compiler.hashing.knobs_of`); ``Program.pack(lanes)`` gives them as
+  ``f32[lanes]`` for a list of variants. Every knob is traced, so one XLA program serves every
+  variant of a structure key;
 - ``key``: the run's root key :func:`seed_key` ``(seed)``;
 - ``data_x``, ``data_y``: the whole :class:`compiler.data.Dataset` arrays, shared by all lanes.
 
@@ -22,11 +24,17 @@ objective's gradient, all of it or one layer's, averaged over steps); ``weight_n
 the weight matrices at the end of the epoch); ``learning_rate`` at the epoch's last step.
 ``evaluate`` returns ``divergence`` and ``accuracy`` or ``rmse``.
 
-``zero_knobs`` names knobs the caller guarantees are 0 in every lane the program will run. Where
-a zero knob makes a component exactly the identity, the program leaves that work out: a dropout
-rate of 0 on activations (inverted or scaled) keeps every unit with scale 1, so no masks are
-drawn — the same bits, without a threefry draw the size of every hidden activation per step.
-DropConnect keeps its masks: its per-example product is a different computation than ``x W``.
+Components are built from their spec sections by their family's registry under the section's
+``kind``, with every field of the section as an argument of the same name: knobs as the traced
+values, the other fields as Python values (what a knob-free section field changes, such as
+``nesterov`` or ``warmup_epochs``, is part of the program's structure).
+
+``Program.zero_knobs`` are the knobs that are 0 in every variant the program was built for;
+``pack`` refuses lanes where one is not. Where a zero knob makes a component exactly the
+identity, the program leaves that work out: a dropout rate of 0 on activations (inverted or
+scaled) keeps every unit with scale 1, so no masks are drawn — the same bits, without a threefry
+draw the size of every hidden activation per step. DropConnect keeps its masks: its per-example
+product is a different computation than ``x W``.
 
 Randomness: one root key per seed; fixed tags derive independent streams (``fold_in(root, tag)``):
 the split and the per-epoch shuffle (``fold_in(stream, epoch)``), both a :func:`permutation`; the
@@ -44,7 +52,7 @@ that epoch's and later metrics are NaN.
 from __future__ import annotations
 
 import hashlib
-from typing import Any, Callable, NamedTuple
+from typing import Any, Callable, NamedTuple, Sequence
 
 import jax
 import jax.numpy as jnp
@@ -54,9 +62,10 @@ import optax
 from compiler import divergences, model, normalization, optimizers, regularization
 from compiler.data import Dataset
 from compiler.hashing import knobs_of, structure_key
-from compiler.spec import Spec, WarmupCosine, train_size
+from compiler.spec import Spec, Strict, train_size
 
-__all__ = ["Program", "Carry", "compile_variant", "fit_standardization", "knob_vector", "seed_key", "param_digest", "permutation",
+__all__ = ["Program", "Carry", "compile_structure", "zero_knobs", "fit_standardization", "knob_vector", "seed_key",
+           "param_digest", "permutation",
            "SPLIT", "INIT", "SHUFFLE", "DROPOUT"]
 
 # Purpose tags of the random streams; fixed forever, since they decide every run's bits.
@@ -66,6 +75,7 @@ SPLIT, INIT, SHUFFLE, DROPOUT = 1, 2, 3, 4
 class Program(NamedTuple):
     structure: str
     knob_names: tuple[str, ...]
+    zero_knobs: frozenset[str]
     metric_names: tuple[str, ...]
     epochs: int
     init: Callable
@@ -74,6 +84,7 @@ class Program(NamedTuple):
     evaluate: Callable
     params: Callable
     status: Callable
+    pack: Callable
 
 
 class Carry(NamedTuple):
@@ -131,10 +142,19 @@ def param_digest(params_pytree) -> str:
     return h.hexdigest()
 
 
-def _fields(knobs: dict, prefix: str, skip: tuple[str, ...] = ()) -> dict:
-    """The knobs directly under ``prefix``, keyed by their last name (the factories' arguments)."""
-    return {name[len(prefix):]: value for name, value in knobs.items()
-            if name.startswith(prefix) and "." not in name[len(prefix):] and name[len(prefix):] not in skip}
+def _component(registry: dict, section: Strict, prefix: str, knobs: dict, **made):
+    """The component registered under the section's ``kind``, given every field of the section
+    by name: knobs as the traced values under ``prefix``, the other fields as Python values.
+    ``made`` holds what the compiler makes itself (it replaces a field of the same name: the
+    learning rate becomes its schedule). The ``kind`` and nested sections, which are components
+    of their own, are not passed."""
+    arguments = {}
+    for name in type(section).model_fields:
+        value = getattr(section, name)
+        if name == "kind" or isinstance(value, Strict):
+            continue
+        arguments[name] = knobs[prefix + name] if name in type(section).knobs else value
+    return registry[section.kind](**{**arguments, **made})
 
 
 def _global_norm(tree) -> jax.Array:
@@ -166,9 +186,22 @@ def fit_standardization(x_train: jax.Array) -> tuple[jax.Array, jax.Array]:
     return mean, jnp.where(constant, 1.0, jnp.sqrt(var))
 
 
-def compile_variant(variant: Spec, dataset: Dataset, zero_knobs: frozenset[str] = frozenset()) -> Program:
-    """Pure training functions for one resolved variant (``model.hidden`` a list) and its data;
-    ``zero_knobs`` as in the module contract."""
+def zero_knobs(variants: Sequence[Spec]) -> frozenset[str]:
+    """The knobs that are 0 in every one of ``variants`` (lanes padded with copies of a real run
+    add no other value): work they make the identity can be left out of their program."""
+    vectors = [knob_vector(v) for v in variants]
+    return frozenset(name for name in vectors[0] if not any(vec[name] for vec in vectors))
+
+
+def compile_structure(variants: Sequence[Spec], dataset: Dataset) -> Program:
+    """Pure training functions for resolved variants (``model.hidden`` a list) of one structure
+    key and their data; the program's ``zero_knobs`` are those 0 in every one of them."""
+    variant = variants[0]
+    structure = structure_key(variant)
+    if any(structure_key(v) != structure for v in variants):
+        raise ValueError(f"variants of several structures in one program: {sorted({structure_key(v) for v in variants})}")
+    knob_names = tuple(knob_vector(variant))
+    zero = zero_knobs(variants)
     n, features = dataset.x.shape
     classification = dataset.task == "classification"
     n_train = train_size(n, variant.data.validation)
@@ -180,34 +213,42 @@ def compile_variant(variant: Spec, dataset: Dataset, zero_knobs: frozenset[str] 
     padded = steps * batch_size
     decoupled = variant.regularization.decoupled
     opt = variant.optimizer
-    schedule_spec = opt.schedule
-    static_schedule = {"warmup_epochs": schedule_spec.warmup_epochs} if isinstance(schedule_spec, WarmupCosine) else {}
-    static_opt = {"nesterov": opt.nesterov} if opt.kind == "sgd" else {}
     widths = list(variant.model.widths)
     names = model.layer_names(len(widths) + 1)
-    knob_names = tuple(knobs_of(variant))
     fit_scale = variant.data.standardize
-    no_dropout_masks = ("regularization.dropout.rate" in zero_knobs
+    no_dropout_masks = ("regularization.dropout.rate" in zero
                         and variant.regularization.dropout.kind in ("inverted", "scaled"))
 
     def parts(knobs) -> _Parts:
-        divergence = divergences.REGISTRY[variant.divergence.kind](**_fields(knobs, "divergence."))
-        normalizer = normalization.REGISTRY[variant.normalization.kind](**_fields(knobs, "normalization."))
-        dropout = regularization.REGISTRY[variant.regularization.dropout.kind](
-            **_fields(knobs, "regularization.dropout."))
+        divergence = _component(divergences.REGISTRY, variant.divergence, "divergence.", knobs)
+        normalizer = _component(normalization.REGISTRY, variant.normalization, "normalization.", knobs)
+        dropout = _component(regularization.REGISTRY, variant.regularization.dropout, "regularization.dropout.", knobs)
         if no_dropout_masks:
             dropout = dropout._replace(activation=lambda key, h, train: h)
         out_width = divergence.width(dataset.classes, targets)
-        network = model.mlp(widths, out_width, variant.model.activation, variant.model.init, normalizer, dropout)
-        schedule = optimizers.SCHEDULES[schedule_spec.kind](
-            knobs["optimizer.learning_rate"], steps, steps * epochs,
-            **_fields(knobs, "optimizer.schedule."), **static_schedule)
+        network = _component(model.FAMILIES, variant.model, "model.", knobs, hidden=widths, out_width=out_width,
+                             normalizer=normalizer, dropout=dropout)
+        schedule = _component(optimizers.SCHEDULES, opt.schedule, "optimizer.schedule.", knobs,
+                              learning_rate=knobs["optimizer.learning_rate"], steps_per_epoch=steps,
+                              total_steps=steps * epochs)
         weight_decay = knobs["regularization.weight_decay"]
         # The mask is a function of the params tree so optax can build it at init and update alike.
         decay = (weight_decay, model.weight_mask) if decoupled else None
-        tx = optimizers.REGISTRY[opt.kind](schedule, **_fields(knobs, "optimizer.", skip=("learning_rate",)),
-                                           **static_opt, decoupled=decay)
+        tx = _component(optimizers.REGISTRY, opt, "optimizer.", knobs, learning_rate=schedule, decoupled=decay)
         return _Parts(divergence, network, tx, schedule, weight_decay)
+
+    def pack(lanes: Sequence[Spec]) -> dict[str, jax.Array]:
+        """The knobs of ``lanes`` (variants of this structure), ``f32[len(lanes)]`` per name."""
+        strangers = sorted({structure_key(v) for v in lanes} - {structure})
+        if strangers:
+            raise ValueError(f"lanes of structure {strangers} packed for a program of structure {structure}")
+        lane_vectors = [knob_vector(v) for v in lanes]
+        packed = {name: np.array([vec[name] for vec in lane_vectors], dtype=np.float32) for name in knob_names}
+        # The program may have left out work these knobs do when they are not 0.
+        broken = sorted(name for name in zero if np.any(packed[name]))
+        if broken:
+            raise ValueError(f"knobs {broken} are 0 in every variant the program was built for, not in these lanes")
+        return {name: jnp.asarray(values) for name, values in packed.items()}
 
     def standardize(carry, x):
         return (x - carry.x_mean) / carry.x_scale
@@ -308,6 +349,6 @@ def compile_variant(variant: Spec, dataset: Dataset, zero_knobs: frozenset[str] 
     metric_names = ("train_divergence", "train_penalty", "val_divergence",
                     "val_accuracy" if classification else "val_rmse", "grad_norm",
                     *(f"grad_norm_{name}" for name in names), "weight_norm", "learning_rate")
-    return Program(structure_key(variant), knob_names, metric_names, epochs, init, epoch, train, evaluate,
+    return Program(structure, knob_names, zero, metric_names, epochs, init, epoch, train, evaluate,
                    lambda carry: {"params": carry.params, "state": carry.state},
-                   lambda carry: (carry.diverged, carry.diverged_at))
+                   lambda carry: (carry.diverged, carry.diverged_at), pack)

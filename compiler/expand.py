@@ -24,12 +24,12 @@ import os
 import types
 import typing
 from dataclasses import dataclass, field
-from typing import Any, Union
+from typing import Any
 
 from pydantic import BaseModel, ValidationError
 
 from compiler.errors import Problem, SpecError, dotted
-from compiler.hashing import identity
+from compiler.hashing import identity, models_in
 from compiler.spec import NeuronBudget, Spec
 
 __all__ = ["Variant", "expand", "max_variants", "MAX_VARIANTS", "field_paths", "format_value", "pydantic_problems"]
@@ -65,25 +65,13 @@ def _label(changes: dict[str, Any]) -> str:
 
 
 # ── key paths ───────────────────────────────────────────────────────────────────────────────────
-def _models_in(annotation) -> list[type[BaseModel]]:
-    """The pydantic models an annotation may hold (through Annotated, Union, Optional)."""
-    origin = typing.get_origin(annotation)
-    if origin is typing.Annotated:
-        return _models_in(typing.get_args(annotation)[0])
-    if origin in (Union, types.UnionType):
-        return [m for a in typing.get_args(annotation) for m in _models_in(a)]
-    if isinstance(annotation, type) and issubclass(annotation, BaseModel):
-        return [annotation]
-    return []
-
-
 def field_paths(model: type[BaseModel] = Spec, prefix: str = "") -> set[str]:
     """Every dotted key a spec can contain (union members' fields together)."""
     out = set()
     for name, info in model.model_fields.items():
         path = f"{prefix}{name}"
         out.add(path)
-        for sub in _models_in(info.annotation):
+        for sub in models_in(info.annotation):
             out |= field_paths(sub, path + ".")
     return out
 
@@ -147,7 +135,7 @@ def _walk(raw_loc) -> tuple[list[type[BaseModel]], tuple]:
         fields = [m.model_fields[part] for m in models if part in m.model_fields]
         if fields:
             loc.append(part)
-            models = [x for f in fields for x in (_models_in(f.annotation) or _list_models(f.annotation))]
+            models = [x for f in fields for x in (models_in(f.annotation) or _list_models(f.annotation))]
             continue
         tagged = [m for m in models if part in _tags_of(m)]
         if tagged:
@@ -201,7 +189,7 @@ def _list_models(annotation) -> list[type[BaseModel]]:
     if origin is typing.Annotated:
         return _list_models(typing.get_args(annotation)[0])
     if origin is list:
-        return _models_in(typing.get_args(annotation)[0])
+        return models_in(typing.get_args(annotation)[0])
     return []
 
 

@@ -8,30 +8,53 @@
 - run id: ``<variant hash>-s<seed>``;
 - structure key: the variant with every *knob* removed. Knobs are the continuous values the
   compiled program takes as traced inputs, so all variants with one structure key share one
-  XLA program. :data:`KNOBS` is the single list of them: ``compiler.build`` reads knob values
-  through :func:`knobs_of` and nowhere else.
+  XLA program. Each spec model names its knob fields (``knobs``, a class attribute); a variant's
+  knobs are those of the models it is made of (:func:`knobs_of`), and :data:`KNOBS`, every knob
+  path a variant can have, is derived from the schema.
 """
 
 from __future__ import annotations
 
 import hashlib
-from typing import Any
+import types
+import typing
+from typing import Any, Iterator, Union
 
 import rfc8785
+from pydantic import BaseModel
 
 from compiler.spec import Spec
 
-__all__ = ["canonical_json", "sha256_hex", "study_hash", "variant_hash", "run_id",
-           "KNOBS", "knobs_of", "structure_key", "identity", "variant_payload", "lookup"]
+__all__ = ["canonical_json", "sha256_hex", "study_hash", "variant_hash", "run_id", "models_in",
+           "sections", "KNOBS", "knobs_of", "structure_key", "identity", "variant_payload", "lookup"]
 
-# Dotted paths of traced scalars. A path missing in a variant (another kind) is simply absent.
-KNOBS: tuple[str, ...] = (
-    "optimizer.learning_rate", "optimizer.momentum", "optimizer.b1", "optimizer.b2",
-    "optimizer.eps", "optimizer.decay", "optimizer.schedule.rate",
-    "optimizer.schedule.final_fraction", "regularization.weight_decay",
-    "regularization.dropout.rate", "divergence.label_smoothing", "divergence.delta",
-    "normalization.momentum", "normalization.epsilon",
-)
+# Sections that do not decide a run's numbers (and have no knobs).
+_NOT_RUN = {"study", "ablation"}
+
+
+def models_in(annotation) -> list[type[BaseModel]]:
+    """The pydantic models an annotation may hold (through Annotated, Union, Optional)."""
+    origin = typing.get_origin(annotation)
+    if origin is typing.Annotated:
+        return models_in(typing.get_args(annotation)[0])
+    if origin in (Union, types.UnionType):
+        return [m for a in typing.get_args(annotation) for m in models_in(a)]
+    if isinstance(annotation, type) and issubclass(annotation, BaseModel):
+        return [annotation]
+    return []
+
+
+def _knob_paths(model: type[BaseModel], prefix: str) -> Iterator[str]:
+    for name, info in model.model_fields.items():
+        if name in model.knobs:
+            yield prefix + name
+        for sub in models_in(info.annotation):
+            yield from _knob_paths(sub, f"{prefix}{name}.")
+
+
+# Every knob path of any kind, in schema order; a variant has those of the kinds it uses.
+KNOBS: tuple[str, ...] = tuple(dict.fromkeys(
+    path for path in _knob_paths(Spec, "") if path.split(".")[0] not in _NOT_RUN))
 
 
 def canonical_json(obj: Any, memo: dict | None = None) -> bytes:
@@ -99,15 +122,22 @@ def lookup(tree: dict, path: str):
     return node
 
 
+def sections(model: BaseModel, prefix: str = "") -> Iterator[tuple[str, BaseModel]]:
+    """``(dotted prefix, model)`` for a model and every model nested in it, parents first."""
+    yield prefix, model
+    for name in type(model).model_fields:
+        value = getattr(model, name)
+        if isinstance(value, BaseModel):
+            yield from sections(value, f"{prefix}{name}.")
+
+
 def knobs_of(variant: Spec) -> dict[str, float]:
-    """Knob values of a variant, as floats, in :data:`KNOBS` order."""
-    tree = variant_payload(variant)
-    out = {}
-    for path in KNOBS:
-        value = lookup(tree, path)
-        if value is not None:
-            out[path] = float(value)
-    return out
+    """Knob values of a variant (the knob fields of the models it is made of), as floats, in
+    :data:`KNOBS` order."""
+    found = {prefix + name: float(getattr(section, name))
+             for prefix, section in sections(variant) if prefix.split(".")[0] not in _NOT_RUN
+             for name in type(section).knobs}
+    return {path: found[path] for path in KNOBS if path in found}
 
 
 def structure_key(variant: Spec) -> str:
@@ -119,7 +149,7 @@ def identity(variant: Spec, memo: dict[str, bytes] | None = None) -> tuple[str, 
     :func:`canonical_json`, shared across the variants of a study."""
     tree = variant_payload(variant)
     vhash = sha256_hex(canonical_json(tree, memo))
-    for path in KNOBS:
+    for path in knobs_of(variant):
         *head, last = path.split(".")
         node = lookup(tree, ".".join(head)) if head else tree
         if isinstance(node, dict):

@@ -1,6 +1,7 @@
 """The network: a multilayer perceptron as a stax-like (init, apply) pair.
 
-Contract: :func:`mlp` returns a :class:`Network` with
+Contract: :data:`FAMILIES` maps the spec's ``model.kind`` to a factory; :func:`mlp` (``"mlp"``)
+returns a :class:`Network` with
 
 - ``init(key, in_width) -> (params, state)``: ``params`` is ``{"l1": {...}, …, "lL": {...}}``
   (the last is the output layer), each layer a dict with ``W`` ``[fan_in, fan_out]``, ``b``
@@ -26,7 +27,7 @@ from typing import Callable, NamedTuple
 import jax
 import jax.numpy as jnp
 
-__all__ = ["Network", "mlp", "weight_mask", "layer_names", "draw_weights", "ACTIVATIONS", "INITIALIZERS"]
+__all__ = ["Network", "mlp", "FAMILIES", "weight_mask", "layer_names", "draw_weights", "ACTIVATIONS", "INITIALIZERS"]
 
 ACTIVATIONS: dict[str, Callable] = {
     "relu": jax.nn.relu,
@@ -121,6 +122,11 @@ def mlp(hidden, out_width, activation, init, normalizer, dropout) -> Network:
         return h @ out["W"] + out["b"], new_state
 
     return Network(init_fn, apply_fn, names)
+
+
+# Network families by the spec's ``model.kind``: each factory takes the ``[model]`` fields by name
+# plus ``out_width``, ``normalizer`` and ``dropout``, and returns a :class:`Network`.
+FAMILIES: dict[str, Callable[..., Network]] = {"mlp": mlp}
 
 
 def weight_mask(params):

@@ -13,9 +13,10 @@ from __future__ import annotations
 import math
 import posixpath
 import re
-from typing import Annotated, Literal, Union
+from typing import Annotated, ClassVar, Literal, Union
 
-from pydantic import BaseModel, ConfigDict, Discriminator, Field, Tag, field_validator, model_validator
+from pydantic import (BaseModel, ConfigDict, Discriminator, Field, SerializerFunctionWrapHandler, Tag, field_validator,
+                      model_serializer, model_validator)
 
 __all__ = [
     "Strict", "Study", "SyntheticData", "FileData", "Data", "NeuronBudget", "Model",
@@ -60,6 +61,10 @@ class Strict(BaseModel):
 
     # Attribute docstrings become the keys' descriptions in `lesion schema` (editors show them).
     model_config = ConfigDict(extra="forbid", frozen=True, strict=True, use_attribute_docstrings=True)
+
+    # The fields a compiled program takes as traced inputs (one program serves every value);
+    # every other field is structure, passed to its component as a Python value.
+    knobs: ClassVar[tuple[str, ...]] = ()
 
 
 # ── study ───────────────────────────────────────────────────────────────────────────────────────
@@ -225,6 +230,8 @@ def _hidden_form(value) -> str:
 class Model(Strict):
     """The multilayer perceptron: hidden widths, activation and weight initialization."""
 
+    kind: Literal["mlp"] = "mlp"
+    """The network family: mlp, the multilayer perceptron (the only family so far)."""
     hidden: Annotated[Union[Annotated[Annotated[list[Annotated[int, Field(ge=1, le=MAX_WIDTH)]], Field(max_length=64)], Tag("widths")],
                             Annotated[NeuronBudget, Tag("budget")]],
                       Discriminator(_hidden_form)] = [32, 32]
@@ -237,6 +244,15 @@ class Model(Strict):
     @property
     def widths(self) -> list[int]:
         return self.hidden.widths if isinstance(self.hidden, NeuronBudget) else list(self.hidden)
+
+    @model_serializer(mode="wrap")
+    def _mlp_unwritten(self, handler: SerializerFunctionWrapHandler):
+        # Specs older than the family choice were all MLPs: leaving the default family out of
+        # every dump keeps their canonical JSON, hence their study, variant and structure hashes.
+        out = handler(self)
+        if out.get("kind") == "mlp":
+            del out["kind"]
+        return out
 
 
 # ── divergence ──────────────────────────────────────────────────────────────────────────────────
@@ -252,6 +268,7 @@ class KL(Strict):
     """Softmax output, KL divergence to the target distribution."""
     label_smoothing: Rate = 0.0
     """Share of the target probability spread evenly over all classes."""
+    knobs: ClassVar[tuple[str, ...]] = ("label_smoothing",)
 
 
 class BCE(Strict):
@@ -266,6 +283,7 @@ class Huber(Strict):
     """Identity output, Huber loss."""
     delta: Positive = 1.0
     """Error at which the loss turns from quadratic to linear."""
+    knobs: ClassVar[tuple[str, ...]] = ("delta",)
 
 
 Divergence = Annotated[Union[L2, KL, BCE, Huber], Field(discriminator="kind")]
@@ -287,6 +305,7 @@ class BatchNorm(Strict):
     """Weight of the old running statistics in each update."""
     epsilon: Positive = 1e-5
     """Added to the variance before the square root."""
+    knobs: ClassVar[tuple[str, ...]] = ("momentum", "epsilon")
 
 
 class LayerNorm(Strict):
@@ -295,6 +314,7 @@ class LayerNorm(Strict):
     """Layer normalization."""
     epsilon: Positive = 1e-5
     """Added to the variance before the square root."""
+    knobs: ClassVar[tuple[str, ...]] = ("epsilon",)
 
 
 Normalization = Annotated[Union[NoNorm, BatchNorm, LayerNorm], Field(discriminator="kind")]
@@ -308,6 +328,7 @@ class Dropout(Strict):
     """Probability of dropping a unit (or, for connect, a weight)."""
     kind: Literal["inverted", "scaled", "connect"] = "inverted"
     """inverted: rescale while training; scaled: rescale at inference; connect: DropConnect on weights."""
+    knobs: ClassVar[tuple[str, ...]] = ("rate",)
 
 
 class Regularization(Strict):
@@ -319,6 +340,7 @@ class Regularization(Strict):
     """false: decay in the loss; true: decay applied in the optimizer update."""
     dropout: Dropout = Dropout()
     """Dropout rate and kind."""
+    knobs: ClassVar[tuple[str, ...]] = ("weight_decay",)
 
 
 # ── optimizer ───────────────────────────────────────────────────────────────────────────────────
@@ -335,6 +357,7 @@ class Exponential(Strict):
     """Decay by rate per epoch."""
     rate: Annotated[float, Field(gt=0.0, le=1.0, allow_inf_nan=False)] = 0.97
     """Factor applied to the learning rate per epoch."""
+    knobs: ClassVar[tuple[str, ...]] = ("rate",)
 
 
 class Cosine(Strict):
@@ -343,6 +366,7 @@ class Cosine(Strict):
     """Cosine decay."""
     final_fraction: Fraction = 0.0
     """Learning rate at the end, as a fraction of the base rate."""
+    knobs: ClassVar[tuple[str, ...]] = ("final_fraction",)
 
 
 class WarmupCosine(Strict):
@@ -353,6 +377,7 @@ class WarmupCosine(Strict):
     """Epochs of linear warm-up from 0 to the base rate."""
     final_fraction: Fraction = 0.0
     """Learning rate at the end, as a fraction of the base rate."""
+    knobs: ClassVar[tuple[str, ...]] = ("final_fraction",)
 
 
 Schedule = Annotated[Union[Constant, Exponential, Cosine, WarmupCosine], Field(discriminator="kind")]
@@ -372,6 +397,7 @@ class SGD(Strict):
     """Nesterov's form of momentum."""
     schedule: Schedule = Constant(kind="constant")
     """Learning-rate schedule, selected by kind."""
+    knobs: ClassVar[tuple[str, ...]] = ("learning_rate", "momentum")
 
 
 class Adam(Strict):
@@ -389,6 +415,7 @@ class Adam(Strict):
     """Added to the denominator for numerical stability."""
     schedule: Schedule = Constant(kind="constant")
     """Learning-rate schedule, selected by kind."""
+    knobs: ClassVar[tuple[str, ...]] = ("learning_rate", "b1", "b2", "eps")
 
 
 class AdamW(Adam):
@@ -412,6 +439,7 @@ class RMSProp(Strict):
     """Momentum coefficient."""
     schedule: Schedule = Constant(kind="constant")
     """Learning-rate schedule, selected by kind."""
+    knobs: ClassVar[tuple[str, ...]] = ("learning_rate", "decay", "eps", "momentum")
 
 
 Optimizer = Annotated[Union[SGD, Adam, AdamW, RMSProp], Field(discriminator="kind")]

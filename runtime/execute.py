@@ -7,8 +7,9 @@ another process or on another machine and its result written here.
 Inside a group one program per structure is compiled (``vmap`` over lanes of (knobs, seed key)
 of the compiler's per-epoch function, steps in ``lax.scan``) and called once per epoch from
 Python; the data stays on the device across epochs and only the per-epoch metrics come back.
-Knobs that are 0 in every lane of a group are passed to the builder as ``zero_knobs`` (work they
-make the identity is left out, bits unchanged); programs compile with XLA's default options.
+The program (:func:`compiler.build.compile_structure` of the group's variants) packs the lanes'
+knobs itself and decides which work its zero knobs let it leave out; programs compile with XLA's
+default options.
 The compiled executables of a structure are stored in the user's cache folder under a name
 hashed from everything they depend on (:func:`_program_path`), so a later invocation neither
 traces, lowers nor compiles them; it is a speed-up only — a stored program computes the same bits
@@ -116,19 +117,6 @@ def enable_compile_cache() -> None:
 _programs: dict[tuple, tuple] = {}
 
 
-def _zero_knobs(knobs: dict) -> frozenset[str]:
-    """Knobs that are 0 in every lane (padding copies a real lane, so it never adds a non-zero)."""
-    return frozenset(name for name, values in knobs.items() if not np.any(np.asarray(values)))
-
-
-def _knob_arrays(group: Group) -> dict[str, np.ndarray]:
-    """Each knob's value per lane (padding lanes copy the first run), float32."""
-    from compiler.build import knob_vector
-
-    vectors = [knob_vector(r.variant.spec) for r in list(group.runs) + [group.runs[0]] * group.padding]
-    return {n: np.array([v[n] for v in vectors], dtype=np.float32) for n in vectors[0]}
-
-
 def _program_key(group: Group, dataset, zero: frozenset[str]) -> tuple:
     return group.structure, group.lane_width, _data_signature(dataset), zero
 
@@ -138,10 +126,12 @@ def preparation(groups: list[Group], data: dict, environment: dict) -> dict[str,
     doing it: ``"compile"``, ``"load"`` (stored in the compile cache) or ``"reuse"`` (compiled
     or loaded already by this process or an earlier group), keyed by group id; for the time
     estimate, whose costs differ a hundredfold between these."""
+    from compiler.build import zero_knobs
+
     out: dict[str, str] = {}
     seen = set(_programs)
     for g in groups:
-        zero = _zero_knobs(_knob_arrays(g))
+        zero = zero_knobs([r.variant.spec for r in g.runs])
         key = _program_key(g, data[g.group_id], zero)
         if key in seen:
             out[g.group_id] = "reuse"
@@ -252,16 +242,15 @@ def _prune(folder: Path, limit: int, keep: Path) -> None:
         total -= size
 
 
-def _compiled(group: Group, dataset, knobs, seeds, reuse: bool, environment: dict):
+def _compiled(group: Group, program, dataset, knobs, seeds, reuse: bool, environment: dict):
     import jax
 
-    from compiler.build import compile_variant, seed_key
+    from compiler.build import seed_key
 
-    zero = _zero_knobs(knobs)
+    zero = program.zero_knobs
     key = _program_key(group, dataset, zero)
     if reuse and key in _programs:
         return _programs[key] + (0.0,)
-    program = compile_variant(group.runs[0].variant.spec, dataset, zero_knobs=zero)
     t0 = time.perf_counter()
     # Programs see only the data's shapes: the rows are arguments, put on the device per group.
     x, y = (jax.ShapeDtypeStruct(a.shape, a.dtype) for a in (dataset.x, dataset.y))
@@ -303,15 +292,17 @@ def execute_group(group: Group, dataset, environment: dict,
     (replay proves the bits with a new compile). ``keep_arrays`` returns each lane's trained
     arrays too (export); runs never store them."""
     import jax
-    import jax.numpy as jnp
 
-    from compiler.build import param_digest
+    from compiler.build import compile_structure, param_digest
 
+    # Padding copies a real run, so it never adds a non-zero to a knob that is 0 in every run.
     lanes = list(group.runs) + [group.runs[0]] * group.padding
-    knobs = {n: jnp.asarray(a) for n, a in _knob_arrays(group).items()}
+    program = compile_structure([r.variant.spec for r in group.runs], dataset)
+    knobs = program.pack([r.variant.spec for r in lanes])
     seeds = np.array([r.seed for r in lanes], dtype=np.int32)
 
-    program, init_c, epoch_c, status_fn, params_fn, compile_seconds = _compiled(group, dataset, knobs, seeds, reuse, environment)
+    program, init_c, epoch_c, status_fn, params_fn, compile_seconds = _compiled(
+        group, program, dataset, knobs, seeds, reuse, environment)
     x, y = jax.device_put(dataset.x), jax.device_put(dataset.y)
     t0 = time.perf_counter()
     carry = init_c(knobs, seeds, x, y)

@@ -197,3 +197,12 @@ def test_variant_hash_ignores_the_study_section():
     b = load_text('[study]\nname = "two"\nseeds = 9\ndescription = "other words"\n').variants[0]
     assert variant_hash(a.spec) == variant_hash(b.spec) == a.hash
     assert study_hash(a.spec) != study_hash(b.spec)
+
+
+@pytest.mark.parametrize("name", sorted(DOCS))
+def test_writing_the_default_model_family_keeps_the_study_hash(name):
+    # Specs written before [model] had a kind are MLPs and must keep their hashes (their stored
+    # result sets carry them).
+    doc = copy.deepcopy(DOCS[name])
+    doc.setdefault("model", {})["kind"] = "mlp"
+    assert load_text(toml_layout.dump(doc, random.Random(0)), name).study_hash == BASELINE[name]

@@ -33,7 +33,7 @@ def variant(**sections):
 
 def program(v, base_dir="."):
     ds = load_data(v, pathlib.Path(base_dir))
-    return build.compile_variant(v, ds), ds
+    return build.compile_structure([v], ds), ds
 
 
 def knobs(v):
@@ -240,6 +240,32 @@ def test_knob_vector_is_float32_in_knobs_order():
     assert list(kv) == [k for k in KNOBS if k in kv]
     assert all(type(x) is np.float32 for x in kv.values())
     assert kv["optimizer.learning_rate"] == np.float32(0.002) and kv["optimizer.schedule.final_fraction"] == np.float32(0.1)
+
+
+# ── a program owns its inputs ─────────────────────────────────────────────────────────────────
+def test_a_program_packs_its_lanes_and_knows_its_zero_knobs():
+    a = variant(regularization={"dropout": {"rate": 0.0}})
+    b = variant(regularization={"dropout": {"rate": 0.2}}, optimizer={"kind": "sgd", "learning_rate": 0.01})
+    ds = load_data(a, pathlib.Path("."))
+    prog = build.compile_structure([a, b], ds)
+    assert prog.zero_knobs == {"regularization.weight_decay", "optimizer.momentum", "divergence.label_smoothing"}
+    packed = prog.pack([a, b, a])
+    assert tuple(packed) == prog.knob_names
+    assert all(values.dtype == jnp.float32 and values.shape == (3,) for values in packed.values())
+    np.testing.assert_array_equal(packed["regularization.dropout.rate"], np.float32([0.0, 0.2, 0.0]))
+    np.testing.assert_array_equal(packed["optimizer.learning_rate"], np.float32([0.05, 0.01, 0.05]))
+    # Built for rate 0 alone, the program may have left the masks out: b's rate cannot run on it.
+    with pytest.raises(ValueError, match="regularization.dropout.rate"):
+        build.compile_structure([a], ds).pack([a, b])
+
+
+def test_one_program_serves_one_structure():
+    a, other = variant(), variant(normalization={"kind": "layer"})
+    ds = load_data(a, pathlib.Path("."))
+    with pytest.raises(ValueError, match="several structures"):
+        build.compile_structure([a, other], ds)
+    with pytest.raises(ValueError, match=structure_key(other)):
+        build.compile_structure([a], ds).pack([a, other])
 
 
 # ── health ──────────────────────────────────────────────────────────────────────────────────────

@@ -42,14 +42,14 @@ def store(tmp_path, monkeypatch):
 
 def _untraceable(monkeypatch):
     """From now on a structure's programs can only come from the store: tracing them fails."""
-    real = build.compile_variant
+    real = build.compile_structure
 
     def no_tracing(*args, **kwargs):
         def boom(*a, **k):
             raise AssertionError("traced although the programs were stored")
         return real(*args, **kwargs)._replace(init=boom, epoch=boom)
 
-    monkeypatch.setattr(build, "compile_variant", no_tracing)
+    monkeypatch.setattr(build, "compile_structure", no_tracing)
 
 
 def test_a_later_run_loads_the_programs_without_tracing_and_gets_the_same_bits(tmp_path, tiny_spec, store, monkeypatch):
