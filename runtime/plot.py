@@ -32,7 +32,7 @@ What is drawn:
   noise into contrast.
 - ``diff``: per matched variant B − A with its 95 % interval, coloured by the verdict.
 
-Colours: :data:`PALETTE` (:data:`PALETTE_NAME`), ten colours chosen for this project so that every pair
+Colours: :data:`PALETTE`, ten colours chosen for this project so that every pair
 stays at least 20 CIELAB ΔE apart under simulated protanopia, deuteranopia and tritanopia;
 lines also differ by marker, so colour is never the only cue.
 """
@@ -62,12 +62,10 @@ from runtime.show import curve_rows, summary_rows  # noqa: E402
 from runtime.stats import summarize  # noqa: E402
 from runtime.store import ResultSet  # noqa: E402
 
-__all__ = ["PlotError", "PALETTE", "PALETTE_NAME", "SEQUENTIAL", "KINDS", "DPI", "LOG_SPAN",
+__all__ = ["PlotError", "PALETTE", "SEQUENTIAL", "KINDS", "DPI", "LOG_SPAN",
            "GAP_SCALE", "FACET_OVER", "plot", "plot_curves", "plot_arms", "plot_grid", "plot_diff", "save_figure", "svg_markup", "default_path",
            "short_labels"]
 
-# A plain description, not a brand: what the colours are for.
-PALETTE_NAME = "ten colours apart under colour-vision deficiency"
 PALETTE = ("#0c5886", "#c7680f", "#33948d", "#ce2c66", "#8dbb5a",
            "#7235ba", "#8c5a2b", "#54c0fd", "#eda217", "#454735")
 MARKERS = ("o", "s", "^", "D", "v", "P", "X", "<", ">", "h")
