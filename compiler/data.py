@@ -32,7 +32,7 @@ from typing import Callable, NamedTuple
 
 import numpy as np
 
-from compiler.errors import Problem, SpecError, dotted
+from compiler.errors import Problem, SpecError, UserError, dotted
 from compiler.spec import FileData, Spec, classes_of, task_of, train_size
 
 __all__ = ["Dataset", "DataError", "load_data", "FileInfo", "Column", "inspect_file", "load_bytes", "file_problems",
@@ -40,7 +40,7 @@ __all__ = ["Dataset", "DataError", "load_data", "FileInfo", "Column", "inspect_f
            "sines", "fingerprint_arrays"]
 
 
-class DataError(ValueError):
+class DataError(UserError, ValueError):
     """A data set that cannot be used; the message is one line naming the source."""
 
 

@@ -43,13 +43,14 @@ import re
 import uuid
 from typing import Callable
 
+from compiler.errors import UserError
 from runtime.environment import capture, differences, fingerprint
 from runtime.execute import GroupResult, enable_compile_cache, execute_group
 
 __all__ = ["ClusterError", "DaskExecutor", "parse_address", "worker_environment"]
 
 
-class ClusterError(Exception):
+class ClusterError(UserError):
     """A cluster that cannot be used as asked, with a one-line message a person can act on."""
 
 

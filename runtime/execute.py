@@ -30,6 +30,7 @@ from typing import Callable
 
 import numpy as np
 
+from compiler.errors import UserError
 from runtime.plan import Group
 
 __all__ = ["GroupResult", "LaneResult", "execute_group", "InProcess", "enable_compile_cache", "cache_dir", "preparation",
@@ -77,7 +78,7 @@ def cache_dir() -> Path:
     return Path(base) / "lesion" / "xla"
 
 
-class CacheError(Exception):
+class CacheError(UserError):
     """The compile cache's setting is unusable (a user error: exit 2)."""
 
 

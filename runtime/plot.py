@@ -56,6 +56,7 @@ from matplotlib.lines import Line2D  # noqa: E402
 from matplotlib.patches import Rectangle  # noqa: E402
 from matplotlib.transforms import blended_transform_factory  # noqa: E402
 
+from compiler.errors import UserError  # noqa: E402
 from compiler.expand import format_value  # noqa: E402
 from compiler.spec import METRICS  # noqa: E402
 from runtime.show import curve_rows, summary_rows  # noqa: E402
@@ -87,7 +88,7 @@ _GENERIC_LEAVES = {"kind", "rate", "delta", "momentum", "epsilon", "fraction", "
                    "neurons", "depth"}
 
 
-class PlotError(ValueError):
+class PlotError(UserError, ValueError):
     """A plot that cannot be drawn from this input, with a message a person can act on."""
 
 

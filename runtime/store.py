@@ -36,6 +36,8 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
+from compiler.errors import UserError
+
 __all__ = ["column", "ResultSet", "ResultSetError", "open_result_set", "result_dir", "write_results", "writer_lock",
            "META_KEYS", "DIGEST_KEYS", "RUNS", "CURVES", "STAGING", "refuse_link", "runs_digest", "curves_digest",
            "edits"]
@@ -80,7 +82,7 @@ def column(values, typ: pa.DataType) -> pa.Array:
     return pa.Array.from_buffers(typ, n, buffers, null_count=nulls)
 
 
-class ResultSetError(Exception):
+class ResultSetError(UserError):
     """A result set that cannot be read or written, with a message a person can act on."""
 
 
