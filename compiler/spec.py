@@ -123,7 +123,7 @@ class SyntheticData(Strict):
 
     @model_validator(mode="after")
     def _shape(self):
-        # "@key: message" lines: expand.pydantic_problems locates each at its key.
+        # "@key: message" lines: problems.pydantic_problems locates each at its key.
         problems = []
         if self.generator == "friedman1" and self.features < 5:
             problems.append("@features: friedman1 needs features >= 5 (its target uses the first five)")
@@ -547,7 +547,7 @@ class Spec(Strict):
 
     @model_validator(mode="after")
     def _coherent(self):
-        # Cross-section rules. Each problem names the key to change; expand.pydantic_problems
+        # Cross-section rules. Each problem names the key to change; problems.pydantic_problems
         # reads the "@key: message" lines back into separate, located problems.
         problems: list[tuple[str, str]] = []
         task = task_of(self.data)

@@ -165,7 +165,7 @@ def _check_report(study) -> dict:
 
 
 def _print_check_table(study, wide: bool) -> None:
-    from compiler.expand import format_value
+    from compiler.labels import label_parts
     from runtime.formats import Fit, render
 
     structures = sorted({v.structure for v in study.variants}, key=[v.structure for v in study.variants].index)
@@ -177,7 +177,7 @@ def _print_check_table(study, wide: bool) -> None:
     seeds = _seeds_text(study.seeds)
     rows = []
     for v in study.variants:
-        changes = ", ".join(f"{k}={format_value(x)}" for k, x in v.changes.items()) or "(nothing: the base)"
+        changes = ", ".join(label_parts(v.changes)) or "(nothing: the base)"
         # A generated label already spells its changes out; the column then stays empty (and,
         # when every label is generated, is left out).
         rows.append({"#": v.index, "label": v.label, "changes": "" if changes == v.label else changes,

@@ -32,7 +32,8 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from compiler.errors import SpecError, printable
-from compiler.expand import BASE_LABEL, expand, format_value
+from compiler.expand import expand
+from compiler.labels import BASE_LABEL, format_value, label_parts
 from compiler.hashing import variant_payload
 from compiler.loader import load_text
 from compiler.spec import METRICS
@@ -342,7 +343,7 @@ def diff_design(rs: ResultSet, *, axis: str | None = None, metrics: list[str] | 
             step = f"{format_value(levels[i])} → {format_value(levels[j])}"   # the question names the axis
             cells_i, cells_j = [], []
             for combo in itertools.product(*(vals for _, vals in others)):
-                at = ", ".join(f"{o}={format_value(x)}" for (o, _), x in zip(others, combo))
+                at = ", ".join(label_parts({o: x for (o, _), x in zip(others, combo)}))
                 ci, cj = _cell(keys, {k: levels[i]}, combo), _cell(keys, {k: levels[j]}, combo)
                 cells_i.append(ci)
                 cells_j.append(cj)

@@ -57,7 +57,7 @@ from matplotlib.patches import Rectangle  # noqa: E402
 from matplotlib.transforms import blended_transform_factory  # noqa: E402
 
 from compiler.errors import UserError  # noqa: E402
-from compiler.expand import format_value  # noqa: E402
+from compiler.labels import BASE_LABEL, format_value, label_parts, variant_label  # noqa: E402
 from compiler.spec import METRICS  # noqa: E402
 from runtime.show import curve_rows, summary_rows  # noqa: E402
 from runtime.stats import summarize  # noqa: E402
@@ -119,11 +119,10 @@ def short_labels(rs: ResultSet) -> dict[str, str]:
     short = {k: _short_key(k, keys) for k in keys}
     out = {}
     for label, ch in changes.items():
-        derived = ", ".join(f"{k}={format_value(v)}" for k, v in ch.items()) or "base"
-        if label != derived:
+        if label != variant_label(ch):
             out[label] = "\n".join(textwrap.wrap(label, _LABEL_WIDTH)) or label
             continue
-        parts = [f"{short[k]}={format_value(v)}" for k, v in ch.items()] or ["base"]
+        parts = label_parts(ch, short.__getitem__) or [BASE_LABEL]
         text = ", ".join(parts)
         out[label] = text if len(text) <= _LABEL_WIDTH else "\n".join(parts)
     return out
@@ -236,7 +235,7 @@ def _facets(rs: ResultSet, labels: list[str], names: dict[str, str]):
               for v in axes[0]["values"]]
     rest = {label: tuple(json.dumps(changes[label].get(k)) for k in keys[1:]) for label in labels}
     levels = list(dict.fromkeys(rest[label] for label in labels))
-    legend = {label: ", ".join(f"{short[k]}={format_value(changes[label].get(k))}" for k in keys[1:])
+    legend = {label: ", ".join(label_parts({k: changes[label].get(k) for k in keys[1:]}, short.__getitem__))
               for label in labels}
     return [p for p in panels if p[1]], {label: levels.index(rest[label]) for label in labels}, legend
 
