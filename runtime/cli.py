@@ -420,27 +420,24 @@ def show(
     findings = _print_audit(audit(rs))
     name = rs.tree["study"]["name"]
     metrics = metric or [rs.headline]
-    try:
-        if curves:
-            rows, columns = curve_rows(rs, metric or None)
-            fit = CURVES_FIT
-            title = f"{name} ({rs.study_hash[:12]}): per-epoch means over ok runs"
-        elif runs:
-            rows, columns = run_rows(rs, metrics)
-            fit = dataclasses.replace(RUNS_FIT, keep=RUNS_FIT.keep + tuple(metrics))
-            title = f"{name} ({rs.study_hash[:12]}): {len(rows)} runs, final {', '.join(metrics)}"
+    if curves:
+        rows, columns = curve_rows(rs, metric or None)
+        fit = CURVES_FIT
+        title = f"{name} ({rs.study_hash[:12]}): per-epoch means over ok runs"
+    elif runs:
+        rows, columns = run_rows(rs, metrics)
+        fit = dataclasses.replace(RUNS_FIT, keep=RUNS_FIT.keep + tuple(metrics))
+        title = f"{name} ({rs.study_hash[:12]}): {len(rows)} runs, final {', '.join(metrics)}"
+    else:
+        rows = [{"variant": r["variant"], "metric": m, **r} for m in metrics for r in summary_rows(rs, m)]
+        if len(metrics) > 1:
+            order = [r["variant"] for r in rows]
+            rows.sort(key=lambda r: order.index(r["variant"]))
+            columns = ["variant", "metric", *SUMMARY_COLUMNS[1:]]
+            fit = dataclasses.replace(SUMMARY_FIT, keep=SUMMARY_FIT.keep + ("metric",))
         else:
-            rows = [{"variant": r["variant"], "metric": m, **r} for m in metrics for r in summary_rows(rs, m)]
-            if len(metrics) > 1:
-                order = [r["variant"] for r in rows]
-                rows.sort(key=lambda r: order.index(r["variant"]))
-                columns = ["variant", "metric", *SUMMARY_COLUMNS[1:]]
-                fit = dataclasses.replace(SUMMARY_FIT, keep=SUMMARY_FIT.keep + ("metric",))
-            else:
-                columns, fit = SUMMARY_COLUMNS, SUMMARY_FIT
-            title = f"{name} ({rs.study_hash[:12]}): final {', '.join(metrics)} across seeds (mean, sd, 95% CI)"
-    except ValueError as err:
-        raise UsageError(str(err)) from None
+            columns, fit = SUMMARY_COLUMNS, SUMMARY_FIT
+        title = f"{name} ({rs.study_hash[:12]}): final {', '.join(metrics)} across seeds (mean, sd, 95% CI)"
     extra = {"findings": findings}
     if format in (Output.json, Output.csv):
         # Programs get the varied keys' values as fields of their own, not only inside the label.

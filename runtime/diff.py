@@ -135,10 +135,8 @@ def _no_variant(labels, given, option, why, indices=None):
 def _values(rs: ResultSet, cols: dict, variant_hash: str, metric: str) -> dict[int, float | None]:
     """Final values of a variant's runs by seed (None for a diverged run); ``cols`` is
     ``rs.runs.to_pydict()``, converted once per result set."""
+    rs.require([metric])
     col = f"final_{metric}"
-    if col not in cols:
-        have = sorted(c[len("final_"):] for c in cols if c.startswith("final_") and c[6:] in METRICS)
-        raise ResultSetError(f"{rs.path}: metric {metric!r} is not stored (it has: {', '.join(have)})")
     return {cols["seed"][i]: (cols[col][i] if cols["status"][i] == "ok" else None)
             for i, h in enumerate(cols["variant_hash"]) if h == variant_hash}
 

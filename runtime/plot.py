@@ -186,11 +186,8 @@ def _seed_counts(runs: dict[str, list[dict]]) -> str:
 
 
 def _metrics_of(rs: ResultSet, metrics: list[str] | None) -> list[str]:
-    have = [c[len("final_"):] for c in rs.runs.column_names if c.startswith("final_")]
     metrics = list(dict.fromkeys(metrics or [rs.headline]))
-    for m in metrics:
-        if m not in have:
-            raise PlotError(f"--metric {m!r} is not in this result set (it has: {', '.join(sorted(have))})")
+    rs.require(metrics)
     return metrics
 
 
@@ -244,10 +241,7 @@ def plot_curves(rs: ResultSet, metrics: list[str] | None = None) -> Figure:
     """Per-epoch mean ± 1 sd over ok seeds of each metric; train dashed, validation solid; one row
     of panels per metric family (``train_divergence`` and ``val_divergence`` share one), one
     column per level of a grid's first axis when there are many variants (:func:`_facets`)."""
-    have = [c for c in rs.curves.column_names if c not in ("run_id", "variant_label", "seed", "epoch")]
-    for m in metrics or []:
-        if m not in have:
-            raise PlotError(f"--metric {m!r} has no curves in this result set (it has: {', '.join(have)})")
+    rs.require(metrics or [], curves=True)
     rows, columns = curve_rows(rs, metrics or None)
     metrics = columns[3:]  # after variant, epoch, runs
     families = list(dict.fromkeys(_family(m) for m in metrics))

@@ -107,6 +107,19 @@ class ResultSet:
         """The study's headline metric."""
         return self.tree["study"]["metric"]
 
+    def require(self, metrics, curves: bool = False) -> None:
+        """Raise :class:`ResultSetError` naming the first of ``metrics`` this result set does not
+        store (as a final value per run, or with ``curves`` as a per-epoch curve), and what it has."""
+        if curves:
+            have = [c for c in self.curves.column_names if c not in ("run_id", "variant_label", "seed", "epoch")]
+        else:
+            have = [c[len("final_"):] for c in self.runs.column_names if c.startswith("final_")]
+        for m in metrics:
+            if m not in have:
+                what = "has no curves" if curves else "is not stored"
+                raise ResultSetError(f"{self.path}: metric {m!r} {what} in this result set "
+                                     f"(it has: {', '.join(sorted(have))})")
+
 
 def result_dir(out: Path, name: str, study_hash: str) -> Path:
     return Path(out) / f"{name}-{study_hash[:12]}"
