@@ -34,15 +34,10 @@ from compiler.errors import UserError
 from runtime.plan import Group
 
 __all__ = ["GroupResult", "LaneResult", "execute_group", "InProcess", "enable_compile_cache", "cache_dir", "preparation",
-           "CacheError", "cache_limit_bytes",
-           "BN_COLLAPSE_RATIO"]
+           "CacheError", "cache_limit_bytes"]
 
 # Options of the init program's compile (its bits are a function of them, like of the code).
 INIT_COMPILE_OPTIONS = {"xla_backend_optimization_level": 0}
-
-# A batch-normalized layer whose gradient norm falls below this fraction of the output layer's
-# has stopped learning: its batch statistics have (nearly) no spread left.
-BN_COLLAPSE_RATIO = 1e-4
 
 
 @dataclass
@@ -307,6 +302,7 @@ def execute_group(group: Group, dataset, environment: dict,
     import jax.numpy as jnp
 
     from compiler.build import param_digest
+    from compiler.normalization import diagnose
 
     lanes = list(group.runs) + [group.runs[0]] * group.padding
     knobs = {n: jnp.asarray(a) for n, a in _knob_arrays(group).items()}
@@ -336,7 +332,7 @@ def execute_group(group: Group, dataset, environment: dict,
             run_id=run.run_id, lane=i, curves=curves,
             diverged_at=int(at[i]) + 1 if bool(diverged[i]) else None,
             param_digest=param_digest(lane_params),
-            warnings=_warnings(run.variant.spec, curves),
+            warnings=diagnose(run.variant.spec.normalization.kind, len(run.variant.spec.model.widths), curves),
             arrays=_lane_arrays(lane_params, carry, i) if keep_arrays else None,
         ))
     return GroupResult(group.group_id, group.lane_width, names, results, compile_seconds, run_seconds, environment)
@@ -382,27 +378,3 @@ class InProcess:
                 progress("group", group=g, todo=len(g.runs))
             yield g, execute_group(g, data[g.group_id], environment,
                                    on_epoch=on_epoch if check or progress else None)
-
-
-def _warnings(spec, curves: dict[str, np.ndarray]) -> list[str]:
-    """Batch-normalized layers whose gradient collapsed, judged from per-layer gradient norms."""
-    if spec.normalization.kind != "batch":
-        return []
-    hidden = len(spec.model.widths)
-    out_norm = curves.get(f"grad_norm_l{hidden + 1}")
-    if out_norm is None:
-        return []
-    found = []
-    for layer in range(1, hidden + 1):
-        g = curves.get(f"grad_norm_l{layer}")
-        if g is None:
-            continue
-        with np.errstate(divide="ignore", invalid="ignore"):
-            ratio = g / out_norm
-        bad = np.flatnonzero(np.isfinite(ratio) & (ratio < BN_COLLAPSE_RATIO) & (out_norm > 0))
-        if bad.size:
-            e = int(bad[0])
-            found.append(f"batch-normalized layer l{layer}: gradient collapsed from epoch {e + 1} "
-                         f"(|g| {g[e]:.2e} vs output layer {out_norm[e]:.2e}); "
-                         "are the batch rows nearly identical?")
-    return found
