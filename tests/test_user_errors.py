@@ -11,9 +11,9 @@ from compiler.errors import SpecError, UserError
 from runtime.cli import UsageError, app
 from runtime.cluster import ClusterError
 from runtime.environment import SettingError
-from runtime.execute import CacheError
 from runtime.guard import ResourceError
 from runtime.plot import PlotError
+from runtime.programs import CacheError
 from runtime.store import ResultSetError
 
 
