@@ -32,7 +32,8 @@ from typing import Callable, NamedTuple
 
 import numpy as np
 
-from compiler.errors import Problem, SpecError, dotted
+from compiler.errors import Problem, SpecError, UserError, dotted
+from compiler.locate import line_of
 from compiler.spec import FileData, Spec, classes_of, task_of, train_size
 
 __all__ = ["Dataset", "DataError", "load_data", "FileInfo", "Column", "inspect_file", "load_bytes", "file_problems",
@@ -40,7 +41,7 @@ __all__ = ["Dataset", "DataError", "load_data", "FileInfo", "Column", "inspect_f
            "sines", "fingerprint_arrays"]
 
 
-class DataError(ValueError):
+class DataError(UserError, ValueError):
     """A data set that cannot be used; the message is one line naming the source."""
 
 
@@ -307,8 +308,6 @@ def check_files(study, room: int | None = None) -> None:
     """Raise :class:`SpecError` with every problem of a loaded study's data files (metadata only,
     see :func:`file_problems`), each located at its spec key, plus any file whose loading would
     need more than ``room`` bytes. A problem that only a variant has names the variant."""
-    from compiler.loader import line_of
-
     base_dir = pathlib.Path(study.path).resolve().parent
     infos: dict[str, FileInfo | DataError] = {}
     found: dict[tuple, str] = {}

@@ -3,6 +3,9 @@
 A :class:`Problem` names where (a key path into the TOML document) and what; the loader turns the
 path into a line number of the source file. :class:`SpecError` carries every problem of a file so
 they are reported together, not one per attempt.
+
+:class:`UserError` is the base of every error that means "the input is wrong", not "lesion is
+wrong": the CLI prints its lines and exits 2 without a traceback.
 """
 
 from __future__ import annotations
@@ -10,7 +13,11 @@ from __future__ import annotations
 import re
 from dataclasses import dataclass, field
 
-__all__ = ["Problem", "SpecError", "dotted", "printable"]
+__all__ = ["UserError", "Problem", "SpecError", "dotted", "printable"]
+
+
+class UserError(Exception):
+    """Input a person can correct; ``str(err)`` is the message, one problem per line."""
 
 
 @dataclass(frozen=True)
@@ -27,7 +34,7 @@ class Problem:
 
 
 @dataclass
-class SpecError(Exception):
+class SpecError(UserError):
     problems: list[Problem] = field(default_factory=list)
 
     def __str__(self) -> str:

@@ -16,32 +16,19 @@
 from __future__ import annotations
 
 import hashlib
-import types
-import typing
-from typing import Any, Iterator, Union
+from typing import Any, Iterator
 
 import rfc8785
 from pydantic import BaseModel
 
+from compiler.paths import models_in
 from compiler.spec import Spec
 
-__all__ = ["canonical_json", "sha256_hex", "study_hash", "variant_hash", "run_id", "models_in",
+__all__ = ["canonical_json", "sha256_hex", "study_hash", "variant_hash", "run_id",
            "sections", "KNOBS", "knobs_of", "structure_key", "identity", "variant_payload", "lookup"]
 
 # Sections that do not decide a run's numbers (and have no knobs).
 _NOT_RUN = {"study", "ablation"}
-
-
-def models_in(annotation) -> list[type[BaseModel]]:
-    """The pydantic models an annotation may hold (through Annotated, Union, Optional)."""
-    origin = typing.get_origin(annotation)
-    if origin is typing.Annotated:
-        return models_in(typing.get_args(annotation)[0])
-    if origin in (Union, types.UnionType):
-        return [m for a in typing.get_args(annotation) for m in models_in(a)]
-    if isinstance(annotation, type) and issubclass(annotation, BaseModel):
-        return [annotation]
-    return []
 
 
 def _knob_paths(model: type[BaseModel], prefix: str) -> Iterator[str]:

@@ -10,6 +10,9 @@ scalars) and returns a :class:`Normalizer` (a stax-like pair plus one flag):
   statistics to the real examples; ``train`` is a Python bool choosing the mode;
 - ``uses_bias``: False when a preceding affine bias cannot change the output (it is then
   omitted, not merely left untrained).
+
+:func:`diagnose` reads a trained run's per-epoch curves for a failure its normalization is
+prone to (batch statistics without spread); the runs table stores what it finds as warnings.
 """
 
 from __future__ import annotations
@@ -17,8 +20,13 @@ from __future__ import annotations
 from typing import Callable, NamedTuple
 
 import jax.numpy as jnp
+import numpy as np
 
-__all__ = ["Normalizer", "none", "batch", "layer", "REGISTRY"]
+__all__ = ["Normalizer", "none", "batch", "layer", "REGISTRY", "diagnose", "BN_COLLAPSE_RATIO"]
+
+# A batch-normalized layer whose gradient norm falls below this fraction of the output layer's
+# has stopped learning: its batch statistics have (nearly) no spread left.
+BN_COLLAPSE_RATIO = 1e-4
 
 
 class Normalizer(NamedTuple):
@@ -85,3 +93,28 @@ def layer(epsilon=1e-5) -> Normalizer:
 
 
 REGISTRY: dict[str, Callable[..., Normalizer]] = {"none": none, "batch": batch, "layer": layer}
+
+
+def diagnose(kind: str, hidden: int, curves: dict[str, np.ndarray]) -> list[str]:
+    """Batch-normalized layers whose gradient collapsed, judged from the per-layer gradient norms
+    (``grad_norm_l1`` … ``grad_norm_l{hidden + 1}``, the last the output layer's) of a run with
+    ``hidden`` hidden layers normalized by ``kind``; one line per layer."""
+    if kind != "batch":
+        return []
+    out_norm = curves.get(f"grad_norm_l{hidden + 1}")
+    if out_norm is None:
+        return []
+    found = []
+    for layer in range(1, hidden + 1):
+        g = curves.get(f"grad_norm_l{layer}")
+        if g is None:
+            continue
+        with np.errstate(divide="ignore", invalid="ignore"):
+            ratio = g / out_norm
+        bad = np.flatnonzero(np.isfinite(ratio) & (ratio < BN_COLLAPSE_RATIO) & (out_norm > 0))
+        if bad.size:
+            e = int(bad[0])
+            found.append(f"batch-normalized layer l{layer}: gradient collapsed from epoch {e + 1} "
+                         f"(|g| {g[e]:.2e} vs output layer {out_norm[e]:.2e}); "
+                         "are the batch rows nearly identical?")
+    return found

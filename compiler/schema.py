@@ -22,7 +22,7 @@ from __future__ import annotations
 
 from typing import Any
 
-from compiler.expand import field_paths
+from compiler.paths import field_paths
 from compiler.spec import METRICS, Spec
 
 __all__ = ["spec_schema", "DRAFT", "SCHEMA_ID"]

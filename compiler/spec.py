@@ -23,7 +23,7 @@ __all__ = [
     "L2", "KL", "BCE", "Huber", "Divergence", "NoNorm", "BatchNorm", "LayerNorm", "Normalization",
     "Dropout", "Regularization", "Constant", "Exponential", "Cosine", "WarmupCosine", "Schedule",
     "SGD", "Adam", "AdamW", "RMSProp", "Optimizer", "Training", "Axis", "ListedVariant",
-    "Ablation", "Spec", "METRICS", "CLASSIFICATION_GENERATORS", "REGRESSION_GENERATORS",
+    "Ablation", "Spec", "METRICS", "CLASSIFICATION_GENERATORS",
     "task_of", "classes_of",
 ]
 
@@ -38,13 +38,11 @@ CLASSIFICATION_METRICS = {"val_accuracy", "val_divergence", "train_divergence"}
 REGRESSION_METRICS = {"val_rmse", "val_divergence", "train_divergence"}
 
 CLASSIFICATION_GENERATORS = ("rings", "spirals", "blobs")
-REGRESSION_GENERATORS = ("friedman1", "sines")
 
 Rate = Annotated[float, Field(ge=0.0, lt=1.0, allow_inf_nan=False)]
 Positive = Annotated[float, Field(gt=0.0, allow_inf_nan=False)]
 NonNegative = Annotated[float, Field(ge=0.0, allow_inf_nan=False)]
 Fraction = Annotated[float, Field(ge=0.0, le=1.0, allow_inf_nan=False)]
-Count = Annotated[int, Field(ge=1)]
 # data.standardize came after study hashes were fixed: at its default (true) it is left out of
 # every dump, hence of the canonical JSON, so specs written before it keep their study hash.
 Standardize = Annotated[bool, Field(exclude_if=lambda v: v is True)]
@@ -130,7 +128,7 @@ class SyntheticData(Strict):
 
     @model_validator(mode="after")
     def _shape(self):
-        # "@key: message" lines: expand.pydantic_problems locates each at its key.
+        # "@key: message" lines: problems.pydantic_problems locates each at its key.
         problems = []
         if self.generator == "friedman1" and self.features < 5:
             problems.append("@features: friedman1 needs features >= 5 (its target uses the first five)")
@@ -577,7 +575,7 @@ class Spec(Strict):
 
     @model_validator(mode="after")
     def _coherent(self):
-        # Cross-section rules. Each problem names the key to change; expand.pydantic_problems
+        # Cross-section rules. Each problem names the key to change; problems.pydantic_problems
         # reads the "@key: message" lines back into separate, located problems.
         problems: list[tuple[str, str]] = []
         task = task_of(self.data)

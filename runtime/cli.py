@@ -2,7 +2,7 @@
 
 Contract:
 
-- a known user error (:data:`USER_ERRORS`, e.g. a :class:`SpecError`) raised by any command is
+- a user error (a :class:`~compiler.errors.UserError`, e.g. a :class:`SpecError`) raised by any command is
   printed to stderr, one problem per line (``FILE:LINE: key.path: what is wrong``), and the exit
   code is 2, without a traceback; anything else is a bug and surfaces as one;
 - output meant for programs (``--format json``) goes to stdout alone;
@@ -25,22 +25,16 @@ try:
     import typer
     from typer.core import TyperCommand, TyperGroup
 
-    from compiler.errors import SpecError, printable
-    from runtime.store import ResultSetError
+    from compiler.errors import UserError, printable
 except KeyboardInterrupt:  # Ctrl-C while lesion starts: nothing is computed yet, nothing to keep
     sys.stderr.write("interrupted\n")
     raise SystemExit(130) from None
 
-__all__ = ["app", "main", "USER_ERRORS"]
+__all__ = ["app", "main"]
 
 
-class UsageError(Exception):
+class UsageError(UserError):
     """Arguments that do not fit together (a one-line message, exit 2)."""
-
-
-# Errors that mean "the input is wrong", not "lesion is wrong" (plus compiler.data.DataError,
-# see _loaded_user_errors).
-USER_ERRORS: tuple[type[Exception], ...] = (SpecError, ResultSetError, UsageError)
 
 
 class _Group(TyperGroup):
@@ -53,9 +47,7 @@ class _Group(TyperGroup):
         except KeyboardInterrupt:  # Ctrl-C outside `run`'s own handling: nothing of lesion's is half-written
             typer.echo("interrupted", err=True)
             raise typer.Exit(130) from None
-        except Exception as err:
-            if not isinstance(err, USER_ERRORS + _loaded_user_errors()):
-                raise
+        except UserError as err:
             for line in str(err).splitlines() or [type(err).__name__]:
                 typer.echo(printable(line), err=True)
             raise typer.Exit(2) from None
@@ -102,17 +94,6 @@ app = typer.Typer(
 def _main(version: bool = typer.Option(False, "--version", callback=_version, is_eager=True,
                                        help="Print lesion's version and exit.")) -> None:
     pass
-
-
-def _loaded_user_errors() -> tuple[type[Exception], ...]:
-    # compiler.data, runtime.cluster, runtime.guard, runtime.execute and runtime.environment are
-    # only in sys.modules when a command needed data, a cluster, a resource estimate, the compile
-    # cache or jax's settings; then their errors count too.
-    found = [getattr(sys.modules[name], error) for name, error in
-             (("compiler.data", "DataError"), ("runtime.cluster", "ClusterError"),
-              ("runtime.guard", "ResourceError"), ("runtime.execute", "CacheError"),
-              ("runtime.environment", "SettingError")) if name in sys.modules]
-    return tuple(found)
 
 
 class Format(str, Enum):
@@ -184,7 +165,7 @@ def _check_report(study) -> dict:
 
 
 def _print_check_table(study, wide: bool) -> None:
-    from compiler.expand import format_value
+    from compiler.labels import label_parts
     from runtime.formats import Fit, render
 
     structures = sorted({v.structure for v in study.variants}, key=[v.structure for v in study.variants].index)
@@ -196,7 +177,7 @@ def _print_check_table(study, wide: bool) -> None:
     seeds = _seeds_text(study.seeds)
     rows = []
     for v in study.variants:
-        changes = ", ".join(f"{k}={format_value(x)}" for k, x in v.changes.items()) or "(nothing: the base)"
+        changes = ", ".join(label_parts(v.changes)) or "(nothing: the base)"
         # A generated label already spells its changes out; the column then stays empty (and,
         # when every label is generated, is left out).
         rows.append({"#": v.index, "label": v.label, "changes": "" if changes == v.label else changes,
@@ -439,27 +420,24 @@ def show(
     findings = _print_audit(audit(rs))
     name = rs.tree["study"]["name"]
     metrics = metric or [rs.headline]
-    try:
-        if curves:
-            rows, columns = curve_rows(rs, metric or None)
-            fit = CURVES_FIT
-            title = f"{name} ({rs.study_hash[:12]}): per-epoch means over ok runs"
-        elif runs:
-            rows, columns = run_rows(rs, metrics)
-            fit = dataclasses.replace(RUNS_FIT, keep=RUNS_FIT.keep + tuple(metrics))
-            title = f"{name} ({rs.study_hash[:12]}): {len(rows)} runs, final {', '.join(metrics)}"
+    if curves:
+        rows, columns = curve_rows(rs, metric or None)
+        fit = CURVES_FIT
+        title = f"{name} ({rs.study_hash[:12]}): per-epoch means over ok runs"
+    elif runs:
+        rows, columns = run_rows(rs, metrics)
+        fit = dataclasses.replace(RUNS_FIT, keep=RUNS_FIT.keep + tuple(metrics))
+        title = f"{name} ({rs.study_hash[:12]}): {len(rows)} runs, final {', '.join(metrics)}"
+    else:
+        rows = [{"variant": r["variant"], "metric": m, **r} for m in metrics for r in summary_rows(rs, m)]
+        if len(metrics) > 1:
+            order = [r["variant"] for r in rows]
+            rows.sort(key=lambda r: order.index(r["variant"]))
+            columns = ["variant", "metric", *SUMMARY_COLUMNS[1:]]
+            fit = dataclasses.replace(SUMMARY_FIT, keep=SUMMARY_FIT.keep + ("metric",))
         else:
-            rows = [{"variant": r["variant"], "metric": m, **r} for m in metrics for r in summary_rows(rs, m)]
-            if len(metrics) > 1:
-                order = [r["variant"] for r in rows]
-                rows.sort(key=lambda r: order.index(r["variant"]))
-                columns = ["variant", "metric", *SUMMARY_COLUMNS[1:]]
-                fit = dataclasses.replace(SUMMARY_FIT, keep=SUMMARY_FIT.keep + ("metric",))
-            else:
-                columns, fit = SUMMARY_COLUMNS, SUMMARY_FIT
-            title = f"{name} ({rs.study_hash[:12]}): final {', '.join(metrics)} across seeds (mean, sd, 95% CI)"
-    except ValueError as err:
-        raise UsageError(str(err)) from None
+            columns, fit = SUMMARY_COLUMNS, SUMMARY_FIT
+        title = f"{name} ({rs.study_hash[:12]}): final {', '.join(metrics)} across seeds (mean, sd, 95% CI)"
     extra = {"findings": findings}
     if format in (Output.json, Output.csv):
         # Programs get the varied keys' values as fields of their own, not only inside the label.
@@ -792,7 +770,7 @@ def plot(
 
       lesion plot results/A --against results/B
     """
-    from runtime.plot import PlotError, default_path, plot_diff, plot as draw, save_figure  # imports matplotlib
+    from runtime.plot import default_path, plot_diff, plot as draw, save_figure  # imports matplotlib
     from runtime.store import open_result_set
 
     if against is not None and baseline is not None:
@@ -800,16 +778,13 @@ def plot(
     if against is None and margin is not None:
         raise UsageError("--margin applies to a diff: give --against B")
     rs = open_result_set(result)
-    try:
-        if against is not None:
-            fig = plot_diff(rs, open_result_set(against), metrics=metric or None, margin=margin)
-            target = out or rs.path / "plots" / f"diff-{Path(against).resolve().name}.png"
-        else:
-            fig = draw(rs, kind.value, metrics=metric or None, baseline=baseline)
-            target = out or default_path(rs, kind.value)
-        typer.echo(str(save_figure(fig, target)))
-    except PlotError as err:
-        raise UsageError(str(err)) from None
+    if against is not None:
+        fig = plot_diff(rs, open_result_set(against), metrics=metric or None, margin=margin)
+        target = out or rs.path / "plots" / f"diff-{Path(against).resolve().name}.png"
+    else:
+        fig = draw(rs, kind.value, metrics=metric or None, baseline=baseline)
+        target = out or default_path(rs, kind.value)
+    typer.echo(str(save_figure(fig, target)))
 
 
 @app.command()
@@ -828,18 +803,14 @@ def report(
 
       lesion report results/cold-chain-7da471c81b78 --baseline "normalization.kind=none, regularization.dropout.rate=0.0" -o review.html
     """
-    from runtime.plot import PlotError  # imports matplotlib
-    from runtime.report import render_report
+    from runtime.report import render_report  # imports matplotlib
     from runtime.store import open_result_set
 
     rs = open_result_set(result)
     target = out or rs.path / "report.html"
     if target.suffix.lower() not in (".html", ".htm"):
         raise UsageError(f"-o {target}: expected a file ending in .html")
-    try:
-        page = render_report(rs, baseline)
-    except PlotError as err:
-        raise UsageError(str(err)) from None
+    page = render_report(rs, baseline)
     try:
         target.parent.mkdir(parents=True, exist_ok=True)
         target.write_text(page, encoding="utf-8")

@@ -15,7 +15,7 @@ in any order — whose groups run as tasks of a ``dask.distributed`` scheduler:
   the client computes nothing, but replaying those runs later needs the workers' environment;
 - one group is one task, submitted unchanged (its recorded lane width and padding), so a run's
   bits do not depend on which worker, or how many, computed it. The task enables the compile
-  cache (the program store) on the worker and calls :func:`runtime.execute.execute_group` with the worker's own
+  cache (:mod:`runtime.programs`) on the worker and calls :func:`runtime.execute.execute_group` with the worker's own
   captured environment, which is what the run records;
 - each distinct data set is scattered once (``broadcast=True``), not sent per task: it reaches
   each worker once, by the scatter or from a peer that holds it. Should every worker holding it
@@ -43,13 +43,15 @@ import re
 import uuid
 from typing import Callable
 
+from compiler.errors import UserError
 from runtime.environment import capture, differences, fingerprint
-from runtime.execute import GroupResult, enable_compile_cache, execute_group
+from runtime.execute import GroupResult, execute_group
+from runtime.programs import enable_compile_cache
 
 __all__ = ["ClusterError", "DaskExecutor", "parse_address", "worker_environment"]
 
 
-class ClusterError(Exception):
+class ClusterError(UserError):
     """A cluster that cannot be used as asked, with a one-line message a person can act on."""
 
 

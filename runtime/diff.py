@@ -32,7 +32,8 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from compiler.errors import SpecError, printable
-from compiler.expand import BASE_LABEL, expand, format_value
+from compiler.expand import expand
+from compiler.labels import BASE_LABEL, format_value, label_parts
 from compiler.hashing import variant_payload
 from compiler.loader import load_text
 from compiler.spec import METRICS
@@ -134,10 +135,8 @@ def _no_variant(labels, given, option, why, indices=None):
 def _values(rs: ResultSet, cols: dict, variant_hash: str, metric: str) -> dict[int, float | None]:
     """Final values of a variant's runs by seed (None for a diverged run); ``cols`` is
     ``rs.runs.to_pydict()``, converted once per result set."""
+    rs.require([metric])
     col = f"final_{metric}"
-    if col not in cols:
-        have = sorted(c[len("final_"):] for c in cols if c.startswith("final_") and c[6:] in METRICS)
-        raise ResultSetError(f"{rs.path}: metric {metric!r} is not stored (it has: {', '.join(have)})")
     return {cols["seed"][i]: (cols[col][i] if cols["status"][i] == "ok" else None)
             for i, h in enumerate(cols["variant_hash"]) if h == variant_hash}
 
@@ -342,7 +341,7 @@ def diff_design(rs: ResultSet, *, axis: str | None = None, metrics: list[str] | 
             step = f"{format_value(levels[i])} → {format_value(levels[j])}"   # the question names the axis
             cells_i, cells_j = [], []
             for combo in itertools.product(*(vals for _, vals in others)):
-                at = ", ".join(f"{o}={format_value(x)}" for (o, _), x in zip(others, combo))
+                at = ", ".join(label_parts({o: x for (o, _), x in zip(others, combo)}))
                 ci, cj = _cell(keys, {k: levels[i]}, combo), _cell(keys, {k: levels[j]}, combo)
                 cells_i.append(ci)
                 cells_j.append(cj)

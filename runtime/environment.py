@@ -17,6 +17,8 @@ from functools import cache
 from importlib import metadata
 from pathlib import Path
 
+from compiler.errors import UserError
+
 __all__ = ["capture", "numerics", "fingerprint", "differences", "source_digest", "check_settings", "SettingError"]
 
 # CPU features that decide which kernels XLA:CPU emits (and so the rounding of matmuls).
@@ -40,7 +42,7 @@ _NUMERICS_KEYS = ("lesion_sources", "python", "jax", "jaxlib", "optax", "numpy",
 _REFUSED = {"jax_disable_jit": False, "jax_numpy_rank_promotion": "allow", "jax_numpy_dtype_promotion": "standard"}
 
 
-class SettingError(Exception):
+class SettingError(UserError):
     """A jax setting lesion's programs cannot run under (a user error: exit 2)."""
 
 

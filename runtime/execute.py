@@ -9,40 +9,26 @@ of the compiler's per-epoch function, steps in ``lax.scan``) and called once per
 Python; the data stays on the device across epochs and only the per-epoch metrics come back.
 The program (:func:`compiler.build.compile_structure` of the group's variants) packs the lanes'
 knobs itself and decides which work its zero knobs let it leave out; programs compile with XLA's
-default options.
-The compiled executables of a structure are stored in the user's cache folder under a name
-hashed from everything they depend on (:func:`_program_path`), so a later invocation neither
-traces, lowers nor compiles them; it is a speed-up only — a stored program computes the same bits
-as a fresh compile (tested across processes), and replay always compiles afresh.
+default options. With the compile cache on, a structure's executables are loaded from and stored
+in :mod:`runtime.programs`; replay always compiles afresh.
 """
 
 from __future__ import annotations
 
-import hashlib
-import json
-import os
-import pickle
-import tempfile
 import time
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
-from pathlib import Path
 from typing import Callable
 
 import numpy as np
 
+from runtime import programs
 from runtime.plan import Group
 
-__all__ = ["GroupResult", "LaneResult", "execute_group", "InProcess", "enable_compile_cache", "cache_dir", "preparation",
-           "CacheError", "cache_limit_bytes",
-           "BN_COLLAPSE_RATIO"]
+__all__ = ["GroupResult", "LaneResult", "execute_group", "InProcess", "preparation"]
 
 # Options of the init program's compile (its bits are a function of them, like of the code).
 INIT_COMPILE_OPTIONS = {"xla_backend_optimization_level": 0}
-
-# A batch-normalized layer whose gradient norm falls below this fraction of the output layer's
-# has stopped learning: its batch statistics have (nearly) no spread left.
-BN_COLLAPSE_RATIO = 1e-4
 
 
 @dataclass
@@ -69,56 +55,13 @@ class GroupResult:
     environment: dict
 
 
-def cache_dir() -> Path:
-    """The compile cache folder: ``$LESION_CACHE_DIR``, else ``$XDG_CACHE_HOME/lesion/xla``,
-    else ``~/.cache/lesion/xla``. Trusted local state: it holds compiled machine code."""
-    if os.environ.get("LESION_CACHE_DIR"):
-        return Path(os.environ["LESION_CACHE_DIR"])
-    base = os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache")
-    return Path(base) / "lesion" / "xla"
-
-
-class CacheError(Exception):
-    """The compile cache's setting is unusable (a user error: exit 2)."""
-
-
-def cache_limit_bytes() -> int:
-    """How much the stored programs may occupy: ``$LESION_CACHE_MAX_MB`` megabytes, else 2048."""
-    raw = os.environ.get("LESION_CACHE_MAX_MB", "").strip()
-    try:
-        mb = float(raw) if raw else 2048.0
-    except ValueError:
-        mb = -1.0
-    if not mb > 0 or mb == float("inf"):
-        raise CacheError(f"LESION_CACHE_MAX_MB={raw!r}: expected a positive number of megabytes "
-                         "for the compile cache (e.g. LESION_CACHE_MAX_MB=2048), or leave it unset")
-    return int(mb * 2**20)
-
-
-_cache_enabled = False
-
-
-def enable_compile_cache() -> None:
-    """Let this process load and store compiled programs in :func:`cache_dir` (``lesion run`` and
-    cluster workers do; replay never does). Checks the cache's size limit first."""
-    global _cache_enabled
-    import jax
-
-    cache_limit_bytes()
-    # JAX's own persistent cache stays off: an executable it loaded from disk serializes into an
-    # entry that fails when run in another process (measured: "Function … not found"), and the
-    # program store below already skips more work (tracing and lowering too).
-    jax.config.update("jax_enable_compilation_cache", False)
-    _cache_enabled = True
-
-
 # Compiled (init, epoch) per (structure, lane width, data signature, knobs zero in every lane), reused
 # by every group of a structure within one process.
 _programs: dict[tuple, tuple] = {}
 
 
 def _program_key(group: Group, dataset, zero: frozenset[str]) -> tuple:
-    return group.structure, group.lane_width, _data_signature(dataset), zero
+    return group.structure, group.lane_width, programs.data_signature(dataset), zero
 
 
 def preparation(groups: list[Group], data: dict, environment: dict) -> dict[str, str]:
@@ -135,111 +78,12 @@ def preparation(groups: list[Group], data: dict, environment: dict) -> dict[str,
         key = _program_key(g, data[g.group_id], zero)
         if key in seen:
             out[g.group_id] = "reuse"
-        elif _cache_enabled and _program_path(g, data[g.group_id], zero, environment).exists():
+        elif programs.enabled() and programs.program_path(g, data[g.group_id], zero, environment).exists():
             out[g.group_id] = "load"
         else:
             out[g.group_id] = "compile"
         seen.add(key)
     return out
-
-
-def _data_signature(dataset) -> tuple:
-    """What a structure's programs know of its data: shapes, dtypes, task and class count (the
-    rows themselves are arguments, so data of the same signature share the programs)."""
-    return (dataset.x.shape, str(dataset.x.dtype), dataset.y.shape, str(dataset.y.dtype), dataset.task,
-            dataset.classes)
-
-
-def _program_path(group: Group, dataset, zero: frozenset[str], environment: dict) -> Path:
-    """Where the compiled programs of a structure live in the compile cache. The name hashes
-    everything the programs are a function of: the numerics environment (lesion's sources among
-    them), jax's configuration, the structure, the lane width, the data's signature and the knobs
-    that are zero in every lane."""
-    import jax
-
-    from runtime import environment as env
-
-    config = {k: repr(v) for k, v in sorted(jax.config.values.items()) if "cache" not in k}
-    parts = [env.fingerprint(environment), config, group.structure, group.lane_width,
-             _data_signature(dataset), sorted(zero)]
-    digest = hashlib.sha256(json.dumps(parts, sort_keys=True, default=str).encode()).hexdigest()
-    return cache_dir() / "programs" / f"{digest}.pkl"
-
-
-def _load_programs(path: Path):
-    """The stored (init, epoch) executables, or None when absent or unreadable (then they are
-    compiled again and the entry rewritten). A loaded entry counts as just used."""
-    from jax.experimental.serialize_executable import deserialize_and_load
-
-    try:
-        with open(path, "rb") as fh:
-            stored = pickle.load(fh)
-        programs = tuple(deserialize_and_load(*entry) for entry in stored)
-    except Exception:  # noqa: BLE001 - a damaged or foreign entry only costs a compile
-        return None
-    try:
-        os.utime(path)
-    except OSError:
-        pass
-    return programs
-
-
-def _store_programs(path: Path, programs) -> None:
-    """Write an entry atomically, then drop the least recently used entries beyond the limit."""
-    from jax.experimental.serialize_executable import serialize
-
-    tmp = None
-    try:
-        path.parent.mkdir(parents=True, exist_ok=True)
-        blob = pickle.dumps([serialize(p) for p in programs], protocol=pickle.HIGHEST_PROTOCOL)
-        fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=".tmp-")
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(blob)
-        os.replace(tmp, path)
-        tmp = None
-        _prune(path.parent, cache_limit_bytes(), keep=path)
-    except OSError:
-        pass  # a cache that cannot be written only costs a compile next time
-    finally:
-        if tmp is not None:
-            try:
-                os.unlink(tmp)
-            except OSError:
-                pass
-
-
-# A temporary file this old is a write that was killed, not one in progress in another process.
-_STALE_TMP_SECONDS = 3600
-
-
-def _prune(folder: Path, limit: int, keep: Path) -> None:
-    """Delete entries, least recently used first, until the folder holds at most ``limit`` bytes
-    (``keep``, the entry just written, stays even if it alone is larger), and the temporary files
-    of killed writes."""
-    entries, now = [], time.time()
-    for entry in folder.glob(".tmp-*"):
-        try:
-            if now - entry.stat().st_mtime > _STALE_TMP_SECONDS:
-                entry.unlink()
-        except OSError:
-            continue
-    for entry in folder.glob("*.pkl"):
-        try:
-            st = entry.stat()
-        except OSError:
-            continue  # removed by another process meanwhile
-        entries.append((st.st_mtime, st.st_size, entry))
-    total = sum(size for _, size, _ in entries)
-    for _, size, entry in sorted(entries, key=lambda e: (e[0], e[2].name)):
-        if total <= limit:
-            break
-        if entry == keep:
-            continue
-        try:
-            entry.unlink()
-        except OSError:
-            continue
-        total -= size
 
 
 def _compiled(group: Group, program, dataset, knobs, seeds, reuse: bool, environment: dict):
@@ -257,8 +101,8 @@ def _compiled(group: Group, program, dataset, knobs, seeds, reuse: bool, environ
     # With the compile cache on, the executables themselves are stored under a name derived
     # without tracing: a second invocation skips tracing and lowering too (JAX's own cache is
     # keyed by the lowered program, so it cannot).
-    path = _program_path(group, dataset, zero, environment) if reuse and _cache_enabled else None
-    loaded = _load_programs(path) if path is not None and path.exists() else None
+    path = programs.program_path(group, dataset, zero, environment) if reuse and programs.enabled() else None
+    loaded = programs.load_programs(path) if path is not None and path.exists() else None
     if loaded is not None:
         init_c, epoch_c = loaded
     else:
@@ -275,7 +119,7 @@ def _compiled(group: Group, program, dataset, knobs, seeds, reuse: bool, environ
             epoch_c = epoch.compile()
             init_c = pending.result()
         if path is not None:
-            _store_programs(path, (init_c, epoch_c))
+            programs.store_programs(path, (init_c, epoch_c))
     # Picking fields of the carry needs no program: vmap without jit compiles nothing.
     status, params = jax.vmap(program.status), jax.vmap(program.params)
     seconds = time.perf_counter() - t0
@@ -294,6 +138,7 @@ def execute_group(group: Group, dataset, environment: dict,
     import jax
 
     from compiler.build import compile_structure, param_digest
+    from compiler.normalization import diagnose
 
     # Padding copies a real run, so it never adds a non-zero to a knob that is 0 in every run.
     lanes = list(group.runs) + [group.runs[0]] * group.padding
@@ -326,7 +171,7 @@ def execute_group(group: Group, dataset, environment: dict,
             run_id=run.run_id, lane=i, curves=curves,
             diverged_at=int(at[i]) + 1 if bool(diverged[i]) else None,
             param_digest=param_digest(lane_params),
-            warnings=_warnings(run.variant.spec, curves),
+            warnings=diagnose(run.variant.spec.normalization.kind, len(run.variant.spec.model.widths), curves),
             arrays=_lane_arrays(lane_params, carry, i) if keep_arrays else None,
         ))
     return GroupResult(group.group_id, group.lane_width, names, results, compile_seconds, run_seconds, environment)
@@ -372,27 +217,3 @@ class InProcess:
                 progress("group", group=g, todo=len(g.runs))
             yield g, execute_group(g, data[g.group_id], environment,
                                    on_epoch=on_epoch if check or progress else None)
-
-
-def _warnings(spec, curves: dict[str, np.ndarray]) -> list[str]:
-    """Batch-normalized layers whose gradient collapsed, judged from per-layer gradient norms."""
-    if spec.normalization.kind != "batch":
-        return []
-    hidden = len(spec.model.widths)
-    out_norm = curves.get(f"grad_norm_l{hidden + 1}")
-    if out_norm is None:
-        return []
-    found = []
-    for layer in range(1, hidden + 1):
-        g = curves.get(f"grad_norm_l{layer}")
-        if g is None:
-            continue
-        with np.errstate(divide="ignore", invalid="ignore"):
-            ratio = g / out_norm
-        bad = np.flatnonzero(np.isfinite(ratio) & (ratio < BN_COLLAPSE_RATIO) & (out_norm > 0))
-        if bad.size:
-            e = int(bad[0])
-            found.append(f"batch-normalized layer l{layer}: gradient collapsed from epoch {e + 1} "
-                         f"(|g| {g[e]:.2e} vs output layer {out_norm[e]:.2e}); "
-                         "are the batch rows nearly identical?")
-    return found

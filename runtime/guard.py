@@ -48,6 +48,7 @@ import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 
+from compiler.errors import UserError
 from compiler.spec import train_size
 from runtime.plan import Group, lane_bytes
 
@@ -117,7 +118,7 @@ class Calibration:
                            blend(self.group_seconds, rest / groups if groups else None), self.runs + 1)
 
 
-class ResourceError(Exception):
+class ResourceError(UserError):
     """A study that cannot fit this machine as asked; the message says what to change."""
 
 

@@ -32,7 +32,7 @@ What is drawn:
   noise into contrast.
 - ``diff``: per matched variant B − A with its 95 % interval, coloured by the verdict.
 
-Colours: :data:`PALETTE` (:data:`PALETTE_NAME`), ten colours chosen for this project so that every pair
+Colours: :data:`PALETTE`, ten colours chosen for this project so that every pair
 stays at least 20 CIELAB ΔE apart under simulated protanopia, deuteranopia and tritanopia;
 lines also differ by marker, so colour is never the only cue.
 """
@@ -56,18 +56,17 @@ from matplotlib.lines import Line2D  # noqa: E402
 from matplotlib.patches import Rectangle  # noqa: E402
 from matplotlib.transforms import blended_transform_factory  # noqa: E402
 
-from compiler.expand import format_value  # noqa: E402
+from compiler.errors import UserError  # noqa: E402
+from compiler.labels import BASE_LABEL, format_value, label_parts, variant_label  # noqa: E402
 from compiler.spec import METRICS  # noqa: E402
 from runtime.show import curve_rows, summary_rows  # noqa: E402
 from runtime.stats import summarize  # noqa: E402
 from runtime.store import ResultSet  # noqa: E402
 
-__all__ = ["PlotError", "PALETTE", "PALETTE_NAME", "SEQUENTIAL", "KINDS", "DPI", "LOG_SPAN",
+__all__ = ["PlotError", "PALETTE", "SEQUENTIAL", "KINDS", "DPI", "LOG_SPAN",
            "GAP_SCALE", "FACET_OVER", "plot", "plot_curves", "plot_arms", "plot_grid", "plot_diff", "save_figure", "svg_markup", "default_path",
            "short_labels"]
 
-# A plain description, not a brand: what the colours are for.
-PALETTE_NAME = "ten colours apart under colour-vision deficiency"
 PALETTE = ("#0c5886", "#c7680f", "#33948d", "#ce2c66", "#8dbb5a",
            "#7235ba", "#8c5a2b", "#54c0fd", "#eda217", "#454735")
 MARKERS = ("o", "s", "^", "D", "v", "P", "X", "<", ">", "h")
@@ -89,7 +88,7 @@ _GENERIC_LEAVES = {"kind", "rate", "delta", "momentum", "epsilon", "fraction", "
                    "neurons", "depth"}
 
 
-class PlotError(ValueError):
+class PlotError(UserError, ValueError):
     """A plot that cannot be drawn from this input, with a message a person can act on."""
 
 
@@ -120,11 +119,10 @@ def short_labels(rs: ResultSet) -> dict[str, str]:
     short = {k: _short_key(k, keys) for k in keys}
     out = {}
     for label, ch in changes.items():
-        derived = ", ".join(f"{k}={format_value(v)}" for k, v in ch.items()) or "base"
-        if label != derived:
+        if label != variant_label(ch):
             out[label] = "\n".join(textwrap.wrap(label, _LABEL_WIDTH)) or label
             continue
-        parts = [f"{short[k]}={format_value(v)}" for k, v in ch.items()] or ["base"]
+        parts = label_parts(ch, short.__getitem__) or [BASE_LABEL]
         text = ", ".join(parts)
         out[label] = text if len(text) <= _LABEL_WIDTH else "\n".join(parts)
     return out
@@ -188,11 +186,8 @@ def _seed_counts(runs: dict[str, list[dict]]) -> str:
 
 
 def _metrics_of(rs: ResultSet, metrics: list[str] | None) -> list[str]:
-    have = [c[len("final_"):] for c in rs.runs.column_names if c.startswith("final_")]
     metrics = list(dict.fromkeys(metrics or [rs.headline]))
-    for m in metrics:
-        if m not in have:
-            raise PlotError(f"--metric {m!r} is not in this result set (it has: {', '.join(sorted(have))})")
+    rs.require(metrics)
     return metrics
 
 
@@ -237,7 +232,7 @@ def _facets(rs: ResultSet, labels: list[str], names: dict[str, str]):
               for v in axes[0]["values"]]
     rest = {label: tuple(json.dumps(changes[label].get(k)) for k in keys[1:]) for label in labels}
     levels = list(dict.fromkeys(rest[label] for label in labels))
-    legend = {label: ", ".join(f"{short[k]}={format_value(changes[label].get(k))}" for k in keys[1:])
+    legend = {label: ", ".join(label_parts({k: changes[label].get(k) for k in keys[1:]}, short.__getitem__))
               for label in labels}
     return [p for p in panels if p[1]], {label: levels.index(rest[label]) for label in labels}, legend
 
@@ -246,10 +241,7 @@ def plot_curves(rs: ResultSet, metrics: list[str] | None = None) -> Figure:
     """Per-epoch mean ± 1 sd over ok seeds of each metric; train dashed, validation solid; one row
     of panels per metric family (``train_divergence`` and ``val_divergence`` share one), one
     column per level of a grid's first axis when there are many variants (:func:`_facets`)."""
-    have = [c for c in rs.curves.column_names if c not in ("run_id", "variant_label", "seed", "epoch")]
-    for m in metrics or []:
-        if m not in have:
-            raise PlotError(f"--metric {m!r} has no curves in this result set (it has: {', '.join(have)})")
+    rs.require(metrics or [], curves=True)
     rows, columns = curve_rows(rs, metrics or None)
     metrics = columns[3:]  # after variant, epoch, runs
     families = list(dict.fromkeys(_family(m) for m in metrics))

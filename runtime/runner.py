@@ -23,8 +23,8 @@ import pyarrow as pa
 
 from compiler.hashing import canonical_json, lookup, variant_payload
 from compiler.spec import METRICS
-from runtime import __version__, environment, execute, guard
-from runtime.execute import GroupResult, InProcess, enable_compile_cache
+from runtime import __version__, environment, execute, guard, programs
+from runtime.execute import GroupResult, InProcess
 from runtime.plan import Group, plan
 from runtime.store import (STAGING, ResultSet, ResultSetError, column, open_result_set, refuse_link, result_dir,
                            write_results, writer_lock)
@@ -239,7 +239,7 @@ def _refuse_other_width(todo: list[Group], widths: dict[str, int], lanes: int | 
 
 
 def _timing_path() -> Path:
-    return execute.cache_dir() / "timing.json"
+    return programs.cache_dir() / "timing.json"
 
 
 def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = False,
@@ -265,7 +265,7 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
 
     ``progress(event, **info)`` receives ("plan", groups=…, runs=…, estimate=…), ("group", group=…,
     todo=…), ("epoch", done=…, total=…), ("stored", group=…, result=…)."""
-    enable_compile_cache()
+    programs.enable_compile_cache()
     environment.check_settings()
     env = environment.capture()
     # Stored runs are reused when they match the environment that will compute the missing ones

@@ -35,11 +35,9 @@ def _variants(rs: ResultSet) -> list[tuple[int, str]]:
 
 def summary_rows(rs: ResultSet, metric: str | None = None) -> list[dict]:
     metric = metric or rs.headline
+    rs.require([metric])
     cols = rs.runs.to_pydict()
     col = f"final_{metric}"
-    if col not in cols:
-        have = sorted(c[len("final_"):] for c in cols if c.startswith("final_"))
-        raise ValueError(f"metric {metric!r} is not in this result set (it has: {', '.join(have)})")
     rows = []
     for _, label in _variants(rs):
         idx = [i for i, lab in enumerate(cols["variant_label"]) if lab == label]
@@ -65,9 +63,7 @@ def curve_rows(rs: ResultSet, metrics: list[str] | None = None) -> tuple[list[di
     headline = rs.headline
     default = [m for m in (headline, "train_divergence", "val_divergence") if m in curves]
     metrics = metrics or list(dict.fromkeys(default))
-    for m in metrics:
-        if m not in curves:
-            raise ValueError(f"metric {m!r} is not in this result set's curves")
+    rs.require(metrics, curves=True)
     rows = []
     for _, label in _variants(rs):
         idx = [i for i, (lab, rid) in enumerate(zip(curves["variant_label"], curves["run_id"]))
@@ -85,11 +81,8 @@ def curve_rows(rs: ResultSet, metrics: list[str] | None = None) -> tuple[list[di
 def run_rows(rs: ResultSet, metrics: list[str]) -> tuple[list[dict], list[str]]:
     """One row per stored run: its id (what ``lesion replay --run`` takes), seed, status and final
     values."""
+    rs.require(metrics)
     cols = rs.runs.to_pydict()
-    for m in metrics:
-        if f"final_{m}" not in cols:
-            have = sorted(c[len("final_"):] for c in cols if c.startswith("final_"))
-            raise ValueError(f"metric {m!r} is not in this result set (it has: {', '.join(have)})")
     order = sorted(range(len(cols["run_id"])), key=lambda i: (cols["variant_index"][i], cols["seed"][i]))
     rows = [{"run_id": cols["run_id"][i], "variant": cols["variant_label"][i], "seed": cols["seed"][i],
              "status": cols["status"][i], "diverged_at": cols["diverged_at"][i],

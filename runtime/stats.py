@@ -45,14 +45,13 @@ from scipy import stats as sps
 __all__ = ["Summary", "Comparison", "summarize", "compare", "sign_flip_pvalue", "adjust", "family_alpha",
            "interval", "decide", "tost_pvalue", "power_paired", "detectable_difference", "seeds_needed",
            "improvement", "interaction_test", "MIN_PER_SIDE", "EXACT_MAX_PAIRS", "RANDOM_SIGN_PATTERNS",
-           "VERDICTS", "POWER"]
+           "POWER"]
 
 MIN_PER_SIDE = 3
 EXACT_MAX_PAIRS = 16           # 2^16 = 65 536 sign patterns: exhaustive enumeration stays cheap
 RANDOM_SIGN_PATTERNS = 65_535  # beyond that, this many random patterns (so (1+k)/(1+R) has R+1 = 2^16)
 _PATTERN_SEED = 20_240_917     # fixed so that the same numbers always give the same p-value
 _CHUNK = 4096                  # random patterns per batch: memory stays bounded with thousands of seeds
-VERDICTS = ("better", "worse", "equivalent", "inconclusive", "no detectable change", "no test possible")
 POWER = 0.8                    # Cohen (1988): the conventional target power when planning seeds
 _BOOTSTRAP = 2000              # resamples of seeds for the interval of the probability of improvement
 

@@ -36,6 +36,8 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
+from compiler.errors import UserError
+
 __all__ = ["column", "ResultSet", "ResultSetError", "open_result_set", "result_dir", "write_results", "writer_lock",
            "META_KEYS", "DIGEST_KEYS", "RUNS", "CURVES", "STAGING", "refuse_link", "runs_digest", "curves_digest",
            "edits"]
@@ -80,7 +82,7 @@ def column(values, typ: pa.DataType) -> pa.Array:
     return pa.Array.from_buffers(typ, n, buffers, null_count=nulls)
 
 
-class ResultSetError(Exception):
+class ResultSetError(UserError):
     """A result set that cannot be read or written, with a message a person can act on."""
 
 
@@ -104,6 +106,19 @@ class ResultSet:
     def headline(self) -> str:
         """The study's headline metric."""
         return self.tree["study"]["metric"]
+
+    def require(self, metrics, curves: bool = False) -> None:
+        """Raise :class:`ResultSetError` naming the first of ``metrics`` this result set does not
+        store (as a final value per run, or with ``curves`` as a per-epoch curve), and what it has."""
+        if curves:
+            have = [c for c in self.curves.column_names if c not in ("run_id", "variant_label", "seed", "epoch")]
+        else:
+            have = [c[len("final_"):] for c in self.runs.column_names if c.startswith("final_")]
+        for m in metrics:
+            if m not in have:
+                what = "has no curves" if curves else "is not stored"
+                raise ResultSetError(f"{self.path}: metric {m!r} {what} in this result set "
+                                     f"(it has: {', '.join(sorted(have))})")
 
 
 def result_dir(out: Path, name: str, study_hash: str) -> Path:

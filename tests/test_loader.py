@@ -16,7 +16,8 @@ sys.path.insert(0, str(Path(__file__).parent))  # the suite imports in importlib
 import toml_layout  # noqa: E402
 from compiler.errors import SpecError  # noqa: E402
 from compiler.hashing import study_hash  # noqa: E402
-from compiler.loader import MAX_SPEC_BYTES, key_lines, line_of, load_study, load_text  # noqa: E402
+from compiler.loader import MAX_SPEC_BYTES, load_study, load_text  # noqa: E402
+from compiler.locate import key_lines, line_of  # noqa: E402
 
 ROOT = Path(__file__).parent.parent
 SPECS = sorted((ROOT / "specs").glob("*.toml"))

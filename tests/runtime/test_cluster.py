@@ -1,8 +1,9 @@
 """Groups on a Dask cluster (two worker processes on loopback) against the same study in process.
 
 The reference is the in-process run: a run's bits are a function of (variant, seed, lane width,
-software, machine) — measured fact, /work/shared/measured.md — so the same groups at the same
-widths on workers of the same environment must give the same bits, whoever computes them.
+software, machine) — measured: the same run vmapped 16, 4 or 1 wide differs from the 7th
+significant digit on, but not with its neighbours' values or its lane position (README,
+"Reproducibility") — so the same groups at the same widths on workers of the same environment must give the same bits, whoever computes them.
 """
 
 import json

@@ -41,7 +41,11 @@ def _start(spec: Path, out: Path, *extra: str) -> subprocess.Popen:
 def _state(folder: Path) -> dict[str, tuple[str, str]]:
     """run id -> (finished_at, param_digest) of what is stored; asserts the set is whole."""
     if not (folder / RUNS).exists():
-        assert not (folder / CURVES).exists() or pq.read_table(folder / CURVES).num_rows >= 0
+        # Curves are written before runs: a kill between the two leaves the first group's curves
+        # alone, which must still be whole (every run's every epoch) and are then not yet stored.
+        if (folder / CURVES).exists():
+            orphan_ids = pq.read_table(folder / CURVES).column("run_id").to_pylist()
+            assert all(orphan_ids.count(r) == EPOCHS for r in orphan_ids), "a torn curves file"
         return {}
     rs = open_result_set(folder)  # raises on a torn or mixed-up file
     ids = rs.runs.column("run_id").to_pylist()
@@ -100,9 +104,9 @@ def _kill_loop(spec: Path, out: Path, reference: dict, kills: int, rng: random.R
         figures["kills"] += 1
         try:
             after = _state(folder)
-        except Exception:  # noqa: BLE001 -- counted, then the assertion below fails the test
+        except Exception:  # noqa: BLE001 -- a torn set cannot be resumed from: the caller's check of the figures fails
             figures["torn"] += 1
-            raise
+            return figures
         figures["lost"] += sum(1 for r in before if r not in after)
         figures["recomputed"] += sum(1 for r, v in before.items() if r in after and after[r] != v)
     before = _state(folder)

@@ -38,8 +38,8 @@ def _grid(samples, features, hidden, classes, batch, epochs):
 
 
 @pytest.mark.parametrize("shape, measured", [
-    # /work/shared/measured.md, "Baselines for the same 16-run grid": fused (vmap × scan),
-    # execution only, 4 learning rates × 4 seeds, SGD momentum 0.9.
+    # Measured on a 2-core machine (jax 0.10.2, CPU), 2026-12-01: the 16-run grid (4 learning
+    # rates × 4 seeds, SGD momentum 0.9) as one fused program (vmap × scan), execution only.
     ((2048, 16, [32, 32], 4, 64, 20), 0.7),
     ((10240, 32, [128, 128], 10, 128, 10), 7.3),
 ])

@@ -12,7 +12,7 @@ import pytest
 
 from compiler import build
 from compiler.loader import load_study
-from runtime import environment, execute
+from runtime import environment, execute, programs
 from runtime.plan import plan
 from runtime.replay import replay
 from runtime.runner import datasets_for, run_study
@@ -70,7 +70,7 @@ def test_a_damaged_entry_is_compiled_again_and_rewritten(tmp_path, tiny_spec, st
     monkeypatch.setattr(execute, "_programs", {})
     second = run_study(loaded, tmp_path / "b").path
     _assert_same_bits(first, second)
-    assert entry.read_bytes() != b"not a program" and execute._load_programs(entry) is not None
+    assert entry.read_bytes() != b"not a program" and programs.load_programs(entry) is not None
 
 
 def test_the_entry_name_follows_sources_environment_width_and_zero_knobs(tmp_path, tiny_spec):
@@ -80,7 +80,7 @@ def test_the_entry_name_follows_sources_environment_width_and_zero_knobs(tmp_pat
     env = environment.capture()
 
     def name(g=group, env=env, zero=frozenset()):
-        return execute._program_path(g, data, zero, env).name
+        return programs.program_path(g, data, zero, env).name
 
     base = name()
     assert name() == base
@@ -94,7 +94,7 @@ def test_the_entry_name_follows_sources_environment_width_and_zero_knobs(tmp_pat
 def test_replay_never_takes_a_stored_program(tmp_path, tiny_spec, store, monkeypatch):
     loaded = load_study(tiny_spec(tmp_path, "ember", seeds=2, epochs=2))
     path = run_study(loaded, tmp_path / "a").path
-    monkeypatch.setattr(execute, "_load_programs", lambda p: pytest.fail("replay loaded a stored program"))
+    monkeypatch.setattr(programs, "load_programs", lambda p: pytest.fail("replay loaded a stored program"))
     report = replay(path)
     assert report.identical
 
@@ -123,7 +123,7 @@ def test_the_least_recently_used_entries_go_first_when_the_cache_is_over_its_lim
     (folder / ".tmp-killed").write_bytes(b"half an entry")       # a write killed long ago
     os.utime(folder / ".tmp-killed", (1_000_000, 1_000_000))
     (folder / ".tmp-writing").write_bytes(b"another process")   # a write in progress
-    execute._prune(folder, limit=2500, keep=folder / "a.pkl")
+    programs.prune(folder, limit=2500, keep=folder / "a.pkl")
     assert sorted(p.name for p in folder.glob("*.pkl")) == ["a.pkl", "b.pkl"]  # a: just written
     assert sorted(p.name for p in folder.glob(".tmp-*")) == [".tmp-writing"]
 
@@ -133,7 +133,7 @@ def test_loading_an_entry_marks_it_used(tmp_path, tiny_spec, store):
     run_study(loaded, tmp_path / "a")
     [entry] = store.glob("*.pkl")
     os.utime(entry, (1_000_000, 1_000_000))
-    assert execute._load_programs(entry) is not None
+    assert programs.load_programs(entry) is not None
     assert entry.stat().st_mtime > 1_000_000
 
 

@@ -87,7 +87,8 @@ def test_changed_metric_cell_is_reported_as_differing(stored, tmp_path):
 
 
 def test_changed_environment_is_named(stored):
-    # a lower instruction-set ceiling for XLA:CPU is a documented numerics change (measured.md)
+    # a lower instruction-set ceiling for XLA:CPU changes a run's bits (measured: AVX and AVX2+FMA
+    # differ; README, "Why the versions are pinned")
     env = {**os.environ, "PYTHONPATH": str(ROOT), "XLA_FLAGS": "--xla_cpu_max_isa=SSE4_2"}
     out = subprocess.run([sys.executable, "-c",
                           "import sys; from runtime.replay import replay; r = replay(sys.argv[1]);"

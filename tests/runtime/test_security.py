@@ -26,7 +26,7 @@ from hypothesis import strategies as st
 from compiler import data, divergences, normalization, optimizers, regularization, spec
 from compiler.errors import SpecError
 from compiler.loader import load_text
-from runtime.execute import cache_dir
+from runtime.programs import cache_dir
 from runtime.store import result_dir
 
 ROOT = Path(__file__).parents[2]
@@ -96,7 +96,7 @@ def test_no_dynamic_code_or_unpickling_in_the_source(source):
 # The one unpickling lesion does: compiled programs from the user's own compile cache (trusted
 # local state, documented in the README; JAX's executable serialization is itself a pickle). Its
 # folder comes from the environment, never from a spec or a result set.
-TRUSTED = {("execute.py", "stored = pickle.load(fh)")}
+TRUSTED = {("programs.py", "stored = pickle.load(fh)")}
 
 
 def _tiny_group():
@@ -111,12 +111,12 @@ def _tiny_group():
 
 
 def test_the_compile_cache_folder_cannot_be_chosen_by_a_spec():
-    import runtime.execute as execute
-    source = (ROOT / "runtime" / "execute.py").read_text()
+    import runtime.programs as programs
+    source = (ROOT / "runtime" / "programs.py").read_text()
     assert source.count("pickle.load") == 1
     body = source[source.index("def cache_dir"):source.index("_cache_enabled = False")]
     assert "os.environ" in body and "spec" not in body
-    assert execute._program_path(*_tiny_group()).is_relative_to(execute.cache_dir())
+    assert programs.program_path(*_tiny_group()).is_relative_to(programs.cache_dir())
 
 
 class _Payload:
