@@ -31,12 +31,15 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 __all__ = ["column", "ResultSet", "ResultSetError", "open_result_set", "result_dir", "write_results", "writer_lock",
-           "META_KEYS", "RUNS", "CURVES"]
+           "META_KEYS", "SEQUENTIAL", "RUNS", "CURVES"]
 
 RUNS = "runs.parquet"
 _TMP = ".parquet-tmp"
 CURVES = "curves.parquet"
 META_KEYS = ("spec_source", "spec_path", "canonical_json", "study_hash", "version", "environment")
+# Present only on a result set whose seeds were added by a stopping rule (``lesion run
+# --until-decided``): the rule, the looks and the seeds run (JSON), so show and diff use its inference.
+SEQUENTIAL = "sequential"
 
 
 
@@ -106,6 +109,8 @@ def _metadata(meta: dict) -> dict[bytes, bytes]:
         value = meta[key]
         text = value if isinstance(value, str) else json.dumps(value, sort_keys=True)
         out[f"lesion.{key}".encode()] = text.encode()
+    if meta.get(SEQUENTIAL) is not None:
+        out[f"lesion.{SEQUENTIAL}".encode()] = json.dumps(meta[SEQUENTIAL], sort_keys=True).encode()
     return out
 
 
@@ -121,6 +126,12 @@ def _read_meta(schema: pa.Schema, path: Path) -> dict:
         meta["environment"] = json.loads(meta["environment"])
     except json.JSONDecodeError as err:
         raise ResultSetError(f"{path}: the recorded environment is not valid JSON ({err})") from None
+    rule = raw.get(f"lesion.{SEQUENTIAL}".encode())
+    if rule is not None:
+        try:
+            meta[SEQUENTIAL] = json.loads(rule)
+        except json.JSONDecodeError as err:
+            raise ResultSetError(f"{path}: the recorded stopping rule is not valid JSON ({err})") from None
     return meta
 
 
