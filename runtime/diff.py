@@ -31,7 +31,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from compiler.errors import SpecError
+from compiler.errors import SpecError, printable
 from compiler.expand import BASE_LABEL, expand, format_value
 from compiler.hashing import variant_payload
 from compiler.loader import load_text
@@ -99,6 +99,9 @@ def resolve_variant(loaded, given: str, option: str = "--baseline") -> int:
     labels = [v.label for v in variants]
     if given in labels:
         return labels.index(given)
+    shown = [printable(label) for label in labels]   # a label as a table printed it, escapes and all
+    if given in shown:
+        return shown.index(given)
     if given.isdigit() and int(given) < len(variants):
         return int(given)
     if given == BASE_LABEL:
@@ -125,8 +128,8 @@ def resolve_variant(loaded, given: str, option: str = "--baseline") -> int:
 def _no_variant(labels, given, option, why, indices=None):
     # One label per line: labels themselves contain ", ".
     indices = indices or range(len(labels))
-    raise ResultSetError("\n".join([f"{option} {given!r}: {why}; give a label, an index or 'base':"]
-                                   + [f"  {i}  {lab}" for i, lab in zip(indices, labels)]))
+    raise ResultSetError("\n".join([f"{option} {printable(repr(given))}: {why}; give a label, an index or 'base':"]
+                                   + [f"  {i}  {printable(lab)}" for i, lab in zip(indices, labels)]))
 
 
 def _values(rs: ResultSet, cols: dict, variant_hash: str, metric: str) -> dict[int, float | None]:
@@ -170,10 +173,10 @@ def _judge(question: str, items: list[tuple[dict, tuple[dict, dict]]], correctio
     adjusted = adjust(pvals, method=correction)
     level = family_alpha(pvals, alpha, correction)
     rows, notes = [], []
-    for (start, _), c, p_adj in zip(items, comps, adjusted):
+    for (start, arms), c, p_adj in zip(items, comps, adjusted):
         margin = margins.get(start["metric"])
         lo, hi = interval(c, level)
-        rows.append(_row(question, start, c, level, (lo, hi), decide(lo, hi, METRICS[start["metric"]], margin),
+        rows.append(_row(question, start, c, arms, level, (lo, hi), decide(lo, hi, METRICS[start["metric"]], margin),
                          p_adj, margin, power))
     paired = [c.n_a for c in comps if c.test == "paired"]
     if paired and 2 / 2 ** min(paired) > level:
@@ -183,8 +186,8 @@ def _judge(question: str, items: list[tuple[dict, tuple[dict, dict]]], correctio
     return rows, notes
 
 
-def _row(question: str, start: dict, c: Comparison, level: float, ci: tuple[float, float], verdict: str,
-         p_adj: float, margin: float | None, power: float) -> dict:
+def _row(question: str, start: dict, c: Comparison, arms: tuple, level: float, ci: tuple[float, float],
+         verdict: str, p_adj: float, margin: float | None, power: float) -> dict:
     """One comparison's row: its estimate, the interval at ``level`` its verdict was read off, planning."""
     start = _shown(start)
     # the probability of improvement is P(B better than A): for a metric to minimise, B − A < 0
@@ -198,13 +201,19 @@ def _row(question: str, start: dict, c: Comparison, level: float, ci: tuple[floa
         "p_sign_flip": c.p_permutation, "margin": margin,
         "effect_sd": c.diff / c.sd_diff if c.sd_diff > 0 else math.nan,
         "p_improve": imp[0], "p_improve_low": imp[1], "p_improve_high": imp[2],
-        "sd_diff": c.sd_diff, **_planning(c, level, margin, power), "verdict": verdict, "reason": c.reason,
+        "sd_diff": c.sd_diff, **_planning(c, level, margin, power), "verdict": verdict, "reason": _reason(c, arms),
     }
 
 
 def _shown(start: dict) -> dict:
     """A contrast's fields for its row: the variants it reads (``uses``) stay internal."""
     return {k: v for k, v in start.items() if k != "uses"}
+
+
+def _reason(c: Comparison, arms: tuple) -> str:
+    # A variant with no stored run is an incomplete result set, not a lack of seeds.
+    absent = " and ".join(side for side, values in zip("AB", arms) if isinstance(values, dict) and not values)
+    return f"no test possible: {absent} stores no run of this variant (incomplete result set)" if absent else c.reason
 
 
 def _planning(c: Comparison, level: float, margin: float | None, power: float) -> dict:
@@ -265,7 +274,7 @@ def _seeds_list(looks: list[int]) -> str:
 class Sequential:
     """The stopping rule replayed over a result set's stored runs (:func:`sequential_design`)."""
     procedure: Procedure
-    judged: dict                 # row key -> (question, contrast fields, Comparison at its last look)
+    judged: dict                 # row key -> (question, contrast fields, Comparison, arms) at its last look
     missing: dict[str, list[int]]   # variant hash -> seeds the next look needs that are not stored
 
     @property
@@ -306,7 +315,7 @@ def sequential_design(rs: ResultSet, rule: Rule, first: list[int], *, axis: str 
             if key in p.settled:
                 continue
             c = compare({s: v for s, v in a.items() if s in keep}, {s: v for s, v in b.items() if s in keep})
-            judged[key] = (question, start, c)
+            judged[key] = (question, start, c, (a, b))
             rows.append(Row(key, size, c.diff, c.se, c.df, METRICS[start["metric"]], start["uses"]))
         p.look(rows)
         if p.done:
@@ -320,11 +329,11 @@ def _sequential_rows(question: str, seq: Sequential, margins: dict, power: float
     last one), its interval the repeated confidence interval of that look."""
     p = seq.procedure
     rows = []
-    for key, (q, start, c) in seq.judged.items():
+    for key, (q, start, c, arms) in seq.judged.items():
         if q != question:
             continue
         state = p.settled.get(key) or p.open[key]
-        row = _row(question, start, c, state.level, (state.low, state.high), state.verdict, math.nan,
+        row = _row(question, start, c, arms, state.level, (state.low, state.high), state.verdict, math.nan,
                    margins.get(start["metric"]), power)
         when = "settled" if key in p.settled else "still open"
         row["reason"] += f"; {when} at look {state.look} of the stopping rule ({state.seeds} seeds)"
