@@ -12,6 +12,8 @@ Contract:
 
 from __future__ import annotations
 
+import math
+
 import sys
 
 try:
@@ -260,6 +262,18 @@ def run(
     cluster: str = typer.Option(None, "--cluster", metavar="ADDRESS",
                                 help="Run the groups on a Dask scheduler (tcp://HOST:PORT) or on N local "
                                      "worker processes (local:N); results are written here."),
+    until_decided: bool = typer.Option(False, "--until-decided",
+                                       help="Add seeds in rounds to the arms whose questions are still open, "
+                                            "until each is better, worse or equivalent (a group-sequential "
+                                            "stopping rule that keeps its error rates) or --max-seeds is reached."),
+    margin: float = typer.Option(None, "--margin", metavar="D", help="With --until-decided: the practical margin in "
+                                 "the metric's units (default: the spec's study.margin)."),
+    max_seeds: int = typer.Option(None, "--max-seeds", min=2, max=10_000, metavar="N",
+                                  help="With --until-decided: at most N seeds per arm (default: 4 × the spec's)."),
+    round_: int = typer.Option(None, "--round", min=1, max=10_000, metavar="K",
+                               help="With --until-decided: seeds added per round (default: the spec's count)."),
+    axis: str = typer.Option(None, "--axis", metavar="KEY", help="With --until-decided on a grid: decide only "
+                             "this axis's questions (as lesion diff --axis)."),
 ) -> None:
     """Run every variant × seed of a study and store the result set; print its path last.
 
@@ -273,8 +287,16 @@ def run(
       lesion run specs/cold-chain.toml --out /tmp/results --lanes 16 --quiet
 
       lesion run specs/cold-chain.toml --cluster local:4
+
+      lesion run specs/cold-chain.toml --until-decided --margin 0.005 --max-seeds 40 --round 5
     """
     from runtime.interrupt import Interrupted, interrupt_guard
+
+    if not until_decided and (margin, max_seeds, round_, axis) != (None, None, None, None):
+        raise UsageError("--margin, --max-seeds, --round and --axis belong to --until-decided")
+    if until_decided and fresh:
+        raise UsageError("--fresh recomputes a fixed set of runs; a procedure's seeds depend on its looks: "
+                         "give --out another folder to start it over")
 
     # Before anything heavy is imported: from here on Ctrl-C only asks the run to stop at its
     # next safe point (runtime/interrupt.py says why).
@@ -292,10 +314,16 @@ def run(
             if cluster is not None:
                 from runtime.cluster import DaskExecutor
                 executor = DaskExecutor(cluster, on_warning=lambda text: _err(f"warning: {text}"))
+            rule = _stopping_rule(study, margin, max_seeds, round_, axis) if until_decided else None
             with executor or _nothing(), progress or _nothing():
-                report = run_study(study, out, lanes=lanes, fresh=fresh, progress=progress, executor=executor,
-                                   checkpoint=ctrl_c.check,
-                                   on_wait=lambda: _err("waiting: another 'lesion run' is writing this result set"))
+                kw = dict(lanes=lanes, progress=progress, executor=executor, checkpoint=ctrl_c.check,
+                          on_wait=lambda: _err("waiting: another 'lesion run' is writing this result set"))
+                if rule is None:
+                    report = run_study(study, out, fresh=fresh, **kw)
+                else:
+                    from runtime.runner import run_until_decided
+                    looks, decided = run_until_decided(study, out, rule, axis=axis, **kw)
+                    report = looks[-1]
         except Interrupted:
             if fresh:
                 from runtime.store import STAGING
@@ -312,7 +340,46 @@ def run(
              f"compile {report.compile_seconds:.1f} s, run {report.run_seconds:.1f} s")
         for w in report.warnings:
             _err(f"warning: {w}")
+    if until_decided:
+        _print_decided(report.path, decided, len(study.variants), quiet)
     typer.echo(str(report.path))
+
+
+def _stopping_rule(study, margin, max_seeds, round_, axis):
+    from runtime.sequential import Rule
+
+    margin = study.spec.study.margin if margin is None else margin
+    if margin is None or not (margin > 0 and math.isfinite(margin)):
+        raise UsageError("--until-decided needs a positive practical margin: give --margin D (in the metric's "
+                         "units) or set study.margin")
+    first = len(study.seeds)
+    max_seeds = 4 * first if max_seeds is None else max_seeds
+    if max_seeds <= first:
+        raise UsageError(f"--max-seeds {max_seeds}: the spec already runs {first} seeds; give more")
+    if axis is not None:
+        keys = [a.key for a in study.spec.ablation.axis] if study.spec.ablation.mode == "grid" else []
+        if axis not in keys:
+            raise UsageError(f"--axis {axis!r}: not an axis of this grid" + (f" (axes: {', '.join(keys)})" if keys else
+                                                                             " (the study is not a grid)"))
+    return Rule(float(margin), max_seeds, first if round_ is None else round_)
+
+
+def _print_decided(path, decided, variants: int, quiet: bool) -> None:
+    """Which look settled each question, and the runs spent against a fixed design of the same power."""
+    from runtime.diff import DECIDED_COLUMNS, decided_summary
+    from runtime.formats import Fit, render
+    from runtime.store import open_result_set
+
+    spent = open_result_set(path).runs.num_rows
+    rows, totals = decided_summary(decided, spent, variants)
+    if quiet:
+        return
+    typer.echo(render(rows, DECIDED_COLUMNS, "table", title=f"decided at looks of {', '.join(map(str, totals['looks']))} "
+                      "seeds", width=_terminal_width(False),
+                      fit=Fit(keep=("contrast", "verdict", "look", "seeds"), drop=("question", "ci_level", "fixed_seeds"),
+                              wrap=("contrast", "question"))), err=True)
+    _err(f"runs spent: {spent}, against {totals['fixed_runs']} for every arm at {decided.procedure.rule.max_seeds} "
+         "seeds; fixed_seeds: what a fixed study of each comparison needs for the same power at its observed sd")
 
 
 class _nothing:
@@ -461,6 +528,12 @@ def show(
     except ValueError as err:
         raise UsageError(str(err)) from None
     extra = {"findings": findings}
+    rule = rs.meta.get("sequential")
+    if rule is not None:
+        # The per-variant intervals above are plain t intervals; the decisions are diff's.
+        title += (f"; seeds chosen sequentially (margin ±{rule['margin']:g}, at most {rule['max_seeds']} seeds, "
+                  f"{rule['round']} a round): lesion diff gives the stopping rule's verdicts")
+        extra["sequential"] = rule
     if format in (Output.json, Output.csv):
         # Programs get the varied keys' values as fields of their own, not only inside the label.
         keys, values = axis_values(rs)
@@ -656,7 +729,7 @@ def diff(
                           drop=("test", "p", "n", "A", "B", "p flip", "B − A in sd", "detectable")
                           + (() if many else ("metric",)),
                           wrap=("variant", "CI", "verdict", "P(B better)"))
-                typer.echo(render(rows, columns, format.value, title=_family_title(q, family, method),
+                typer.echo(render(rows, columns, format.value, title=_family_title(q, family, method, report.sequential),
                                   width=_terminal_width(wide), fit=fit) + "\n")
         if format is Output.table:
             untested = [r for r in report.rows if r["verdict"] == "no test possible"]
@@ -691,11 +764,14 @@ def _decide(a, b, baseline, axis, metric, margin, correction, alpha, power):
     return diff_design(rs_a, axis=axis, **kw), findings
 
 
-def _family_title(question: str, rows: list[dict], method: str) -> str:
+def _family_title(question: str, rows: list[dict], method: str, sequential: bool = False) -> str:
     """The question, the size of its family, the adjustment and the level of its intervals."""
     level = next((r["ci_level"] for r in rows if r.get("ci_level") is not None), None)
     text = f"{question} — {len(rows)} comparison{'s' if len(rows) != 1 else ''}, p adjusted by {method}"
-    if level is not None:
+    if sequential and level is not None:
+        text = (f"{question} — {len(rows)} comparison{'s' if len(rows) != 1 else ''}, seeds chosen sequentially: "
+                "each interval is the repeated confidence interval of the look that settled it")
+    elif level is not None:
         text += f"; intervals at {100 * level:.4g} %, the level the verdicts use"
     margins = {r.get("margin") for r in rows} - {None}
     if margins:

@@ -43,7 +43,7 @@ from runtime.stats import (POWER, Comparison, adjust, compare, decide, detectabl
 from runtime.store import SEQUENTIAL, ResultSet, ResultSetError
 
 __all__ = ["DiffReport", "diff_result_sets", "diff_baseline", "diff_design", "resolve_variant", "sequential_design",
-           "Sequential", "DIFF_COLUMNS", "SEEDS_COLUMNS"]
+           "Sequential", "decided_summary", "DECIDED_COLUMNS", "DIFF_COLUMNS", "SEEDS_COLUMNS"]
 
 DIFF_COLUMNS = ["variant_a", "variant_b", "metric", "test", "n_a", "n_b", "mean_a", "mean_b", "diff",
                 "ci_low", "ci_high", "p", "p_adjusted", "p_sign_flip", "verdict",
@@ -63,6 +63,7 @@ class DiffReport:
     same_study: bool = False
     questions: list[str] = field(default_factory=list)
     notes: list[str] = field(default_factory=list)
+    sequential: bool = False     # verdicts of a stopping rule (contrasts), not of a fixed design
 
     @property
     def worse(self) -> int:
@@ -74,6 +75,7 @@ class DiffReport:
             "identical_studies": self.same_study,
             "unmatched_a": self.only_a, "unmatched_b": self.only_b,
             "correction": self.correction, "questions": self.questions, "notes": self.notes,
+            "sequential": self.sequential,
         }
 
 
@@ -262,7 +264,8 @@ def _report(families, correction, alpha, margins, power, sequential: Sequential 
         if sequential.missing:
             notes.insert(1, "the procedure has not finished (runs of its next look are missing): run the same "
                             "`lesion run SPEC --until-decided …` again to continue it")
-    return DiffReport(rows=rows, questions=questions, notes=notes, correction=correction, **kw)
+    return DiffReport(rows=rows, questions=questions, notes=notes, correction=correction,
+                      sequential=sequential is not None, **kw)
 
 
 def _seeds_list(looks: list[int]) -> str:
@@ -322,6 +325,31 @@ def sequential_design(rs: ResultSet, rule: Rule, first: list[int], *, axis: str 
             return Sequential(p, judged, {})
         p.advance()
         needed = p.arms
+
+
+DECIDED_COLUMNS = ["question", "contrast", "verdict", "look", "seeds", "ci_low", "ci_high", "ci_level", "fixed_seeds"]
+
+
+def decided_summary(seq: Sequential, runs_spent: int, variants: int) -> tuple[list[dict], dict]:
+    """Per comparison: its verdict, the look and seeds that settled it, its interval, and
+    ``fixed_seeds``: the seeds a fixed study of that comparison needs at the same level α/m and
+    power 0.8 (:func:`runtime.stats.seeds_needed` from the sd of its paired differences at its last
+    look). Totals: the runs spent, against the runs of the fixed design the rule stops short of
+    (every arm at the rule's N seeds, which has about the rule's power: an O'Brien–Fleming-type
+    design needs only a few per cent more seeds at most than the fixed design of the same power)."""
+    p = seq.procedure
+    sizes: dict[str, int] = {}
+    for q, *_ in seq.judged.values():
+        sizes[q] = sizes.get(q, 0) + 1
+    rows = []
+    for key, (q, start, c, _) in seq.judged.items():
+        state = p.settled.get(key) or p.open[key]
+        need = seeds_needed(c.sd_diff, p.rule.margin, p.rule.alpha / sizes[q]) if c.test == "paired" else math.nan
+        rows.append({"question": q, "contrast": start.get("contrast") or f"{start['variant_a']} → {start['variant_b']}",
+                     "verdict": state.verdict, "look": state.look, "seeds": state.seeds, "ci_low": state.low,
+                     "ci_high": state.high, "ci_level": 1 - state.level,
+                     "fixed_seeds": int(need) if math.isfinite(need) else need})
+    return rows, {"looks": list(p.looks), "runs_spent": runs_spent, "fixed_runs": variants * p.rule.max_seeds}
 
 
 def _sequential_rows(question: str, seq: Sequential, margins: dict, power: float) -> list[dict]:
