@@ -89,6 +89,7 @@ app = typer.Typer(
          "  lesion replay results/cold-chain-af23c1abfa5f\n\n"
          "  lesion diff results/cold-chain-af23c1abfa5f --axis normalization.kind --margin 0.005\n\n"
          "  lesion seeds results/cold-chain-af23c1abfa5f --margin 0.005   # plan seeds from a pilot\n\n"
+         "  lesion run specs/cold-chain.toml --until-decided --margin 0.005   # add seeds until decided\n\n"
          "  lesion diff results/A results/B --fail-on worse\n\n"
          "  lesion report results/cold-chain-<hash>      # one HTML page for a review\n\n"
          "  lesion export results/cold-chain-<hash> --run RUN_ID -o best.npz\n\n"
@@ -374,10 +375,11 @@ def _print_decided(path, decided, variants: int, quiet: bool) -> None:
     rows, totals = decided_summary(decided, spent, variants)
     if quiet:
         return
-    typer.echo(render(rows, DECIDED_COLUMNS, "table", title=f"decided at looks of {', '.join(map(str, totals['looks']))} "
-                      "seeds", width=_terminal_width(False),
-                      fit=Fit(keep=("contrast", "verdict", "look", "seeds"), drop=("question", "ci_level", "fixed_seeds"),
-                              wrap=("contrast", "question"))), err=True)
+    looks = ", ".join(map(str, totals["looks"]))
+    fit = Fit(keep=("contrast", "verdict", "look", "seeds"), drop=("question", "ci_level", "fixed_seeds"),
+              wrap=("contrast", "question"))
+    typer.echo(render(rows, DECIDED_COLUMNS, "table", title=f"decided at looks of {looks} seeds",
+                      width=_terminal_width(False), fit=fit), err=True)
     _err(f"runs spent: {spent}, against {totals['fixed_runs']} for every arm at {decided.procedure.rule.max_seeds} "
          "seeds; fixed_seeds: what a fixed study of each comparison needs for the same power at its observed sd")
 

@@ -29,7 +29,8 @@ from runtime.plan import Group, plan
 from runtime.store import (SEQUENTIAL, STAGING, ResultSet, ResultSetError, column, open_result_set, refuse_link,
                            result_dir, write_results, writer_lock)
 
-__all__ = ["RunReport", "run_study", "run_until_decided", "study_meta", "varied_keys", "typed_key_columns", "group_tables", "datasets_for"]
+__all__ = ["RunReport", "run_study", "run_until_decided", "study_meta", "varied_keys", "typed_key_columns",
+           "group_tables", "datasets_for"]
 
 
 @dataclass
@@ -243,7 +244,8 @@ def _keep_rule(stored: ResultSet | None, meta: dict, sequential: dict | None, wh
     same runs would make its looks and decisions a different procedure, so it is refused."""
     recorded = stored.meta.get(SEQUENTIAL) if stored is not None else None
     if recorded is not None and sequential is not None and recorded != sequential:
-        differ = ", ".join(f"{k} {recorded.get(k)} → {sequential.get(k)}" for k in sorted(set(recorded) | set(sequential))
+        keys = sorted(set(recorded) | set(sequential))
+        differ = ", ".join(f"{k} {recorded.get(k)} → {sequential.get(k)}" for k in keys
                            if recorded.get(k) != sequential.get(k))
         raise ResultSetError(f"{where}: its seeds were chosen by another stopping rule ({differ}); give the same "
                              "--margin/--max-seeds/--round/--axis to continue it, or --out another folder")
