@@ -17,26 +17,7 @@ from runtime.store import open_result_set
 
 cli = CliRunner()
 
-# A list study: the base, an arm whose learning rate is too small to learn in 3 epochs (clearly
-# worse), and a light dropout (close to the base). Every arm shares one compiled structure.
-EXTRA_LIST = """
-[[ablation.variant]]
-label = "stalled"
-set = { "optimizer.learning_rate" = 0.0005 }
-[[ablation.variant]]
-label = "light"
-set = { "regularization.dropout.rate" = 0.02 }
-"""
 RULE = Rule(margin=0.01, max_seeds=12, round=3)
-
-
-def _spec(tmp_path, tiny_spec, name):
-    path = tiny_spec(tmp_path, name=name, seeds=6, rates="[0.1]")
-    text = path.read_text()
-    # the tiny grid becomes a list with the base included
-    text = text[:text.index("[ablation]")] + '[ablation]\nmode = "list"\ninclude_base = true\n' + EXTRA_LIST
-    path.write_text(text)
-    return path
 
 
 def _decisions(seq):
@@ -50,9 +31,9 @@ def _bits(path):
 
 
 @pytest.fixture(scope="module")
-def uninterrupted(tmp_path_factory, tiny_spec):
+def uninterrupted(tmp_path_factory, decided_spec):
     tmp = tmp_path_factory.mktemp("until")
-    loaded = load_study(_spec(tmp, tiny_spec, "seq"))
+    loaded = load_study(decided_spec(tmp))
     reports, seq = run_until_decided(loaded, tmp / "out", RULE)
     return loaded, reports, seq, reports[-1].path
 
@@ -73,8 +54,8 @@ def test_clear_arm_settles_at_the_first_look_and_stops_running(uninterrupted):
     assert set(runs["lane_width"]) == {9}
 
 
-def test_killed_mid_procedure_resumes_to_the_same_decisions_seeds_and_bits(uninterrupted, tmp_path, tiny_spec):
-    loaded = load_study(_spec(tmp_path, tiny_spec, "seq"))
+def test_killed_mid_procedure_resumes_to_the_same_decisions_seeds_and_bits(uninterrupted, tmp_path, decided_spec):
+    loaded = load_study(decided_spec(tmp_path))
     assert loaded.study_hash == uninterrupted[0].study_hash
     seen = {"groups": 0, "epochs": 0}
 
@@ -119,8 +100,8 @@ def test_show_and_diff_use_the_stopping_rule(uninterrupted):
     (["--until-decided", "--margin", "0.01", "--fresh"], "--fresh"),
     (["--until-decided", "--margin", "0.01", "--axis", "optimizer.kind"], "not an axis"),
 ])
-def test_bad_options_are_one_line_errors(tmp_path, tiny_spec, args, message):
-    res = cli.invoke(app, ["run", str(_spec(tmp_path, tiny_spec, "bad")), "--out", str(tmp_path / "o"), *args])
+def test_bad_options_are_one_line_errors(tmp_path, decided_spec, args, message):
+    res = cli.invoke(app, ["run", str(decided_spec(tmp_path, "bad")), "--out", str(tmp_path / "o"), *args])
     assert res.exit_code == 2, res.output
     assert message in res.stderr and "Traceback" not in res.stderr
     assert not (tmp_path / "o").exists()   # nothing was created
