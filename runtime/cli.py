@@ -324,7 +324,7 @@ def run(
                 else:
                     from runtime.runner import run_until_decided
                     looks, decided = run_until_decided(study, out, rule, axis=axis, **kw)
-                    report = looks[-1]
+                    report = _looks_total(looks)
         except Interrupted:
             if fresh:
                 from runtime.store import STAGING
@@ -342,8 +342,23 @@ def run(
         for w in report.warnings:
             _err(f"warning: {w}")
     if until_decided:
-        _print_decided(report.path, decided, len(study.variants), quiet)
+        _print_decided(decided, report.planned, len(study.variants), quiet)
     typer.echo(str(report.path))
+
+
+def _looks_total(looks):
+    """One summary line for all the looks of a procedure: its runs are every run of the result set."""
+    import dataclasses
+
+    from runtime.store import open_result_set
+
+    computed = sum(r.computed for r in looks)
+    spent = open_result_set(looks[-1].path).runs.num_rows
+    return dataclasses.replace(looks[-1], planned=spent, computed=computed, reused=spent - computed,
+                               diverged=sum(r.diverged for r in looks), groups=sum(r.groups for r in looks),
+                               warnings=[w for r in looks for w in r.warnings],
+                               compile_seconds=sum(r.compile_seconds for r in looks),
+                               run_seconds=sum(r.run_seconds for r in looks))
 
 
 def _stopping_rule(study, margin, max_seeds, round_, axis):
@@ -365,13 +380,11 @@ def _stopping_rule(study, margin, max_seeds, round_, axis):
     return Rule(float(margin), max_seeds, first if round_ is None else round_)
 
 
-def _print_decided(path, decided, variants: int, quiet: bool) -> None:
+def _print_decided(decided, spent: int, variants: int, quiet: bool) -> None:
     """Which look settled each question, and the runs spent against a fixed design of the same power."""
     from runtime.diff import DECIDED_COLUMNS, decided_summary
     from runtime.formats import Fit, render
-    from runtime.store import open_result_set
 
-    spent = open_result_set(path).runs.num_rows
     rows, totals = decided_summary(decided, spent, variants)
     if quiet:
         return
@@ -421,7 +434,8 @@ class _RunProgress:
 
     def __call__(self, event, **info):
         if event == "plan":
-            self.groups = info["groups"]
+            # `--until-decided` plans once per look: each look counts its own runs and groups.
+            self.groups, self.index, self.runs_done = info["groups"], 0, 0
             if info["runs"] == 0:
                 self.progress.console.print(f"all {info['planned']} runs already stored")
                 return
