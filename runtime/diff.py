@@ -405,9 +405,13 @@ def diff_baseline(rs: ResultSet, baseline: str, *, metrics: list[str] | None = N
                   correction: str = "holm", alpha: float = 0.05, margin: float | None = None,
                   power: float = POWER) -> DiffReport:
     metrics = _metrics(rs, metrics)
+    recorded = rs.meta.get(SEQUENTIAL)
+    if recorded is not None and rs.tree["ablation"]["mode"] != "grid" and baseline in ("base", BASE_LABEL):
+        # each variant vs base is the design's question of a list or one-at-a-time: the rule's verdicts
+        return diff_design(rs, metrics=metrics, correction=correction, alpha=alpha, margin=margin, power=power)
     report = _report(_baseline_families(rs, baseline, metrics), correction, alpha, _margins(rs, metrics, margin),
                      power, changes=[], same_study=True)
-    if rs.meta.get(SEQUENTIAL) is not None:
+    if recorded is not None:
         report.notes.insert(0, "the seeds of this result set were chosen sequentially for the questions of its "
                                "design: verdicts against another baseline ignore the stopping rule")
     return report

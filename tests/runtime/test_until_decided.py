@@ -9,7 +9,7 @@ from typer.testing import CliRunner
 
 from compiler.loader import load_study
 from runtime.cli import app
-from runtime.diff import diff_design
+from runtime.diff import diff_baseline, diff_design
 from runtime.interrupt import Interrupted
 from runtime.runner import run_until_decided
 from runtime.sequential import Rule
@@ -88,6 +88,9 @@ def test_show_and_diff_use_the_stopping_rule(uninterrupted):
     by = {(r["variant_a"], r["variant_b"]): r for r in report.rows}
     for (a, b), (verdict, look, seeds) in _decisions(seq).items():
         assert by[(a, b)]["verdict"] == verdict and by[(a, b)]["n_a"] == seeds
+    # each variant vs base is this list's design question: --baseline base gives the rule's verdicts too
+    assert [r["verdict"] for r in diff_baseline(rs, "base").rows] == [r["verdict"] for r in report.rows]
+    assert "ignore the stopping rule" in diff_baseline(rs, "light").notes[0]
     shown = cli.invoke(app, ["show", str(path)])
     assert shown.exit_code == 0 and "seeds chosen sequentially" in shown.stdout
     assert "does not derive" not in shown.stderr
