@@ -115,3 +115,11 @@ def test_another_rule_on_the_same_result_set_is_refused(uninterrupted):
     res = cli.invoke(app, ["run", loaded.path, "--out", str(path.parent), "--until-decided", "--margin", "0.02",
                            "--max-seeds", "12", "--round", "3"])
     assert res.exit_code == 2 and "another stopping rule" in res.stderr and "margin 0.01 → 0.02" in res.stderr
+
+
+def test_replay_reproduces_every_run_of_every_look(uninterrupted):
+    from runtime.replay import replay
+
+    report = replay(uninterrupted[3])
+    assert len(report.rows) == open_result_set(uninterrupted[3]).runs.num_rows > 18   # seeds of later looks too
+    assert report.identical, [r.as_dict() for r in report.rows if not r.as_dict().get("identical", True)]
