@@ -14,7 +14,7 @@ from dataclasses import dataclass
 from compiler.errors import SpecError
 from compiler.hashing import run_id as make_run_id
 from compiler.loader import load_text
-from runtime.store import ResultSet, edits
+from runtime.store import SEQUENTIAL, ResultSet, edits
 
 __all__ = ["Audit", "audit"]
 
@@ -76,5 +76,13 @@ def audit(rs: ResultSet, loaded=None) -> Audit:
                 expected.add(rid)
                 if rid not in counts:
                     missing.setdefault(v.label, []).append(seed)
-    foreign = [rid for rid in counts if rid not in expected] if loaded is not None else []
+    derived = set(expected)
+    rule = rs.meta.get(SEQUENTIAL)
+    if loaded is not None and rule is not None:
+        # Seeds a stopping rule added: its runs may use any seed of the procedure's sequence (the
+        # spec's, then the integers above them up to the rule's maximum); which ones is its replay's call.
+        first = loaded.spec.study.seed_list
+        added = range(max(first) + 1, max(first) + 1 + max(rule["max_seeds"] - len(first), 0))
+        derived |= {make_run_id(v.hash, seed) for v in loaded.variants for seed in added}
+    foreign = [rid for rid in counts if rid not in derived] if loaded is not None else []
     return Audit(len(expected), len(expected & counts.keys()), missing, duplicated, foreign, edits(rs), problem)

@@ -12,6 +12,8 @@ Contract:
 
 from __future__ import annotations
 
+import math
+
 import sys
 
 try:
@@ -79,6 +81,7 @@ app = typer.Typer(
          "  lesion replay results/cold-chain-af23c1abfa5f\n\n"
          "  lesion diff results/cold-chain-af23c1abfa5f --axis normalization.kind --margin 0.005\n\n"
          "  lesion seeds results/cold-chain-af23c1abfa5f --margin 0.005   # plan seeds from a pilot\n\n"
+         "  lesion run specs/cold-chain.toml --until-decided --margin 0.005   # add seeds until decided\n\n"
          "  lesion diff results/A results/B --fail-on worse\n\n"
          "  lesion report results/cold-chain-<hash>      # one HTML page for a review\n\n"
          "  lesion export results/cold-chain-<hash> --run RUN_ID -o best.npz\n\n"
@@ -241,6 +244,18 @@ def run(
     cluster: str = typer.Option(None, "--cluster", metavar="ADDRESS",
                                 help="Run the groups on a Dask scheduler (tcp://HOST:PORT) or on N local "
                                      "worker processes (local:N); results are written here."),
+    until_decided: bool = typer.Option(False, "--until-decided",
+                                       help="Add seeds in rounds to the arms whose questions are still open, "
+                                            "until each is better, worse or equivalent (a group-sequential "
+                                            "stopping rule that keeps its error rates) or --max-seeds is reached."),
+    margin: float = typer.Option(None, "--margin", metavar="D", help="With --until-decided: the practical margin in "
+                                 "the metric's units (default: the spec's study.margin)."),
+    max_seeds: int = typer.Option(None, "--max-seeds", min=2, max=10_000, metavar="N",
+                                  help="With --until-decided: at most N seeds per arm (default: 4 × the spec's)."),
+    round_: int = typer.Option(None, "--round", min=1, max=10_000, metavar="K",
+                               help="With --until-decided: seeds added per round (default: the spec's count)."),
+    axis: str = typer.Option(None, "--axis", metavar="KEY", help="With --until-decided on a grid: decide only "
+                             "this axis's questions (as lesion diff --axis)."),
 ) -> None:
     """Run every variant × seed of a study and store the result set; print its path last.
 
@@ -254,8 +269,16 @@ def run(
       lesion run specs/cold-chain.toml --out /tmp/results --lanes 16 --quiet
 
       lesion run specs/cold-chain.toml --cluster local:4
+
+      lesion run specs/cold-chain.toml --until-decided --margin 0.005 --max-seeds 40 --round 5
     """
     from runtime.interrupt import Interrupted, interrupt_guard
+
+    if not until_decided and (margin, max_seeds, round_, axis) != (None, None, None, None):
+        raise UsageError("--margin, --max-seeds, --round and --axis belong to --until-decided")
+    if until_decided and fresh:
+        raise UsageError("--fresh recomputes a fixed set of runs; a procedure's seeds depend on its looks: "
+                         "give --out another folder to start it over")
 
     # Before anything heavy is imported: from here on Ctrl-C only asks the run to stop at its
     # next safe point (runtime/interrupt.py says why).
@@ -273,10 +296,16 @@ def run(
             if cluster is not None:
                 from runtime.cluster import DaskExecutor
                 executor = DaskExecutor(cluster, on_warning=lambda text: _err(f"warning: {text}"))
+            rule = _stopping_rule(study, margin, max_seeds, round_, axis) if until_decided else None
             with executor or _nothing(), progress or _nothing():
-                report = run_study(study, out, lanes=lanes, fresh=fresh, progress=progress, executor=executor,
-                                   checkpoint=ctrl_c.check,
-                                   on_wait=lambda: _err("waiting: another 'lesion run' is writing this result set"))
+                kw = dict(lanes=lanes, progress=progress, executor=executor, checkpoint=ctrl_c.check,
+                          on_wait=lambda: _err("waiting: another 'lesion run' is writing this result set"))
+                if rule is None:
+                    report = run_study(study, out, fresh=fresh, **kw)
+                else:
+                    from runtime.runner import run_until_decided
+                    looks, decided = run_until_decided(study, out, rule, axis=axis, **kw)
+                    report = _looks_total(looks)
         except Interrupted:
             if fresh:
                 from runtime.store import STAGING
@@ -293,7 +322,60 @@ def run(
              f"compile {report.compile_seconds:.1f} s, run {report.run_seconds:.1f} s")
         for w in report.warnings:
             _err(f"warning: {w}")
+    if until_decided:
+        _print_decided(decided, report.planned, len(study.variants), quiet)
     typer.echo(str(report.path))
+
+
+def _looks_total(looks):
+    """One summary line for all the looks of a procedure: its runs are every run of the result set."""
+    import dataclasses
+
+    from runtime.store import open_result_set
+
+    computed = sum(r.computed for r in looks)
+    spent = open_result_set(looks[-1].path).runs.num_rows
+    return dataclasses.replace(looks[-1], planned=spent, computed=computed, reused=spent - computed,
+                               diverged=sum(r.diverged for r in looks), groups=sum(r.groups for r in looks),
+                               warnings=[w for r in looks for w in r.warnings],
+                               compile_seconds=sum(r.compile_seconds for r in looks),
+                               run_seconds=sum(r.run_seconds for r in looks))
+
+
+def _stopping_rule(study, margin, max_seeds, round_, axis):
+    from runtime.sequential import Rule
+
+    margin = study.spec.study.margin if margin is None else margin
+    if margin is None or not (margin > 0 and math.isfinite(margin)):
+        raise UsageError("--until-decided needs a positive practical margin: give --margin D (in the metric's "
+                         "units) or set study.margin")
+    first = len(study.seeds)
+    max_seeds = 4 * first if max_seeds is None else max_seeds
+    if max_seeds <= first:
+        raise UsageError(f"--max-seeds {max_seeds}: the spec already runs {first} seeds; give more")
+    if axis is not None:
+        keys = [a.key for a in study.spec.ablation.axis] if study.spec.ablation.mode == "grid" else []
+        if axis not in keys:
+            raise UsageError(f"--axis {axis!r}: not an axis of this grid" + (f" (axes: {', '.join(keys)})" if keys else
+                                                                             " (the study is not a grid)"))
+    return Rule(float(margin), max_seeds, first if round_ is None else round_)
+
+
+def _print_decided(decided, spent: int, variants: int, quiet: bool) -> None:
+    """Which look settled each question, and the runs spent against a fixed design of the same power."""
+    from runtime.diff import DECIDED_COLUMNS, decided_summary
+    from runtime.formats import Fit, render
+
+    rows, totals = decided_summary(decided, spent, variants)
+    if quiet:
+        return
+    looks = ", ".join(map(str, totals["looks"]))
+    fit = Fit(keep=("contrast", "verdict", "look", "seeds"), drop=("question", "ci_level", "fixed_seeds"),
+              wrap=("contrast", "question"))
+    typer.echo(render(rows, DECIDED_COLUMNS, "table", title=f"decided at looks of {looks} seeds",
+                      width=_terminal_width(False), fit=fit), err=True)
+    _err(f"runs spent: {spent}, against {totals['fixed_runs']} for every arm at {decided.procedure.rule.max_seeds} "
+         "seeds; fixed_seeds: what a fixed study of each comparison needs for the same power at its observed sd")
 
 
 class _nothing:
@@ -333,7 +415,8 @@ class _RunProgress:
 
     def __call__(self, event, **info):
         if event == "plan":
-            self.groups = info["groups"]
+            # `--until-decided` plans once per look: each look counts its own runs and groups.
+            self.groups, self.index, self.runs_done = info["groups"], 0, 0
             if info["runs"] == 0:
                 self.progress.console.print(f"all {info['planned']} runs already stored")
                 return
@@ -439,6 +522,12 @@ def show(
             columns, fit = SUMMARY_COLUMNS, SUMMARY_FIT
         title = f"{name} ({rs.study_hash[:12]}): final {', '.join(metrics)} across seeds (mean, sd, 95% CI)"
     extra = {"findings": findings}
+    rule = rs.meta.get("sequential")
+    if rule is not None:
+        # The per-variant intervals above are plain t intervals; the decisions are diff's.
+        title += (f"; seeds chosen sequentially (margin ±{rule['margin']:g}, at most {rule['max_seeds']} seeds, "
+                  f"{rule['round']} a round): lesion diff gives the stopping rule's verdicts")
+        extra["sequential"] = rule
     if format in (Output.json, Output.csv):
         # Programs get the varied keys' values as fields of their own, not only inside the label.
         keys, values = axis_values(rs)
@@ -634,7 +723,7 @@ def diff(
                           drop=("test", "p", "n", "A", "B", "p flip", "B − A in sd", "detectable")
                           + (() if many else ("metric",)),
                           wrap=("variant", "CI", "verdict", "P(B better)"))
-                typer.echo(render(rows, columns, format.value, title=_family_title(q, family, method),
+                typer.echo(render(rows, columns, format.value, title=_family_title(q, family, method, report.sequential),
                                   width=_terminal_width(wide), fit=fit) + "\n")
         if format is Output.table:
             untested = [r for r in report.rows if r["verdict"] == "no test possible"]
@@ -669,11 +758,14 @@ def _decide(a, b, baseline, axis, metric, margin, correction, alpha, power):
     return diff_design(rs_a, axis=axis, **kw), findings
 
 
-def _family_title(question: str, rows: list[dict], method: str) -> str:
+def _family_title(question: str, rows: list[dict], method: str, sequential: bool = False) -> str:
     """The question, the size of its family, the adjustment and the level of its intervals."""
     level = next((r["ci_level"] for r in rows if r.get("ci_level") is not None), None)
     text = f"{question} — {len(rows)} comparison{'s' if len(rows) != 1 else ''}, p adjusted by {method}"
-    if level is not None:
+    if sequential and level is not None:
+        text = (f"{question} — {len(rows)} comparison{'s' if len(rows) != 1 else ''}, seeds chosen sequentially: "
+                "each interval is the repeated confidence interval of the look that settled it")
+    elif level is not None:
         text += f"; intervals at {100 * level:.4g} %, the level the verdicts use"
     margins = {r.get("margin") for r in rows} - {None}
     if margins:

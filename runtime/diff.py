@@ -37,13 +37,14 @@ from compiler.labels import BASE_LABEL, format_value, label_parts
 from compiler.hashing import variant_payload
 from compiler.loader import load_text
 from compiler.spec import METRICS
+from runtime.sequential import Procedure, Row, Rule
 from runtime.specdiff import Change, canonical_leaf, match_variants, spec_diff
 from runtime.stats import (POWER, Comparison, adjust, compare, decide, detectable_difference, family_alpha,
                            interaction_test, interval, seeds_needed)
-from runtime.store import ResultSet, ResultSetError
+from runtime.store import SEQUENTIAL, ResultSet, ResultSetError
 
-__all__ = ["DiffReport", "diff_result_sets", "diff_baseline", "diff_design", "resolve_variant", "DIFF_COLUMNS",
-           "SEEDS_COLUMNS"]
+__all__ = ["DiffReport", "diff_result_sets", "diff_baseline", "diff_design", "resolve_variant", "sequential_design",
+           "Sequential", "decided_summary", "DECIDED_COLUMNS", "DIFF_COLUMNS", "SEEDS_COLUMNS"]
 
 DIFF_COLUMNS = ["variant_a", "variant_b", "metric", "test", "n_a", "n_b", "mean_a", "mean_b", "diff",
                 "ci_low", "ci_high", "p", "p_adjusted", "p_sign_flip", "verdict",
@@ -63,6 +64,7 @@ class DiffReport:
     same_study: bool = False
     questions: list[str] = field(default_factory=list)
     notes: list[str] = field(default_factory=list)
+    sequential: bool = False     # verdicts of a stopping rule (contrasts), not of a fixed design
 
     @property
     def worse(self) -> int:
@@ -74,6 +76,7 @@ class DiffReport:
             "identical_studies": self.same_study,
             "unmatched_a": self.only_a, "unmatched_b": self.only_b,
             "correction": self.correction, "questions": self.questions, "notes": self.notes,
+            "sequential": self.sequential,
         }
 
 
@@ -157,7 +160,7 @@ def _columns(rs_a: ResultSet, rs_b: ResultSet) -> tuple[dict, dict]:
 def _pair_rows(pairs, rs_a, rs_b, metrics) -> list[tuple[dict, dict]]:
     """(row start, arms) per pair of variants and metric: arms are the two {seed: value} maps."""
     cols_a, cols_b = _columns(rs_a, rs_b)
-    return [({"variant_a": a["label"], "variant_b": b["label"], "metric": m},
+    return [({"variant_a": a["label"], "variant_b": b["label"], "metric": m, "uses": frozenset((a["hash"], b["hash"]))},
              (_values(rs_a, cols_a, a["hash"], m), _values(rs_b, cols_b, b["hash"], m)))
             for a, b in pairs for m in metrics]
 
@@ -172,29 +175,40 @@ def _judge(question: str, items: list[tuple[dict, tuple[dict, dict]]], correctio
     level = family_alpha(pvals, alpha, correction)
     rows, notes = [], []
     for (start, arms), c, p_adj in zip(items, comps, adjusted):
-        m = start["metric"]
-        margin = margins.get(m)
+        margin = margins.get(start["metric"])
         lo, hi = interval(c, level)
-        # the probability of improvement is P(B better than A): for a metric to minimise, B − A < 0
-        flip = METRICS[m] == "min"
-        imp = [1 - x for x in (c.improvement, c.improvement_high, c.improvement_low)] if flip else \
-            [c.improvement, c.improvement_low, c.improvement_high]
-        rows.append({
-            "question": question, "contrast": start.get("contrast"), **start, "test": c.test,
-            "n_a": c.n_a, "n_b": c.n_b, "mean_a": c.mean_a, "mean_b": c.mean_b, "diff": c.diff,
-            "ci_level": 1 - level, "ci_low": lo, "ci_high": hi, "p": c.p_value, "p_adjusted": p_adj,
-            "p_sign_flip": c.p_permutation, "margin": margin,
-            "effect_sd": c.diff / c.sd_diff if c.sd_diff > 0 else math.nan,
-            "p_improve": imp[0], "p_improve_low": imp[1], "p_improve_high": imp[2],
-            "sd_diff": c.sd_diff, **_planning(c, level, margin, power),
-            "verdict": decide(lo, hi, METRICS[m], margin), "reason": _reason(c, arms),
-        })
+        rows.append(_row(question, start, c, arms, level, (lo, hi), decide(lo, hi, METRICS[start["metric"]], margin),
+                         p_adj, margin, power))
     paired = [c.n_a for c in comps if c.test == "paired"]
     if paired and 2 / 2 ** min(paired) > level:
         n = min(paired)
         notes.append(f"{question}: with {n} seeds the exact sign-flip p cannot go below 2/2^{n} = "
                      f"{2 / 2 ** n:.4g}, above the family's level {level:.4g}: it cannot confirm any verdict here")
     return rows, notes
+
+
+def _row(question: str, start: dict, c: Comparison, arms: tuple, level: float, ci: tuple[float, float],
+         verdict: str, p_adj: float, margin: float | None, power: float) -> dict:
+    """One comparison's row: its estimate, the interval at ``level`` its verdict was read off, planning."""
+    start = _shown(start)
+    # the probability of improvement is P(B better than A): for a metric to minimise, B − A < 0
+    flip = METRICS[start["metric"]] == "min"
+    imp = [1 - x for x in (c.improvement, c.improvement_high, c.improvement_low)] if flip else \
+        [c.improvement, c.improvement_low, c.improvement_high]
+    return {
+        "question": question, "contrast": start.get("contrast"), **start, "test": c.test,
+        "n_a": c.n_a, "n_b": c.n_b, "mean_a": c.mean_a, "mean_b": c.mean_b, "diff": c.diff,
+        "ci_level": 1 - level, "ci_low": ci[0], "ci_high": ci[1], "p": c.p_value, "p_adjusted": p_adj,
+        "p_sign_flip": c.p_permutation, "margin": margin,
+        "effect_sd": c.diff / c.sd_diff if c.sd_diff > 0 else math.nan,
+        "p_improve": imp[0], "p_improve_low": imp[1], "p_improve_high": imp[2],
+        "sd_diff": c.sd_diff, **_planning(c, level, margin, power), "verdict": verdict, "reason": _reason(c, arms),
+    }
+
+
+def _shown(start: dict) -> dict:
+    """A contrast's fields for its row: the variants it reads (``uses``) stay internal."""
+    return {k: v for k, v in start.items() if k != "uses"}
 
 
 def _reason(c: Comparison, arms: tuple) -> str:
@@ -226,17 +240,132 @@ def _margins(rs: ResultSet, metrics: list[str], margin: float | None) -> dict[st
     return {m: (spec_margin if m == rs.tree["study"]["metric"] else None) for m in metrics}
 
 
-def _report(families, correction, alpha, margins, power, **kw) -> DiffReport:
+def _report(families, correction, alpha, margins, power, sequential: Sequential | None = None, **kw) -> DiffReport:
     rows, notes, questions = [], [], []
     for question, kind, items in families:
         if not items:
             continue
-        got, more = _judge(question, items, correction, alpha, margins, power) if kind == "contrasts" else \
-            _interactions(question, items, correction, alpha)
+        if kind == "interaction":
+            got, more = _interactions(question, items, correction, alpha)
+        elif sequential is not None:
+            got, more = _sequential_rows(question, sequential, margins, power), []
+        else:
+            got, more = _judge(question, items, correction, alpha, margins, power)
         rows += got
         notes += more
         questions.append(question)
-    return DiffReport(rows=rows, questions=questions, notes=notes, correction=correction, **kw)
+    if sequential is not None:
+        p = sequential.procedure
+        notes.insert(0, f"seeds chosen sequentially ({p.rule.as_dict()['rule']}; margin ±{p.rule.margin:g}, "
+                        f"at most {p.rule.max_seeds} seeds, {p.rule.round} a round; looks at {_seeds_list(p.looks)} "
+                        "seeds): each verdict is read off the repeated confidence interval of the look that "
+                        "settled it, not off a Holm-adjusted p")
+        if sequential.missing:
+            notes.insert(1, "the procedure has not finished (runs of its next look are missing): run the same "
+                            "`lesion run SPEC --until-decided …` again to continue it")
+    return DiffReport(rows=rows, questions=questions, notes=notes, correction=correction,
+                      sequential=sequential is not None, **kw)
+
+
+def _seeds_list(looks: list[int]) -> str:
+    return ", ".join(map(str, looks)) if looks else "none yet"
+
+
+# ── seeds chosen by a stopping rule ─────────────────────────────────────────────────────────────
+@dataclass
+class Sequential:
+    """The stopping rule replayed over a result set's stored runs (:func:`sequential_design`)."""
+    procedure: Procedure
+    judged: dict                 # row key -> (question, contrast fields, Comparison, arms) at its last look
+    missing: dict[str, list[int]]   # variant hash -> seeds the next look needs that are not stored
+
+    @property
+    def done(self) -> bool:
+        return not self.missing and self.procedure.done
+
+
+def _key(question: str, start: dict) -> tuple:
+    return question, start.get("contrast"), start["variant_a"], start["variant_b"], start["metric"]
+
+
+def sequential_design(rs: ResultSet, rule: Rule, first: list[int], *, axis: str | None = None,
+                      metric: str | None = None) -> Sequential:
+    """Replay the stopping rule (:mod:`runtime.sequential`) over the questions of the study's design
+    (as :func:`diff_design` asks them, interactions aside: they have no margin to settle on) from
+    the stored runs: look j judges the open comparisons over the first n_j seeds of the procedure's
+    sequence only. Stops at the first look whose runs are not all stored and names them
+    (``missing``), so computing those and replaying again continues the procedure exactly where an
+    uninterrupted one would be — the same decisions and the same seeds."""
+    families = _design_families(rs, axis, [metric] if metric else None)
+    contrasts = [(q, len(items), start, arms) for q, kind, items in families if kind == "contrasts"
+                 for start, arms in items]
+    cols = rs.runs.to_pydict()
+    stored: dict[str, set] = {}
+    for h, seed in zip(cols["variant_hash"], cols["seed"]):
+        stored.setdefault(h, set()).add(seed)
+    p = Procedure(rule, first)
+    judged: dict = {}
+    needed = frozenset().union(*(start["uses"] for _, _, start, _ in contrasts))
+    while True:
+        keep = set(p.seeds)
+        missing = {h: sorted(keep - stored.get(h, set())) for h in sorted(needed) if keep - stored.get(h, set())}
+        if missing:
+            return Sequential(p, judged, missing)
+        rows = []
+        for question, size, start, (a, b) in contrasts:
+            key = _key(question, start)
+            if key in p.settled:
+                continue
+            c = compare({s: v for s, v in a.items() if s in keep}, {s: v for s, v in b.items() if s in keep})
+            judged[key] = (question, start, c, (a, b))
+            rows.append(Row(key, size, c.diff, c.se, c.df, METRICS[start["metric"]], start["uses"]))
+        p.look(rows)
+        if p.done:
+            return Sequential(p, judged, {})
+        p.advance()
+        needed = p.arms
+
+
+DECIDED_COLUMNS = ["question", "contrast", "verdict", "look", "seeds", "ci_low", "ci_high", "ci_level", "fixed_seeds"]
+
+
+def decided_summary(seq: Sequential, runs_spent: int, variants: int) -> tuple[list[dict], dict]:
+    """Per comparison: its verdict, the look and seeds that settled it, its interval, and
+    ``fixed_seeds``: the seeds a fixed study of that comparison needs at the same level α/m and
+    power 0.8 (:func:`runtime.stats.seeds_needed` from the sd of its paired differences at its last
+    look). Totals: the runs spent, against the runs of the fixed design the rule stops short of
+    (every arm at the rule's N seeds, which has about the rule's power: an O'Brien–Fleming-type
+    design needs only a few per cent more seeds at most than the fixed design of the same power)."""
+    p = seq.procedure
+    sizes: dict[str, int] = {}
+    for q, *_ in seq.judged.values():
+        sizes[q] = sizes.get(q, 0) + 1
+    rows = []
+    for key, (q, start, c, _) in seq.judged.items():
+        state = p.settled.get(key) or p.open[key]
+        need = seeds_needed(c.sd_diff, p.rule.margin, p.rule.alpha / sizes[q]) if c.test == "paired" else math.nan
+        rows.append({"question": q, "contrast": start.get("contrast") or f"{start['variant_a']} → {start['variant_b']}",
+                     "verdict": state.verdict, "look": state.look, "seeds": state.seeds, "ci_low": state.low,
+                     "ci_high": state.high, "ci_level": 1 - state.level,
+                     "fixed_seeds": int(need) if math.isfinite(need) else need})
+    return rows, {"looks": list(p.looks), "runs_spent": runs_spent, "fixed_runs": variants * p.rule.max_seeds}
+
+
+def _sequential_rows(question: str, seq: Sequential, margins: dict, power: float) -> list[dict]:
+    """A question's rows as the stopping rule left them: each at the look that settled it (or the
+    last one), its interval the repeated confidence interval of that look."""
+    p = seq.procedure
+    rows = []
+    for key, (q, start, c, arms) in seq.judged.items():
+        if q != question:
+            continue
+        state = p.settled.get(key) or p.open[key]
+        row = _row(question, start, c, arms, state.level, (state.low, state.high), state.verdict, math.nan,
+                   margins.get(start["metric"]), power)
+        when = "settled" if key in p.settled else "still open"
+        row["reason"] += f"; {when} at look {state.look} of the stopping rule ({state.seeds} seeds)"
+        rows.append(row)
+    return rows
 
 
 def _ignored_keys(changes: list[Change], a_tree: dict, b_tree: dict) -> set[str]:
@@ -274,15 +403,25 @@ def diff_result_sets(rs_a: ResultSet, rs_b: ResultSet, *, metrics: list[str] | N
 def diff_baseline(rs: ResultSet, baseline: str, *, metrics: list[str] | None = None,
                   correction: str = "holm", alpha: float = 0.05, margin: float | None = None,
                   power: float = POWER) -> DiffReport:
+    metrics = _metrics(rs, metrics)
+    recorded = rs.meta.get(SEQUENTIAL)
+    if recorded is not None and rs.tree["ablation"]["mode"] != "grid" and baseline in ("base", BASE_LABEL):
+        # each variant vs base is the design's question of a list or one-at-a-time: the rule's verdicts
+        return diff_design(rs, metrics=metrics, correction=correction, alpha=alpha, margin=margin, power=power)
+    report = _report(_baseline_families(rs, baseline, metrics), correction, alpha, _margins(rs, metrics, margin),
+                     power, changes=[], same_study=True)
+    if recorded is not None:
+        report.notes.insert(0, "the seeds of this result set were chosen sequentially for the questions of its "
+                               "design: verdicts against another baseline ignore the stopping rule")
+    return report
+
+
+def _baseline_families(rs: ResultSet, baseline: str, metrics: list[str]) -> list:
     loaded = _loaded(rs)
     variants = _variants(rs, loaded)
     base = variants[resolve_variant(loaded, baseline)]
     pairs = [(base, v) for v in variants if v is not base]
-    metrics = _metrics(rs, metrics)
-    items = _pair_rows(pairs, rs, rs, metrics)
-    title = f"each variant vs '{base['label']}'"
-    return _report([(title, "contrasts", items)], correction, alpha,
-                   _margins(rs, metrics, margin), power, changes=[], same_study=True)
+    return [(f"each variant vs '{base['label']}'", "contrasts", _pair_rows(pairs, rs, rs, metrics))]
 
 
 def diff_design(rs: ResultSet, *, axis: str | None = None, metrics: list[str] | None = None,
@@ -296,7 +435,34 @@ def diff_design(rs: ResultSet, *, axis: str | None = None, metrics: list[str] | 
     run among them are left out); and for each other axis L the K × L interaction
     (:func:`runtime.stats.interaction_test`, seeds as subjects, other axes averaged). One change
     at a time and lists compare each variant with ``base``.
+
+    A result set whose seeds a stopping rule chose (``lesion run --until-decided``) is judged by
+    that rule, replayed over its runs (:func:`sequential_design`), for the questions it was run
+    for; any other question gets the fixed-design verdicts and a note saying so.
     """
+    metrics = _metrics(rs, metrics)
+    margins = _margins(rs, metrics, margin)
+    families = _design_families(rs, axis, metrics)
+    recorded = rs.meta.get(SEQUENTIAL)
+    sequential, notes = None, []
+    if recorded is not None:
+        rule = Rule(**{k: recorded[k] for k in ("margin", "max_seeds", "round", "alpha")})
+        if (axis, metrics) == (recorded.get("axis"), [recorded["metric"]]) and margin in (None, rule.margin):
+            sequential = sequential_design(rs, rule, recorded["first"], axis=axis, metric=recorded["metric"])
+            margins = {recorded["metric"]: rule.margin}
+        else:
+            notes.append(f"the seeds of this result set were chosen sequentially for --axis {recorded.get('axis')}, "
+                         f"metric {recorded['metric']}, margin {rule.margin:g}: other questions get fixed-design "
+                         "verdicts that ignore the stopping rule")
+    report = _report(families, correction, alpha, margins, power, sequential=sequential, changes=[],
+                     same_study=True)
+    report.notes[:0] = notes
+    return report
+
+
+def _design_families(rs: ResultSet, axis: str | None, metrics: list[str] | None) -> list:
+    """The questions of the design as (question, kind, items) families, items not yet judged."""
+    metrics = _metrics(rs, metrics)
     ablation = rs.tree["ablation"]
     if ablation["mode"] != "grid":
         if axis is not None:
@@ -305,18 +471,18 @@ def diff_design(rs: ResultSet, *, axis: str | None = None, metrics: list[str] | 
         if "base" not in labels:
             raise ResultSetError("this study has no 'base' variant to compare with: name the reference with "
                                  f"--baseline LABEL (labels: {', '.join(labels)})")
-        return diff_baseline(rs, "base", metrics=metrics, correction=correction, alpha=alpha, margin=margin,
-                             power=power)
+        return _baseline_families(rs, "base", metrics)
     # the axes as written (0.0 stays 0.0, as in the labels), not as canonical JSON
     axes = [(a.key, list(a.values)) for a in _loaded(rs).spec.ablation.axis]
     keys = [k for k, _ in axes]
     if axis is not None and axis not in keys:
         raise ResultSetError(f"--axis {axis!r}: not an axis of this grid (axes: {', '.join(keys)})")
-    metrics = _metrics(rs, metrics)
-    margins = _margins(rs, metrics, margin)
     variants = {tuple(canonical_leaf(v["changes"].get(k)) for k in keys): v for v in _variants(rs)}
     cols, _ = _columns(rs, rs)
     values = {}
+
+    def hashes(cells: list[tuple]) -> frozenset:
+        return frozenset(variants[tuple(canonical_leaf(x) for x in c)]["hash"] for c in cells)
 
     def arm(cell: tuple, m: str) -> dict:
         v = variants[tuple(canonical_leaf(x) for x in cell)]
@@ -348,12 +514,13 @@ def diff_design(rs: ResultSet, *, axis: str | None = None, metrics: list[str] | 
                 for m in metrics:
                     simple.append(({"contrast": f"{step} at {at}" if at else step,
                                     "variant_a": variants[tuple(map(canonical_leaf, ci))]["label"],
-                                    "variant_b": variants[tuple(map(canonical_leaf, cj))]["label"], "metric": m},
+                                    "variant_b": variants[tuple(map(canonical_leaf, cj))]["label"], "metric": m,
+                                    "uses": hashes([ci, cj])},
                                    (arm(ci, m), arm(cj, m))))
             if others:
                 for m in metrics:
-                    main.append(({"contrast": step, "variant_a": None,
-                                  "variant_b": None, "metric": m}, (averaged(cells_i, m), averaged(cells_j, m))))
+                    main.append(({"contrast": step, "variant_a": None, "variant_b": None, "metric": m,
+                                  "uses": hashes(cells_i + cells_j)}, (averaged(cells_i, m), averaged(cells_j, m))))
         if others:
             families.append((f"does {key} matter at each {other_text}?", "contrasts", simple))
             families.append((f"does {key} matter on average over {other_text}?", "contrasts", main))
@@ -371,7 +538,7 @@ def diff_design(rs: ResultSet, *, axis: str | None = None, metrics: list[str] | 
                 items.append(({"contrast": f"{key} × {other}", "variant_a": None, "variant_b": None,
                                "metric": m}, grid))
             families.append((f"does the effect of {key} depend on {other}?", "interaction", items))
-    return _report(families, correction, alpha, margins, power, changes=[], same_study=True)
+    return families
 
 
 def _cell(keys: list[str], fixed: dict[int, object], combo: tuple) -> tuple:

@@ -64,15 +64,24 @@ def lane_bytes(variant: Variant, features: int, outputs: int) -> int:
 
 def plan(variants: list[Variant], seeds: list[int], *, lanes: int | None = None,
          max_lanes: int = DEFAULT_MAX_LANES, lane_budget: dict[str, int] | None = None,
-         widths: dict[str, int] | None = None) -> list[Group]:
+         widths: dict[str, int] | None = None, seeds_of: dict[str, list[int]] | None = None,
+         per_round: int | None = None) -> list[Group]:
     """Groups of runs in a fixed order (structure in order of first appearance, then variant
     order, then seed order). ``lanes`` forces the width; ``lane_budget`` maps a structure key to
     the most lanes its memory allows; ``widths`` maps a structure key to the width its stored runs
     were computed at, which a resumed study keeps (over ``lanes`` and the budget) so that one
-    structure never mixes widths."""
+    structure never mixes widths.
+
+    Seeds added in rounds (``lesion run --until-decided``): ``seeds_of`` maps a variant hash to the
+    seeds to plan for it (variants not in it are left out), and ``per_round`` K makes a structure's
+    width ``min(its variants × K, max_lanes)`` — one full round of the structure, the same in
+    every round and on resume, whatever arms are still open (a run's bits must not depend on the
+    round it ran in); a round with fewer open arms is padded."""
     by_structure: dict[str, list[Run]] = {}
+    count: dict[str, int] = {}
     for v in variants:
-        for s in seeds:
+        count[v.structure] = count.get(v.structure, 0) + 1
+        for s in (seeds if seeds_of is None else seeds_of.get(v.hash, [])):
             by_structure.setdefault(v.structure, []).append(Run(run_id(v.hash, s), v, s))
     groups = []
     for structure, runs in by_structure.items():
@@ -81,7 +90,7 @@ def plan(variants: list[Variant], seeds: list[int], *, lanes: int | None = None,
         elif lanes is not None:
             width = lanes
         else:
-            width = min(len(runs), max_lanes)
+            width = min(len(runs) if per_round is None else count[structure] * per_round, max_lanes)
             if lane_budget and structure in lane_budget:
                 width = max(1, min(width, lane_budget[structure]))
         for i in range(0, len(runs), width):

@@ -26,10 +26,11 @@ from compiler.spec import METRICS
 from runtime import __version__, environment, execute, guard, programs
 from runtime.execute import GroupResult, InProcess
 from runtime.plan import Group, plan
-from runtime.store import (STAGING, ResultSet, ResultSetError, column, open_result_set, refuse_link, result_dir,
-                           write_results, writer_lock)
+from runtime.store import (SEQUENTIAL, STAGING, ResultSet, ResultSetError, column, open_result_set, refuse_link,
+                           result_dir, write_results, writer_lock)
 
-__all__ = ["RunReport", "run_study", "study_meta", "varied_keys", "typed_key_columns", "group_tables", "datasets_for"]
+__all__ = ["RunReport", "run_study", "run_until_decided", "study_meta", "varied_keys", "typed_key_columns",
+           "group_tables", "datasets_for"]
 
 
 @dataclass
@@ -238,13 +239,28 @@ def _refuse_other_width(todo: list[Group], widths: dict[str, int], lanes: int | 
                f"omit --lanes to keep it, or recompute every run with --fresh --lanes {lanes}"))
 
 
+def _keep_rule(stored: ResultSet | None, meta: dict, sequential: dict | None, where: Path) -> None:
+    """The stopping rule that chose a result set's seeds stays in its metadata: another rule on the
+    same runs would make its looks and decisions a different procedure, so it is refused."""
+    recorded = stored.meta.get(SEQUENTIAL) if stored is not None else None
+    if recorded is not None and sequential is not None and recorded != sequential:
+        keys = sorted(set(recorded) | set(sequential))
+        differ = ", ".join(f"{k} {recorded.get(k)} → {sequential.get(k)}" for k in keys
+                           if recorded.get(k) != sequential.get(k))
+        raise ResultSetError(f"{where}: its seeds were chosen by another stopping rule ({differ}); give the same "
+                             "--margin/--max-seeds/--round/--axis to continue it, or --out another folder")
+    if sequential is not None or recorded is not None:
+        meta[SEQUENTIAL] = sequential or recorded
+
+
 def _timing_path() -> Path:
     return programs.cache_dir() / "timing.json"
 
 
 def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = False,
               progress: Callable | None = None, on_wait: Callable | None = None, executor=None,
-              checkpoint: Callable[[], None] | None = None) -> RunReport:
+              checkpoint: Callable[[], None] | None = None, seeds_of: dict[str, list[int]] | None = None,
+              sequential: dict | None = None) -> RunReport:
     """Compute every run of the study not already stored; write each group as it finishes.
 
     ``executor`` runs the groups (default :class:`runtime.execute.InProcess`); whatever it is,
@@ -262,6 +278,10 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
 
     ``checkpoint()`` is called at safe points (between epochs, between groups, after each write,
     while waiting for the lock); it may raise (:class:`runtime.interrupt.Interrupted`) to stop.
+
+    ``seeds_of`` (variant hash → seeds) and ``sequential`` (the stopping rule's record, with its
+    ``round``) are how :func:`run_until_decided` runs one look: only those runs, at the widths of
+    :func:`runtime.plan.plan`'s ``per_round``, the rule recorded in the metadata.
 
     ``progress(event, **info)`` receives ("plan", groups=…, runs=…, estimate=…), ("group", group=…,
     todo=…), ("epoch", done=…, total=…), ("stored", group=…, result=…)."""
@@ -282,7 +302,8 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
     # Everything that can refuse the study (data, memory) is decided before the result set's
     # folder exists, from all runs (never from what is missing, so widths stay a function of
     # the structure).
-    groups = plan(loaded.variants, seeds, lanes=lanes)
+    shape = dict(seeds_of=seeds_of, per_round=sequential["round"] if sequential else None)
+    groups = plan(loaded.variants, seeds, lanes=lanes, **shape)
     if executor is None:  # the memory checked is this machine's
         guard.check_data(groups, where=where, base_dir=base_dir)
     loaded_data: dict = {}
@@ -291,7 +312,7 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
     if executor is None:
         budget = guard.lane_budget(groups, data)
         if lanes is None and any(g.lane_width > budget[g.structure] for g in groups):
-            groups = plan(loaded.variants, seeds, lane_budget=budget)
+            groups = plan(loaded.variants, seeds, lane_budget=budget, **shape)
             data = datasets_for(groups, base_dir, loaded_data)
         guard.check(guard.estimate(groups, data), lanes_given=lanes is not None, where=where)
     check = checkpoint or (lambda: None)
@@ -302,6 +323,7 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
             if found is not None and found.study_hash != loaded.study_hash:
                 raise ResultSetError(f"{folder}: holds study {found.study_hash[:12]}, not {loaded.study_hash[:12]}")
         stored = _stored(target)
+        _keep_rule(stored, meta, sequential, target)
         done = set()
         if stored is not None:
             for rid, fp in zip(stored.runs.column("run_id").to_pylist(),
@@ -311,7 +333,7 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
         # Structures with reused runs keep the width those were computed at.
         widths = _recorded_widths(stored, done)
         if widths:
-            groups = plan(loaded.variants, seeds, lanes=lanes, lane_budget=budget, widths=widths)
+            groups = plan(loaded.variants, seeds, lanes=lanes, lane_budget=budget, widths=widths, **shape)
             data = datasets_for(groups, base_dir, loaded_data)
         todo = _missing(groups, done)
         _refuse_other_width(todo, widths, lanes, target, fresh)
@@ -358,3 +380,31 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
         computed = sum(len(g.runs) for g in todo)
         return RunReport(path, planned, computed, planned - computed, diverged, warnings, len(todo),
                          compile_s, run_s)
+
+
+def run_until_decided(loaded, out: Path, rule, *, axis: str | None = None, **kw) -> tuple[list[RunReport], object]:
+    """Run the study's seeds, then round after round the seeds the stopping rule asks for, until
+    every question of the design is settled or the rule's maximum is reached
+    (:mod:`runtime.sequential`, the questions of :func:`runtime.diff.sequential_design`).
+
+    Each look is one :func:`run_study` of only the runs it needs (arms still open, the round's new
+    seeds), so settled arms stop consuming compute and open ones share compile groups; the next
+    look is found by replaying the rule over the stored runs. The rule's decisions at a look
+    depend only on the runs of that look, so a killed procedure, run again, replays to where it
+    stopped and continues with the same decisions and the same seeds. Returns the report of each
+    look's runs and the replayed procedure (:class:`runtime.diff.Sequential`); ``kw`` goes to
+    :func:`run_study` (lanes, executor, progress, checkpoint…)."""
+    from runtime.diff import sequential_design
+
+    spec = loaded.spec
+    first = spec.study.seed_list
+    record = {**rule.as_dict(), "first": first, "axis": axis, "metric": spec.study.metric}
+    path = result_dir(out, spec.study.name, loaded.study_hash)
+    seeds_of = {v.hash: first for v in loaded.variants}
+    reports = []
+    while True:
+        reports.append(run_study(loaded, out, seeds_of=seeds_of, sequential=record, **kw))
+        replayed = sequential_design(open_result_set(path), rule, first, axis=axis, metric=record["metric"])
+        if not replayed.missing:
+            return reports, replayed
+        seeds_of = replayed.missing

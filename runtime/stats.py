@@ -43,7 +43,7 @@ import numpy as np
 from scipy import stats as sps
 
 __all__ = ["Summary", "Comparison", "summarize", "compare", "sign_flip_pvalue", "adjust", "family_alpha",
-           "interval", "decide", "tost_pvalue", "power_paired", "detectable_difference", "seeds_needed",
+           "interval", "t_interval", "decide", "tost_pvalue", "power_paired", "detectable_difference", "seeds_needed",
            "improvement", "interaction_test", "MIN_PER_SIDE", "EXACT_MAX_PAIRS", "RANDOM_SIGN_PATTERNS",
            "POWER"]
 
@@ -311,12 +311,20 @@ def interval(comparison: Comparison, alpha: float) -> tuple[float, float]:
     """``diff ± t_{df, 1−α/2} · se``: the two-sided 1 − α interval of B − A (the t interval of
     :func:`compare` at another level); no spread gives the point ``[diff, diff]``."""
     c = comparison
-    if c.test == "none" or math.isnan(c.se):
+    if c.test == "none":
         return math.nan, math.nan
-    if c.se == 0:
-        return c.diff, c.diff
-    half = float(sps.t.ppf(1 - alpha / 2, c.df)) * c.se
-    return c.diff - half, c.diff + half
+    return t_interval(c.diff, c.se, c.df, alpha)
+
+
+def t_interval(diff: float, se: float, df: float, alpha: float) -> tuple[float, float]:
+    """``diff ± t_{df, 1−α/2} · se`` from the estimate itself (NaN without an se, the point
+    ``[diff, diff]`` without spread): what :func:`interval` reads off a comparison."""
+    if math.isnan(se):
+        return math.nan, math.nan
+    if se == 0:
+        return diff, diff
+    half = float(sps.t.ppf(1 - alpha / 2, df)) * se
+    return diff - half, diff + half
 
 
 def decide(low: float, high: float, direction: str, margin: float | None = None) -> str:

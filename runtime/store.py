@@ -39,8 +39,8 @@ import pyarrow.parquet as pq
 from compiler.errors import UserError
 
 __all__ = ["column", "ResultSet", "ResultSetError", "open_result_set", "result_dir", "write_results", "writer_lock",
-           "META_KEYS", "DIGEST_KEYS", "RUNS", "CURVES", "STAGING", "refuse_link", "runs_digest", "curves_digest",
-           "edits"]
+           "META_KEYS", "DIGEST_KEYS", "SEQUENTIAL", "RUNS", "CURVES", "STAGING", "refuse_link", "runs_digest",
+           "curves_digest", "edits"]
 
 RUNS = "runs.parquet"
 _TMP = ".parquet-tmp"
@@ -50,6 +50,9 @@ STAGING = ".fresh"
 META_KEYS = ("spec_source", "spec_path", "canonical_json", "study_hash", "version", "environment")
 # Optional on reading: result sets written before lesion recorded them have none.
 DIGEST_KEYS = ("runs_digest", "curves_digest")
+# Present only on a result set whose seeds were added by a stopping rule (``lesion run
+# --until-decided``): the rule, the looks and the seeds run (JSON), so show and diff use its inference.
+SEQUENTIAL = "sequential"
 
 
 _NUMPY = {pa.int32(): np.int32, pa.int64(): np.int64, pa.float32(): np.float32, pa.float64(): np.float64}
@@ -131,6 +134,8 @@ def _metadata(meta: dict) -> dict[bytes, bytes]:
         value = meta[key]
         text = value if isinstance(value, str) else json.dumps(value, sort_keys=True)
         out[f"lesion.{key}".encode()] = text.encode()
+    if meta.get(SEQUENTIAL) is not None:
+        out[f"lesion.{SEQUENTIAL}".encode()] = json.dumps(meta[SEQUENTIAL], sort_keys=True).encode()
     return out
 
 
@@ -192,6 +197,9 @@ def runs_digest(runs: pa.Table, metadata: dict[bytes, bytes]) -> str:
     h = hashlib.sha256()
     for key in META_KEYS:
         _feed(h, metadata.get(f"lesion.{key}".encode(), b""))
+    rule = metadata.get(f"lesion.{SEQUENTIAL}".encode())
+    if rule is not None:   # fed only when present: the digests of other result sets stay as they were
+        _feed(h, rule)
     return _table_digest(runs, ["run_id"], h)
 
 
@@ -229,6 +237,12 @@ def _read_meta(schema: pa.Schema, path: Path) -> dict:
         meta["environment"] = json.loads(meta["environment"])
     except json.JSONDecodeError as err:
         raise ResultSetError(f"{path}: the recorded environment is not valid JSON ({err})") from None
+    rule = raw.get(f"lesion.{SEQUENTIAL}".encode())
+    if rule is not None:
+        try:
+            meta[SEQUENTIAL] = json.loads(rule)
+        except json.JSONDecodeError as err:
+            raise ResultSetError(f"{path}: the recorded stopping rule is not valid JSON ({err})") from None
     return meta
 
 

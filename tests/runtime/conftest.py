@@ -54,6 +54,34 @@ def tiny_spec():
     return _write_tiny
 
 
+# A list study for `run --until-decided`: the base, an arm whose learning rate is too small to learn
+# in 3 epochs (clearly worse), and a light dropout (close to the base); all share one structure.
+DECIDED_VARIANTS = """
+[ablation]
+mode = "list"
+include_base = true
+[[ablation.variant]]
+label = "stalled"
+set = { "optimizer.learning_rate" = 0.0005 }
+[[ablation.variant]]
+label = "light"
+set = { "regularization.dropout.rate" = 0.02 }
+"""
+
+
+def _write_decided(tmp: Path, name="seq") -> Path:
+    path = _write_tiny(tmp, name=name, seeds=6, rates="[0.1]")
+    text = path.read_text()
+    path.write_text(text[:text.index("[ablation]")] + DECIDED_VARIANTS.lstrip())
+    return path
+
+
+@pytest.fixture(scope="session")
+def decided_spec():
+    """decided_spec(folder, name=...) -> spec path of a small list study to run until decided"""
+    return _write_decided
+
+
 @pytest.fixture(autouse=True, scope="session")
 def _private_compile_cache(tmp_path_factory):
     # The persistent compile cache is a speed-up only; tests keep theirs apart from the user's.

@@ -242,3 +242,19 @@ def test_a_worker_killed_mid_study_loses_nothing_and_writes_nothing_twice(cluste
     assert len(ids) == len(set(ids)) == 6
     assert there.curves.num_rows == 6 * 12
     _assert_same_bits(here, there)
+
+
+def test_until_decided_on_the_cluster_matches_in_process(cluster, tmp_path, decided_spec):
+    # `run --until-decided --cluster`: each look's groups are tasks; same looks, seeds, decisions, bits
+    from runtime.runner import run_until_decided
+    from runtime.sequential import Rule
+
+    lc, _ = cluster
+    loaded = load_study(decided_spec(tmp_path))
+    rule = Rule(margin=0.01, max_seeds=12, round=3)
+    here, seq_here = run_until_decided(loaded, tmp_path / "here", rule)
+    with DaskExecutor(lc.scheduler_address) as ex:
+        there, seq_there = run_until_decided(loaded, tmp_path / "there", rule, executor=ex)
+    assert seq_there.procedure.looks == seq_here.procedure.looks
+    assert seq_there.procedure.settled == seq_here.procedure.settled
+    _assert_same_bits(open_result_set(here[-1].path), open_result_set(there[-1].path))
