@@ -14,22 +14,23 @@ from __future__ import annotations
 
 import sys
 
-try:
-    import errno
-    import json
-    import os
-    import time
-    from enum import Enum
-    from pathlib import Path
+from runtime.start import started, stop_while_starting
 
-    import typer
-    from typer.core import TyperCommand, TyperGroup
+if __name__ == "__main__":  # `python -m runtime.cli`: before the imports below, as runtime.start.main
+    stop_while_starting()
 
-    from compiler.errors import SpecError, printable
-    from runtime.store import ResultSetError
-except KeyboardInterrupt:  # Ctrl-C while lesion starts: nothing is computed yet, nothing to keep
-    sys.stderr.write("interrupted\n")
-    raise SystemExit(130) from None
+import errno
+import json
+import os
+import time
+from enum import Enum
+from pathlib import Path
+
+import typer
+from typer.core import TyperCommand, TyperGroup
+
+from compiler.errors import SpecError, printable
+from runtime.store import ResultSetError
 
 __all__ = ["app", "main", "USER_ERRORS"]
 
@@ -49,6 +50,7 @@ class _Group(TyperGroup):
 
     def invoke(self, ctx: typer.Context):
         try:
+            started()
             return super().invoke(ctx)
         except KeyboardInterrupt:  # Ctrl-C outside `run`'s own handling: nothing of lesion's is half-written
             typer.echo("interrupted", err=True)
@@ -849,7 +851,7 @@ def report(
 
 
 def main() -> None:
-    """Console-script entry point (``lesion = "runtime.cli:main"``).
+    """The command line, after :func:`runtime.start.main` (the console script) or ``python -m``.
 
     Standard output that cannot take what a command prints (closed with ``>&-``, a full disk,
     ``>/dev/full``) is a one-line error and exit 2, never a traceback nor output silently
