@@ -13,24 +13,24 @@ Contract:
 from __future__ import annotations
 
 import math
-
 import sys
 
-try:
-    import errno
-    import json
-    import os
-    import time
-    from enum import Enum
-    from pathlib import Path
+from runtime.start import started, stop_while_starting
 
-    import typer
-    from typer.core import TyperCommand, TyperGroup
+if __name__ == "__main__":  # `python -m runtime.cli`: before the imports below, as runtime.start.main
+    stop_while_starting()
 
-    from compiler.errors import UserError, printable
-except KeyboardInterrupt:  # Ctrl-C while lesion starts: nothing is computed yet, nothing to keep
-    sys.stderr.write("interrupted\n")
-    raise SystemExit(130) from None
+import errno
+import json
+import os
+import time
+from enum import Enum
+from pathlib import Path
+
+import typer
+from typer.core import TyperCommand, TyperGroup
+
+from compiler.errors import UserError, printable
 
 __all__ = ["app", "main"]
 
@@ -45,6 +45,7 @@ class _Group(TyperGroup):
 
     def invoke(self, ctx: typer.Context):
         try:
+            started()
             return super().invoke(ctx)
         except KeyboardInterrupt:  # Ctrl-C outside `run`'s own handling: nothing of lesion's is half-written
             typer.echo("interrupted", err=True)
@@ -912,7 +913,7 @@ def report(
 
 
 def main() -> None:
-    """Console-script entry point (``lesion = "runtime.cli:main"``).
+    """The command line, after :func:`runtime.start.main` (the console script) or ``python -m``.
 
     Standard output that cannot take what a command prints (closed with ``>&-``, a full disk,
     ``>/dev/full``) is a one-line error and exit 2, never a traceback nor output silently
