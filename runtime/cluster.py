@@ -43,7 +43,7 @@ import re
 import uuid
 from typing import Callable
 
-from runtime.environment import capture, differences, fingerprint
+from runtime.environment import capture, differences, fingerprint, single_threaded_xla
 from runtime.execute import GroupResult, enable_compile_cache, execute_group
 
 __all__ = ["ClusterError", "DaskExecutor", "parse_address", "worker_environment"]
@@ -80,9 +80,12 @@ _worker_env: dict | None = None
 
 
 def worker_environment() -> dict:
-    """This worker process's environment, captured once, after enabling its compile cache."""
+    """This worker process's environment, captured once, after giving XLA:CPU its one-thread pool
+    (as ``lesion run`` does: a run's bits do not depend on the worker's cores) and enabling its
+    compile cache."""
     global _worker_env
     if _worker_env is None:
+        single_threaded_xla()
         enable_compile_cache()
         _worker_env = capture()
     return _worker_env

@@ -1,0 +1,97 @@
+"""Every core of this machine: a study's compile groups in worker processes, with one machine's bits.
+
+Contract: :class:`LocalWorkers` is an executor in the sense of :class:`runtime.execute.InProcess`
+— ``run(groups, data, environment, progress)`` yields ``(group, GroupResult)`` as groups finish,
+in any order. ``workers`` processes (default: the CPUs this process may use) each execute one
+group at a time with :func:`runtime.execute.execute_group`; the caller stays the single writer.
+
+- Bits: a group is executed unchanged (its lane width and padding), and every worker, like
+  ``lesion run`` itself, computes with a one-thread XLA:CPU pool
+  (:func:`runtime.environment.single_threaded_xla`), so a run's bits do not depend on the number
+  of workers, on which one ran it, nor on the cores the machine has. Each result records the
+  environment of the worker that computed it.
+- Why processes: the cores are used by groups side by side, not by splitting one group's small
+  products (a run on this 2-core machine kept about 1.2 cores busy). Worker processes start with
+  Python's ``spawn`` (a fork of a process running XLA's threads is unsafe) and pay their own
+  ``import jax``; a study of one group, or ``workers=1``, runs in this process instead, where it
+  also streams its epochs to ``progress``. Workers use the compile cache: the first group of a
+  program compiles it, and groups of the same program that start later load it.
+- ``progress`` hears of a worker's group when it is back (a "group" event, then its last
+  "epoch"), as from a cluster.
+- Interruptions: workers ignore SIGINT, so Ctrl-C reaches only this process; leaving the loop
+  early (an interrupt, an error) cancels the groups not started and ends the workers, so what
+  was yielded is all there is and nothing is computed after it. A worker that dies (killed, out
+  of memory) fails the study with :class:`WorkerError`; the groups already yielded are stored.
+"""
+
+from __future__ import annotations
+
+import multiprocessing
+import signal
+from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
+from concurrent.futures.process import BrokenProcessPool
+
+from runtime.environment import capture, single_threaded_xla, usable_cores
+from runtime.execute import GroupResult, InProcess, enable_compile_cache, execute_group
+
+__all__ = ["LocalWorkers", "WorkerError"]
+
+
+class WorkerError(Exception):
+    """A worker process ended without returning its group, with a one-line message."""
+
+
+_worker_env: dict | None = None
+
+
+def _start_worker() -> None:
+    global _worker_env
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    single_threaded_xla()
+    enable_compile_cache()
+    _worker_env = capture()
+
+
+def _execute(group, dataset) -> GroupResult:
+    return execute_group(group, dataset, _worker_env)
+
+
+class LocalWorkers:
+    """Runs compile groups in ``workers`` processes on this machine (see the module docstring)."""
+
+    def __init__(self, workers: int | None = None):
+        self.workers = max(1, workers if workers is not None else usable_cores())
+
+    def run(self, groups, data, environment, progress=None):
+        groups = list(groups)
+        n = min(self.workers, len(groups))
+        if n <= 1:
+            yield from InProcess().run(groups, data, environment, progress)
+            return
+        pool = ProcessPoolExecutor(n, mp_context=multiprocessing.get_context("spawn"),
+                                   initializer=_start_worker)
+        pending = {pool.submit(_execute, g, data[g.group_id]): g for g in groups}
+        try:
+            while pending:
+                done, _ = wait(pending, return_when=FIRST_COMPLETED)
+                for fut in done:
+                    g = pending.pop(fut)
+                    try:
+                        result = fut.result()
+                    except BrokenProcessPool:
+                        raise WorkerError(f"a worker process died while computing group {g.group_id} "
+                                          "(killed, or out of memory?); the groups finished so far are "
+                                          "stored: run the same command again to resume") from None
+                    if progress:
+                        epochs = g.runs[0].variant.spec.training.epochs
+                        progress("group", group=g, todo=len(g.runs))
+                        progress("epoch", done=epochs, total=epochs)
+                    yield g, result
+        finally:
+            if pending:
+                # Groups still running would finish unseen (their results are dropped), so the
+                # workers end now instead of keeping the interrupted study alive.
+                # ProcessPoolExecutor only gains terminate_workers() in Python 3.14.
+                for process in list((pool._processes or {}).values()):
+                    process.terminate()
+            pool.shutdown(wait=True, cancel_futures=True)
