@@ -21,6 +21,7 @@ demo: $(STAMP)
 	  $(BIN)/lesion show "$$path" && \
 	  $(BIN)/lesion plot "$$path" --kind curves && \
 	  $(BIN)/lesion plot "$$path" --kind arms && \
+	  $(BIN)/lesion report "$$path" && \
 	  echo "result set: $$path  (try: $(BIN)/lesion replay $$path)"
 
 # Branch coverage of the package, measured in the test process (subprocesses are not counted).

@@ -9,8 +9,10 @@ builds — but does not jit — pure, vmappable functions of
 - ``key``: the run's root key :func:`seed_key` ``(seed)``;
 - ``data_x``, ``data_y``: the whole :class:`compiler.data.Dataset` arrays, shared by all lanes.
 
-``init`` draws the run's train/validation split and fits standardization (mean, population
-standard deviation; constant features get scale 1) on its training rows. ``epoch`` is a whole
+``init`` draws the run's train/validation split and fits standardization on its training rows
+(:func:`fit_standardization`: mean, population standard deviation, scale 1 for a feature
+constant up to rounding; mean 0 and scale 1 when ``data.standardize`` is false). Targets are
+never standardized. ``epoch`` is a whole
 epoch: shuffle, every step in ``lax.scan``, then the validation split in inference mode;
 ``train`` is ``init`` then a scan over ``epochs``. Metrics per epoch (``Program.metric_names``):
 ``train_divergence`` and ``train_penalty`` (``λ/2‖W‖²``, 0 when decay is decoupled) averaged
@@ -54,7 +56,7 @@ from compiler.data import Dataset
 from compiler.hashing import knobs_of, structure_key
 from compiler.spec import Spec, WarmupCosine, train_size
 
-__all__ = ["Program", "Carry", "compile_variant", "knob_vector", "seed_key", "param_digest", "permutation",
+__all__ = ["Program", "Carry", "compile_variant", "fit_standardization", "knob_vector", "seed_key", "param_digest", "permutation",
            "SPLIT", "INIT", "SHUFFLE", "DROPOUT"]
 
 # Purpose tags of the random streams; fixed forever, since they decide every run's bits.
@@ -99,8 +101,9 @@ class _Parts(NamedTuple):
 
 
 def seed_key(seed: int) -> jax.Array:
-    """The root key of a run: a typed threefry key."""
-    return jax.random.key(seed)
+    """The root key of a run: a typed threefry key. The generator is named, not taken from
+    ``jax_default_prng_impl``: another one (``rbg``) would draw other numbers from the same seed."""
+    return jax.random.key(seed, impl="threefry2x32")
 
 
 def permutation(key: jax.Array, n: int) -> jax.Array:
@@ -143,6 +146,26 @@ def _all_finite(tree) -> jax.Array:
     return jnp.all(jnp.stack([jnp.all(jnp.isfinite(leaf)) for leaf in jax.tree.leaves(tree)]))
 
 
+def fit_standardization(x_train: jax.Array) -> tuple[jax.Array, jax.Array]:
+    """Per-feature mean and scale of the training rows ``[n, features]`` (float32).
+
+    The scale is the population standard deviation, except for a feature that is constant up to
+    rounding: its scale is 1, so it is only centred. A feature constant in the training rows has
+    a float32 variance of about 1e-16, not 0, and dividing a validation value by its square root
+    would blow it up by 1e8. "Constant up to rounding" is scikit-learn's ``StandardScaler`` test
+    (``sklearn.preprocessing._data._is_constant_feature``): ``var <= n·eps·var + (n·mean·eps)²``,
+    the error bound of the two-pass variance (Chan, Golub & LeVeque 1983), here with float32's
+    eps since that is the precision the variance is computed in (scikit-learn accumulates in
+    float64 and uses its eps). Where the test fails the scale is the plain standard deviation,
+    bit for bit what it was before the test existed."""
+    n = x_train.shape[0]
+    mean = jnp.mean(x_train, axis=0)
+    var = jnp.var(x_train, axis=0)
+    eps = jnp.finfo(jnp.float32).eps
+    constant = var <= n * eps * var + jnp.square(n * mean * eps)
+    return mean, jnp.where(constant, 1.0, jnp.sqrt(var))
+
+
 def compile_variant(variant: Spec, dataset: Dataset, zero_knobs: frozenset[str] = frozenset()) -> Program:
     """Pure training functions for one resolved variant (``model.hidden`` a list) and its data;
     ``zero_knobs`` as in the module contract."""
@@ -163,6 +186,7 @@ def compile_variant(variant: Spec, dataset: Dataset, zero_knobs: frozenset[str] 
     widths = list(variant.model.widths)
     names = model.layer_names(len(widths) + 1)
     knob_names = tuple(knobs_of(variant))
+    fit_scale = variant.data.standardize
     no_dropout_masks = ("regularization.dropout.rate" in zero_knobs
                         and variant.regularization.dropout.kind in ("inverted", "scaled"))
 
@@ -193,19 +217,18 @@ def compile_variant(variant: Spec, dataset: Dataset, zero_knobs: frozenset[str] 
         data_x = jnp.asarray(data_x)
         order = permutation(jax.random.fold_in(key, SPLIT), n)
         train_idx, val_idx = order[:n_train], order[n_train:]
-        x_train = data_x[train_idx]
-        mean = jnp.mean(x_train, axis=0)
-        std = jnp.std(x_train, axis=0)
+        mean, scale = fit_standardization(data_x[train_idx]) if fit_scale else \
+            (jnp.zeros((features,), jnp.float32), jnp.ones((features,), jnp.float32))
         params, state = p.network.init(jax.random.fold_in(key, INIT), features)
         return Carry(params, state, p.tx.init(params), dict(knobs), jnp.int32(0),
                      train_idx.astype(jnp.int32), val_idx.astype(jnp.int32), mean,
-                     jnp.where(std > 0, std, 1.0), jax.random.fold_in(key, SHUFFLE),
+                     scale, jax.random.fold_in(key, SHUFFLE),
                      jax.random.fold_in(key, DROPOUT), jnp.bool_(False), jnp.int32(-1))
 
     def scores(p, params, state, x, y):
         """Inference-mode divergence and accuracy/RMSE on standardized inputs."""
         # Inference draws no dropout masks, so any key will do.
-        z, _ = p.network.apply(params, state, x, jax.random.key(0), None, False)
+        z, _ = p.network.apply(params, state, x, seed_key(0), None, False)
         out = {"divergence": jnp.mean(p.divergence.per_example(z, y))}
         if not classification:
             out["rmse"] = jnp.sqrt(jnp.mean(jnp.square(z - y)))

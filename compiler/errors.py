@@ -10,7 +10,7 @@ from __future__ import annotations
 import re
 from dataclasses import dataclass, field
 
-__all__ = ["Problem", "SpecError", "dotted"]
+__all__ = ["Problem", "SpecError", "dotted", "printable"]
 
 
 @dataclass(frozen=True)
@@ -23,7 +23,7 @@ class Problem:
     def render(self) -> str:
         where = f"{self.file or '<spec>'}:{self.line if self.line is not None else 1}"
         key = dotted(self.loc)
-        return _one_line(f"{where}: {key}: {self.message}" if key else f"{where}: {self.message}")
+        return printable(f"{where}: {key}: {self.message}" if key else f"{where}: {self.message}")
 
 
 @dataclass
@@ -35,12 +35,18 @@ class SpecError(Exception):
 
 
 # Control characters and line separators (what str.splitlines splits on) from a quoted key or a
-# value: escaped, so that one problem stays one line.
-_BREAKS = re.compile(r"[\x00-\x08\x0a-\x1f\x7f-\x9f\u2028\u2029]")
+# value: escaped, so that one problem stays one line. Bidirectional controls too (Unicode TR #9,
+# the explicit embedding, override and isolate marks): a terminal would reorder the text around
+# them, so what is printed would not read as what is written (CVE-2021-42574, "Trojan Source").
+_BREAKS = re.compile(r"[\x00-\x08\x0a-\x1f\x7f-\x9f\u061c\u200e\u200f\u2028-\u202e\u2066-\u2069]")
 
 
-def _one_line(text: str) -> str:
+def printable(text: str) -> str:
+    """``text`` safe to print on a terminal as one line: control, line-separator and
+    bidirectional-control characters as visible escapes (``\\n``, ``\\x1b``, ``\\u202e``).
+    For labels and values written by users, wherever they reach a terminal."""
     return _BREAKS.sub(lambda m: m.group().encode("unicode_escape").decode("ascii"), text)
+
 
 
 def dotted(loc: tuple[str | int, ...]) -> str:

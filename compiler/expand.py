@@ -14,10 +14,13 @@ to ``adam`` drops sgd's defaults, while a key the user set that the new kind lac
 
 from __future__ import annotations
 
+import collections
 import copy
 import difflib
 import itertools
 import json
+import math
+import os
 import types
 import typing
 from dataclasses import dataclass, field
@@ -26,12 +29,15 @@ from typing import Any, Union
 from pydantic import BaseModel, ValidationError
 
 from compiler.errors import Problem, SpecError, dotted
-from compiler.hashing import structure_key, variant_hash
+from compiler.hashing import identity
 from compiler.spec import NeuronBudget, Spec
 
-__all__ = ["Variant", "expand", "field_paths", "format_value", "pydantic_problems"]
+__all__ = ["Variant", "expand", "max_variants", "MAX_VARIANTS", "field_paths", "format_value", "pydantic_problems"]
 
 BASE_LABEL = "base"
+# Expansion costs about 0.1 ms per variant and every variant runs for seconds to minutes, so a
+# study beyond this is almost always a typo (one axis too many); $LESION_MAX_VARIANTS raises it.
+MAX_VARIANTS = 10_000
 
 
 @dataclass(frozen=True)
@@ -99,14 +105,15 @@ def _check_key(key: str) -> str | None:
 
 # ── applying changes ────────────────────────────────────────────────────────────────────────────
 def _deep_set(tree: dict, key: str, value: Any) -> None:
+    """Set a dotted key in ``tree``, copying the tables on its path: the rest of the tree is
+    shared with the base (validation only reads it), which saves copying it whole per variant."""
     *head, last = key.split(".")
     node = tree
     for part in head:
         nxt = node.get(part)
-        if not isinstance(nxt, dict):
-            # A nested model given in a shorter form (e.g. hidden as a list) is replaced whole.
-            nxt = {}
-            node[part] = nxt
+        # A nested model given in a shorter form (e.g. hidden as a list) is replaced whole.
+        nxt = dict(nxt) if isinstance(nxt, dict) else {}
+        node[part] = nxt
         node = nxt
     node[last] = copy.deepcopy(value)
 
@@ -207,8 +214,40 @@ def _resolve(raw: dict) -> Spec:
     return spec
 
 
+def max_variants() -> int:
+    """The most variants a study may expand to: ``$LESION_MAX_VARIANTS``, else
+    :data:`MAX_VARIANTS`. Raises SpecError when the setting is not a positive whole number."""
+    text = os.environ.get("LESION_MAX_VARIANTS", "").strip()
+    if not text:
+        return MAX_VARIANTS
+    if not text.isdigit() or int(text) < 1:
+        raise SpecError([Problem(("ablation",), f"LESION_MAX_VARIANTS={text!r}: expected a positive whole number "
+                                                f"of variants (the default is {MAX_VARIANTS:,}), or leave it unset")])
+    return int(text)
+
+
+def _count(abl) -> tuple[int, str]:
+    """How many variants an ablation asks for, and how (for the message), before building any."""
+    if abl is None:
+        return 1, "the study"
+    if abl.mode == "list":
+        return len(abl.variant) + abl.include_base, "the list"
+    sizes = [len(a.values) for a in abl.axis]
+    if abl.mode == "grid":
+        return math.prod(sizes), f"the grid ({' × '.join(map(str, sizes))})"
+    return 1 + sum(sizes), "one value at a time (the base + " + " + ".join(map(str, sizes)) + ")"
+
+
 def expand(spec: Spec) -> list[Variant]:
     """The variants of a study, in a fixed order. Raises SpecError listing every problem."""
+    count, how = _count(spec.ablation)
+    limit = max_variants()
+    if count > limit:
+        # Counted, not built: a grid of three 200-value axes is 8 million variants, hours of
+        # expansion before any message.
+        raise SpecError([Problem(("ablation",), f"{how} makes {count:,} variants, above the limit of {limit:,}; "
+                                                "drop values or axes, or split the study (to go beyond, set "
+                                                f"LESION_MAX_VARIANTS={count} in the environment)")])
     raw = spec.model_dump(mode="python", exclude_unset=True, exclude={"ablation"}, round_trip=True)
     raw = json.loads(json.dumps(_plain(raw)))
     _with_kinds(raw, spec)
@@ -254,8 +293,9 @@ def expand(spec: Spec) -> list[Variant]:
 
     variants: list[Variant] = []
     by_hash: dict[str, Variant] = {}
+    memo: dict[str, bytes] = {}
     for label, changes, where, origins in candidates:
-        tree = copy.deepcopy(raw)
+        tree = dict(raw)
         for key, value in changes.items():
             _deep_set(tree, key, value)
         label = label or _label(changes)
@@ -270,7 +310,7 @@ def expand(spec: Spec) -> list[Variant]:
                                 "does not have: remove it from the base or set it only in the variants that use it")
                 problems.append(Problem(origins.get(cause, where), message))
             continue
-        vhash = variant_hash(resolved)
+        vhash, structure = identity(resolved, memo)
         if vhash in by_hash:
             first = by_hash[vhash]
             if abl is not None and abl.mode == "one_at_a_time" and first.label == BASE_LABEL:
@@ -278,11 +318,11 @@ def expand(spec: Spec) -> list[Variant]:
             problems.append(Problem(where, f"variant '{label}' is the same configuration as '{first.label}' "
                                            "(remove one of them)"))
             continue
-        v = Variant(len(variants), label, changes, resolved, vhash, structure_key(resolved))
+        v = Variant(len(variants), label, changes, resolved, vhash, structure)
         by_hash[vhash] = v
         variants.append(v)
-    labels = [v.label for v in variants]
-    for lab in sorted({x for x in labels if labels.count(x) > 1}):
+    counts = collections.Counter(v.label for v in variants)
+    for lab in sorted(x for x, n in counts.items() if n > 1):
         problems.append(Problem(("ablation",), f"two variants have the label '{lab}'"))
     if problems:
         raise SpecError(problems)

@@ -6,8 +6,9 @@ Contract:
   stored source); both return a :class:`LoadedStudy` or raise :class:`SpecError` carrying *every*
   problem of the file (all field errors at once, then, if the fields are valid, every expansion
   problem), each rendered ``FILE:LINE: dotted.key: what is wrong``.
-- Bad files (missing, a directory, over :data:`MAX_SPEC_BYTES`, binary, not UTF-8) are problems
-  too, never tracebacks; so are key paths of more than :data:`MAX_KEY_PARTS` parts and values
+- Bad files (missing, a directory, not a regular file (a FIFO, device or socket: refused
+  without opening it), over :data:`MAX_SPEC_BYTES`, binary, not UTF-8) are problems too, never
+  tracebacks; so are key paths of more than :data:`MAX_KEY_PARTS` parts and values
   nested deeper than Python's stack allows.
 - ``tomllib`` keeps no positions, so :func:`line_of` finds the line of a key path in the source
   with a small scanner of its own. It is best-effort: a path it cannot find falls back to the
@@ -21,6 +22,7 @@ from __future__ import annotations
 import dataclasses
 import os
 import re
+import stat
 import tomllib
 from bisect import bisect_right
 from dataclasses import dataclass
@@ -43,6 +45,8 @@ MAX_KEY_PARTS = 32
 # Possessive and anchored at a word start, so the search stays linear on any text.
 _KEY_PART = r"(?:(?<![A-Za-z0-9_-])[A-Za-z0-9_-]++|\"(?:[^\"\\\n]|\\.)*+\"|'[^'\n]*+')"
 _DEEP_KEY = re.compile(rf"(?>{_KEY_PART}[ \t]*+\.[ \t]*+){{{MAX_KEY_PARTS}}}{_KEY_PART}")
+_KINDS = {stat.S_IFIFO: "named pipe (FIFO)", stat.S_IFCHR: "character device", stat.S_IFBLK: "block device",
+          stat.S_IFSOCK: "socket"}
 
 
 @dataclass(frozen=True)
@@ -74,11 +78,22 @@ def _fail(name: str, message: str, line: int = 1, loc: tuple = ()) -> SpecError:
 def load_study(path: str | os.PathLike) -> LoadedStudy:
     """Read and load the spec file at ``path`` (see the module contract)."""
     name = os.fspath(path)
-    if os.path.isdir(name):
+    try:
+        # Judged before opening: opening a FIFO for reading blocks until a writer comes, and a
+        # device or a pipe may never end.
+        mode = os.stat(name).st_mode
+    except FileNotFoundError:
+        raise _fail(name, "no such file; check the path (spec files end in .toml)") from None
+    except OSError as err:
+        raise _fail(name, f"cannot read the file: {err.strerror or err}") from None
+    if stat.S_ISDIR(mode):
         raise _fail(name, "is a directory; expected a .toml spec file")
+    if not stat.S_ISREG(mode):
+        raise _fail(name, f"is a {_KINDS.get(stat.S_IFMT(mode), 'special file')}, not a regular file; "
+                          "save the spec to a .toml file and pass its path")
     try:
         with open(name, "rb") as fh:
-            # Bounded read: a device or pipe has no trustworthy size.
+            # Bounded read: the file may have grown since it was judged.
             data = fh.read(MAX_SPEC_BYTES + 1)
     except FileNotFoundError:
         raise _fail(name, "no such file; check the path (spec files end in .toml)") from None

@@ -44,6 +44,9 @@ Positive = Annotated[float, Field(gt=0.0, allow_inf_nan=False)]
 NonNegative = Annotated[float, Field(ge=0.0, allow_inf_nan=False)]
 Fraction = Annotated[float, Field(ge=0.0, le=1.0, allow_inf_nan=False)]
 Count = Annotated[int, Field(ge=1)]
+# data.standardize came after study hashes were fixed: at its default (true) it is left out of
+# every dump, hence of the canonical JSON, so specs written before it keep their study hash.
+Standardize = Annotated[bool, Field(exclude_if=lambda v: v is True)]
 # Large enough for any real study on one machine, small enough that a typo cannot ask for
 # terabytes before the resource estimate even runs.
 MAX_SAMPLES = 50_000_000
@@ -117,6 +120,8 @@ class SyntheticData(Strict):
     """Share of the rows held out for validation."""
     seed: Annotated[int, Field(ge=0, lt=2**31)] = 0
     """Seed of the data set itself; the split comes from each run's seed."""
+    standardize: Standardize = True
+    """Standardize the inputs per run on its training rows (mean 0, sd 1; targets never); false feeds them as they are."""
 
     @model_validator(mode="after")
     def _shape(self):
@@ -135,8 +140,9 @@ class SyntheticData(Strict):
 
 class FileData(Strict):
     """A table on disk (Parquet, CSV or NPZ). ``path`` is relative to the spec file's folder and
-    may not leave it (no absolute path, no ``..`` climbing out): a spec reads only files beside
-    or below it. A symbolic link placed there is followed; whoever placed it chose the target."""
+    may not leave it (no absolute path, no ``..`` climbing out, checked here; no symbolic link
+    leading out, checked by ``compiler.data`` where the file is opened): a spec reads only files
+    beside or below it."""
 
     kind: Literal["file"]
     """A table on disk."""
@@ -150,6 +156,8 @@ class FileData(Strict):
     """classification: integer class labels; regression: real-valued target."""
     validation: Annotated[float, Field(gt=0.0, lt=1.0, allow_inf_nan=False)] = 0.25
     """Share of the rows held out for validation."""
+    standardize: Standardize = True
+    """Standardize the inputs per run on its training rows (mean 0, sd 1; targets never); false feeds them as they are."""
 
     @field_validator("path")
     @classmethod
@@ -160,8 +168,15 @@ class FileData(Strict):
             raise ValueError("data path contains a NUL character")
         if posixpath.isabs(v) or posixpath.normpath(v).split("/")[0] == "..":
             raise ValueError(f"data path {v!r} leaves the spec's folder; paths are relative to the spec file "
-                             "and stay inside its folder (copy or link the file there)")
+                             "and stay inside its folder (copy the file there)")
         return v
+
+    @model_validator(mode="after")
+    def _target_apart(self):
+        if self.features is not None and self.target in self.features:
+            raise ValueError(f"@features: the target column {self.target!r} is listed among the features; "
+                             "a model given its own target learns nothing (remove it from data.features)")
+        return self
 
 
 def _data_kind(value) -> str:
@@ -184,6 +199,13 @@ class NeuronBudget(Strict):
 
     @model_validator(mode="after")
     def _divides(self):
+        if self.neurons > MAX_WIDTH * self.depth:
+            # The same limit per layer as the list form, which the budget expands to.
+            need = -(-self.neurons // MAX_WIDTH)
+            raise ValueError(
+                f"@neurons: {self.neurons} neurons over {self.depth} layer{'s' if self.depth > 1 else ''} make layers "
+                f"of {self.neurons // self.depth}, above the {MAX_WIDTH} a layer may have; "
+                f"use depth >= {need} or neurons <= {MAX_WIDTH * self.depth}")
         if self.neurons % self.depth:
             lo = self.neurons // self.depth * self.depth
             raise ValueError(

@@ -12,17 +12,24 @@ Contract:
 
 from __future__ import annotations
 
-import json
 import sys
-import time
-from enum import Enum
-from pathlib import Path
 
-import typer
-from typer.core import TyperCommand, TyperGroup
+try:
+    import errno
+    import json
+    import os
+    import time
+    from enum import Enum
+    from pathlib import Path
 
-from compiler.errors import SpecError
-from runtime.store import ResultSetError
+    import typer
+    from typer.core import TyperCommand, TyperGroup
+
+    from compiler.errors import SpecError, printable
+    from runtime.store import ResultSetError
+except KeyboardInterrupt:  # Ctrl-C while lesion starts: nothing is computed yet, nothing to keep
+    sys.stderr.write("interrupted\n")
+    raise SystemExit(130) from None
 
 __all__ = ["app", "main", "USER_ERRORS"]
 
@@ -37,16 +44,20 @@ USER_ERRORS: tuple[type[Exception], ...] = (SpecError, ResultSetError, UsageErro
 
 
 class _Group(TyperGroup):
-    """Turns a user error raised by any command into its printed problems and exit code 2."""
+    """Turns a user error raised by any command into its printed problems and exit code 2, and
+    Ctrl-C into exit 130."""
 
     def invoke(self, ctx: typer.Context):
         try:
             return super().invoke(ctx)
+        except KeyboardInterrupt:  # Ctrl-C outside `run`'s own handling: nothing of lesion's is half-written
+            typer.echo("interrupted", err=True)
+            raise typer.Exit(130) from None
         except Exception as err:
             if not isinstance(err, USER_ERRORS + _loaded_user_errors()):
                 raise
             for line in str(err).splitlines() or [type(err).__name__]:
-                typer.echo(line, err=True)
+                typer.echo(printable(line), err=True)
             raise typer.Exit(2) from None
 
 
@@ -77,6 +88,8 @@ app = typer.Typer(
          "  lesion diff results/cold-chain-af23c1abfa5f --axis normalization.kind --margin 0.005\n\n"
          "  lesion seeds results/cold-chain-af23c1abfa5f --margin 0.005   # plan seeds from a pilot\n\n"
          "  lesion diff results/A results/B --fail-on worse\n\n"
+         "  lesion report results/cold-chain-<hash>      # one HTML page for a review\n\n"
+         "  lesion export results/cold-chain-<hash> --run RUN_ID -o best.npz\n\n"
          "  lesion schema > lesion.schema.json",
     no_args_is_help=True,
     add_completion=False,
@@ -92,12 +105,13 @@ def _main(version: bool = typer.Option(False, "--version", callback=_version, is
 
 
 def _loaded_user_errors() -> tuple[type[Exception], ...]:
-    # compiler.data, runtime.cluster, runtime.guard and runtime.execute are only in sys.modules
-    # when a command needed data, a cluster, a resource estimate or the compile cache; then their
-    # errors count too.
+    # compiler.data, runtime.cluster, runtime.guard, runtime.execute and runtime.environment are
+    # only in sys.modules when a command needed data, a cluster, a resource estimate, the compile
+    # cache or jax's settings; then their errors count too.
     found = [getattr(sys.modules[name], error) for name, error in
              (("compiler.data", "DataError"), ("runtime.cluster", "ClusterError"),
-              ("runtime.guard", "ResourceError"), ("runtime.execute", "CacheError")) if name in sys.modules]
+              ("runtime.guard", "ResourceError"), ("runtime.execute", "CacheError"),
+              ("runtime.environment", "SettingError")) if name in sys.modules]
     return tuple(found)
 
 
@@ -122,7 +136,8 @@ def check(
     format: Format = typer.Option(Format.table, "--format", "-f", help="table for people, json for programs."),
     wide: bool = typer.Option(False, "--wide", help=_WIDE_HELP),
 ) -> None:
-    """Validate a spec and list the variants and runs it expands to; exit 2 listing every problem.
+    """Validate a spec and its data files; list the variants and runs it expands to; exit 2 listing
+    every problem.
 
     Examples:
 
@@ -130,13 +145,25 @@ def check(
 
       lesion check specs/cold-chain.toml --format json
     """
-    from compiler.loader import load_study
-
-    study = load_study(spec)
+    study = _load_runnable(spec)
     if format is Format.json:
-        typer.echo(json.dumps(_check_report(study), indent=2, ensure_ascii=False))
+        # ASCII: labels and values are the user's text, and JSON's \u escapes keep them exact
+        # while no control or bidirectional character reaches the terminal.
+        typer.echo(json.dumps(_check_report(study), indent=2))
         return
     _print_check_table(study, wide)
+
+
+def _load_runnable(spec: Path):
+    """The loaded study, once its spec and its data files' metadata (columns, rows, memory) hold
+    no problem; every problem at once otherwise."""
+    from compiler.data import check_files
+    from compiler.loader import load_study
+    from runtime.guard import data_room
+
+    study = load_study(spec)
+    check_files(study, room=data_room())
+    return study
 
 
 def _check_report(study) -> dict:
@@ -186,6 +213,14 @@ def _terminal_width(wide: bool = False) -> int | None:
     if wide or not (sys.stdout.isatty() or os.environ.get("COLUMNS", "").isdigit()):
         return None
     return shutil.get_terminal_size().columns
+
+
+def _echo_fitted(text: str, wide: bool = False) -> None:
+    """A line of prose, wrapped at the terminal's width like the tables above it."""
+    import textwrap
+
+    width = _terminal_width(wide)
+    typer.echo(text if width is None else textwrap.fill(text, width, subsequent_indent="  "))
 
 
 def _seeds_text(seeds: list[int]) -> str:
@@ -239,24 +274,38 @@ def run(
 
       lesion run specs/cold-chain.toml --cluster local:4
     """
-    from compiler.loader import load_study
+    from runtime.interrupt import Interrupted, interrupt_guard
 
-    study = load_study(spec)
-    from runtime.runner import run_study  # imports jax: after the spec is known to be good
+    # Before anything heavy is imported: from here on Ctrl-C only asks the run to stop at its
+    # next safe point (runtime/interrupt.py says why).
+    with interrupt_guard("interrupted again: stopping at once; finished groups are stored") as ctrl_c:
 
-    progress = None if quiet else _RunProgress(study)
-    executor = None
-    if cluster is not None:
-        from runtime.cluster import DaskExecutor
-        executor = DaskExecutor(cluster, on_warning=lambda text: _err(f"warning: {text}"))
-    try:
-        with executor or _nothing(), progress or _nothing():
-            report = run_study(study, out, lanes=lanes, fresh=fresh, progress=progress, executor=executor,
-                               on_wait=lambda: _err("waiting: another 'lesion run' is writing this result set"))
-    except KeyboardInterrupt:
-        _err(f"interrupted: finished groups are stored in {out / study.result_set}; "
-             f"run the same command again to compute only what is missing")
-        raise typer.Exit(130) from None
+        study = _load_runnable(spec)
+        folder = out / study.result_set
+        try:
+            ctrl_c.check()
+            from runtime.runner import run_study  # imports jax: after the spec and its data are known to be good
+
+            ctrl_c.check()
+            progress = None if quiet else _RunProgress(study)
+            executor = None
+            if cluster is not None:
+                from runtime.cluster import DaskExecutor
+                executor = DaskExecutor(cluster, on_warning=lambda text: _err(f"warning: {text}"))
+            with executor or _nothing(), progress or _nothing():
+                report = run_study(study, out, lanes=lanes, fresh=fresh, progress=progress, executor=executor,
+                                   checkpoint=ctrl_c.check,
+                                   on_wait=lambda: _err("waiting: another 'lesion run' is writing this result set"))
+        except Interrupted:
+            if fresh:
+                from runtime.store import STAGING
+                _err(f"interrupted: the stored result set in {folder} is unchanged; the runs recomputed so far "
+                     f"are kept in {folder / STAGING}, and the same command (with --fresh) computes only the "
+                     "rest, then replaces the stored runs")
+            else:
+                _err(f"interrupted: finished groups are stored in {folder}; "
+                     f"run the same command again to compute only what is missing")
+            raise typer.Exit(130) from None
     if not quiet:
         _err(f"{report.planned} runs: {report.computed} computed, {report.reused} already stored; "
              f"{report.diverged} diverged; {report.groups} groups, "
@@ -378,6 +427,7 @@ def show(
     """
     import dataclasses
 
+    from runtime.audit import audit
     from runtime.formats import render
     from runtime.show import (CURVES_FIT, RUNS_FIT, SUMMARY_COLUMNS, SUMMARY_FIT, axis_values, curve_rows, run_rows,
                               summary_rows)
@@ -386,6 +436,7 @@ def show(
     if curves and runs:
         raise UsageError("give --curves or --runs, not both")
     rs = open_result_set(result)
+    findings = _print_audit(audit(rs))
     name = rs.tree["study"]["name"]
     metrics = metric or [rs.headline]
     try:
@@ -409,51 +460,62 @@ def show(
             title = f"{name} ({rs.study_hash[:12]}): final {', '.join(metrics)} across seeds (mean, sd, 95% CI)"
     except ValueError as err:
         raise UsageError(str(err)) from None
-    extra = None
+    extra = {"findings": findings}
     if format in (Output.json, Output.csv):
         # Programs get the varied keys' values as fields of their own, not only inside the label.
         keys, values = axis_values(rs)
         rows = [{**r, **values.get(r["variant"], {})} for r in rows]
         columns = [*columns, *keys]
-        extra = {"study": name, "study_hash": rs.study_hash, "metrics": metrics, "axes": keys}
+        extra.update(study=name, study_hash=rs.study_hash, metrics=metrics, axes=keys)
     typer.echo(render(rows, columns, format.value, title=title, extra=extra, width=_terminal_width(wide), fit=fit))
+
+
+def _print_audit(check, side: str = "") -> list[str]:
+    """A result set's findings on stderr, so stdout stays the report (and valid JSON); returned
+    for the JSON report too."""
+    lines = [f"warning: {side}{x}" for x in check.warnings()] + [f"note: {side}{x}" for x in check.notes()]
+    for line in lines:
+        _err(line)
+    return lines
 
 
 @app.command(cls=_Command)
 def replay(
     result: Path = typer.Argument(..., metavar="RESULT", help="A result set folder written by 'lesion run'.", show_default=False),
     run: str = typer.Option(None, "--run", metavar="RUN_ID",
-                           help="Replay this run id (a unique prefix is enough; 'lesion show --runs' lists them)."),
+                           help="Replay this run id (a prefix replays every run it starts; 'lesion show --runs' lists them)."),
     variant: str = typer.Option(None, "--variant", metavar="LABEL", help="Replay the runs of this variant label."),
-    all_runs: bool = typer.Option(False, "--all", help="Replay every selected run, not one per variant."),
     format: Format = typer.Option(Format.table, "--format", "-f", help="table for people, json for programs."),
     wide: bool = typer.Option(False, "--wide", help=_WIDE_HELP),
 ) -> None:
-    """Re-execute stored runs from the result set's own spec and compare them bit for bit.
+    """Re-execute stored runs (all of them by default) from the result set's own spec and compare
+    every cell the re-execution decides, bit for bit.
 
-    Exit 0 when every replayed run is identical, 1 when any differs, 2 when the result set is
-    refused (edited metadata, changed data file) or the arguments are wrong.
+    Exit 0 when every replayed run is identical, 1 when any differs or is missing or the tables
+    were edited after writing, 2 when the result set is refused (edited spec, duplicated runs,
+    changed data file) or the arguments are wrong.
 
     Examples:
 
       lesion replay results/cold-chain-af23c1abfa5f
 
-      lesion replay results/cold-chain-af23c1abfa5f --variant "normalization.kind=batch, regularization.dropout.rate=0.15" --all
+      lesion replay results/cold-chain-af23c1abfa5f --variant "normalization.kind=batch, regularization.dropout.rate=0.15"
     """
     if run is not None and variant is not None:
         raise UsageError("give --run or --variant, not both")
     from runtime.formats import Fit, render
     from runtime.replay import replay as do_replay
 
-    report = do_replay(result, run=run, variant=variant, everything=all_runs,
+    report = do_replay(result, run=run, variant=variant,
                        on_group=None if format is Format.json else
                        (lambda g: _err(f"replaying {len(g.runs)} run(s) at lane width {g.lane_width} ...")))
     rows = [r.as_dict() for r in report.rows]
     columns = ["run_id", "variant", "seed", "lane_width", "verdict", "first_epoch", "first_metric",
-               "max_abs", "max_rel", "digest"]
+               "max_abs", "max_rel", "digest", "cells"]
     if format is Format.json:
         typer.echo(json.dumps({"result_set": str(report.path), "identical": report.identical,
-                               "environment_changes": report.environment_changes, "runs": rows}, indent=2))
+                               "environment_changes": report.environment_changes,
+                               "warnings": report.warnings, "notes": report.notes, "runs": rows}, indent=2))
     else:
         if report.environment_changes:
             typer.echo("environment differs from the recorded one:")
@@ -461,19 +523,53 @@ def replay(
                 typer.echo(f"  {line}")
         else:
             typer.echo("environment: same as recorded")
-        typer.echo(render(rows, columns, "table", title="replay", width=_terminal_width(wide),
-                          fit=Fit(keep=("run_id", "verdict"), drop=("lane_width", "max_rel", "digest"),
-                                  wrap=("variant",))))
-        differing = sum(r.verdict != "identical" for r in report.rows)
+        for line in report.warnings:
+            typer.echo(f"warning: {line}")
+        for line in report.notes:
+            typer.echo(f"note: {line}")
+        typer.echo(render([{**r, "cells": ", ".join(r["cells"])} for r in rows], columns, "table", title="replay",
+                          width=_terminal_width(wide),
+                          fit=Fit(keep=("run_id", "verdict", "cells"), drop=("lane_width", "max_rel", "digest"),
+                                  wrap=("variant", "cells"))))
+        differing = sum(r.verdict == "differs" for r in report.rows)
+        missing = sum(r.verdict == "missing" for r in report.rows)
         if differing and report.environment_changes:
             typer.echo(f"{differing} run(s) differ, and the environment changed (above): differing bits are "
                        "expected from such a change; replay in the recorded environment to test the code")
         elif differing:
             typer.echo(f"{differing} run(s) differ in the recorded environment: the result set or the code changed")
-        else:
+        if missing:
+            typer.echo(f"{missing} run(s) missing: the result set is incomplete")
+        if report.edited and not differing:
+            typer.echo("every replayed cell reproduces, but the result set was edited after it was written (above)")
+        if report.identical:
             typer.echo(f"all {len(rows)} replayed run(s) identical")
     if not report.identical:
         raise typer.Exit(1)
+
+
+@app.command()
+def export(
+    result: Path = typer.Argument(..., help="A result set folder written by 'lesion run'.", show_default=False),
+    run: str = typer.Option(..., "--run", help="The run id to export (a unique prefix is enough).", show_default=False),
+    out: Path = typer.Option(..., "--out", "-o", help="The .npz file to write.", show_default=False),
+) -> None:
+    """Write a run's trained parameters and running statistics to a .npz file.
+
+    The run is re-executed from the result set's own spec; the file is written only if the
+    parameters' digest equals the stored one (exit 2 and nothing written otherwise).
+
+    Examples:
+
+      lesion export results/cold-chain-7da471c81b78 --run 3f0c9a1e27d4b8c5-s2 -o winner.npz
+    """
+    from runtime.export import export_run
+
+    done = export_run(result, run, out, on_group=lambda g: _err(f"re-executing run {run} "
+                                                                f"at lane width {g.lane_width} ..."))
+    note = " (the run diverged: these are its last finite parameters)" if done.status != "ok" else ""
+    _err(f"parameter digest {done.param_digest[:16]}… matches the stored one; {done.arrays} arrays written{note}")
+    typer.echo(str(done.path))
 
 
 class FailOn(str, Enum):
@@ -531,20 +627,20 @@ def diff(
         raise UsageError("--baseline and --axis compare within one result set: give A alone")
     if baseline is not None and axis is not None:
         raise UsageError("give --baseline or --axis, not both")
-    report = _decide(a, b, baseline, axis, metric, margin, correction, alpha, None)
+    report, findings = _decide(a, b, baseline, axis, metric, margin, correction, alpha, None)
     scope = f"B − A ({b.name} vs {a.name})" if b is not None else a.name
     method = "Holm" if correction is Correction.holm else "Benjamini–Hochberg"
     if format is Output.json:
         typer.echo(render(report.rows, DIFF_COLUMNS + ["reason"], "json", title=f"{scope}, p adjusted by {method}",
-                          extra=report.extra()))
+                          extra={**report.extra(), "findings": findings}))
     else:
         if format in (Output.table, Output.markdown) and b is not None:
             lines = ["spec: identical studies (a reproducibility check)"] if report.same_study else \
-                ["spec changes (A → B):"] + [f"  {c.render()}" for c in report.changes]
+                ["spec changes (A → B):"] + [f"  {printable(c.render())}" for c in report.changes]
             if report.only_a:
-                lines.append("only in A: " + "; ".join(report.only_a))
+                lines.append("only in A: " + "; ".join(map(printable, report.only_a)))
             if report.only_b:
-                lines.append("only in B: " + "; ".join(report.only_b))
+                lines.append("only in B: " + "; ".join(map(printable, report.only_b)))
             typer.echo("\n".join(lines if format is Output.table else [f"    {x}" if x.startswith("  ") else x for x in lines]) + "\n")
         if format is Output.csv:
             typer.echo(render(report.rows, DIFF_COLUMNS, "csv"))
@@ -565,14 +661,19 @@ def diff(
         if format is Output.table:
             untested = [r for r in report.rows if r["verdict"] == "no test possible"]
             if untested:
-                typer.echo(f"{len(untested)} row(s): {untested[0]['reason']}")
+                _echo_fitted(f"{len(untested)} row(s): {untested[0]['reason']}", wide)
             for note in report.notes:
-                typer.echo(f"note: {note}")
+                _echo_fitted(f"note: {note}", wide)
+    if fail_on is FailOn.worse and not report.rows:
+        _err("no variant matched: the gate compared nothing, so it does not pass")
+        raise typer.Exit(1)
     if fail_on is FailOn.worse and report.worse:
         raise typer.Exit(1)
 
 
 def _decide(a, b, baseline, axis, metric, margin, correction, alpha, power):
+    """The report the arguments ask for, and the result sets' audit findings (printed on stderr)."""
+    from runtime.audit import audit
     from runtime.diff import diff_baseline, diff_design, diff_result_sets
     from runtime.stats import POWER
     from runtime.store import open_result_set
@@ -581,10 +682,13 @@ def _decide(a, b, baseline, axis, metric, margin, correction, alpha, power):
     kw = dict(metrics=metric or None, correction=correction.value, alpha=alpha, margin=margin,
               power=POWER if power is None else power)
     if b is not None:
-        return diff_result_sets(rs_a, open_result_set(b), **kw)
+        rs_b = open_result_set(b)
+        findings = _print_audit(audit(rs_a), "A: ") + _print_audit(audit(rs_b), "B: ")
+        return diff_result_sets(rs_a, rs_b, **kw), findings
+    findings = _print_audit(audit(rs_a))
     if baseline is not None:
-        return diff_baseline(rs_a, baseline, **kw)
-    return diff_design(rs_a, axis=axis, **kw)
+        return diff_baseline(rs_a, baseline, **kw), findings
+    return diff_design(rs_a, axis=axis, **kw), findings
 
 
 def _family_title(question: str, rows: list[dict], method: str) -> str:
@@ -646,7 +750,7 @@ def seeds(
 
     if baseline is not None and axis is not None:
         raise UsageError("give --baseline or --axis, not both")
-    report = _decide(pilot, None, baseline, axis, [metric] if metric else None, margin, correction, alpha, power)
+    report, _ = _decide(pilot, None, baseline, axis, [metric] if metric else None, margin, correction, alpha, power)
     rows = [r for r in report.rows if r["test"] == "paired"]
     if not any(r["margin"] is not None for r in rows):
         raise UsageError("seeds needs a practical margin: give --margin D (in the metric's units) or set study.margin")
@@ -708,9 +812,86 @@ def plot(
         raise UsageError(str(err)) from None
 
 
+@app.command()
+def report(
+    result: Path = typer.Argument(..., help="A result set folder written by 'lesion run'.", show_default=False),
+    out: Path = typer.Option(None, "--out", "-o", help="The HTML file to write (default: <result set>/report.html)."),
+    baseline: str = typer.Option(None, "--baseline", help="The variant the verdicts compare against "
+                                 "(default: 'base', else the first variant)."),
+) -> None:
+    """Write one self-contained HTML page about a result set: question, summary, verdicts,
+    pictures, spec, environment and how to replay; print its path.
+
+    Examples:
+
+      lesion report results/cold-chain-7da471c81b78
+
+      lesion report results/cold-chain-7da471c81b78 --baseline "normalization.kind=none, regularization.dropout.rate=0.0" -o review.html
+    """
+    from runtime.plot import PlotError  # imports matplotlib
+    from runtime.report import render_report
+    from runtime.store import open_result_set
+
+    rs = open_result_set(result)
+    target = out or rs.path / "report.html"
+    if target.suffix.lower() not in (".html", ".htm"):
+        raise UsageError(f"-o {target}: expected a file ending in .html")
+    try:
+        page = render_report(rs, baseline)
+    except PlotError as err:
+        raise UsageError(str(err)) from None
+    try:
+        target.parent.mkdir(parents=True, exist_ok=True)
+        target.write_text(page, encoding="utf-8")
+    except OSError as err:
+        raise UsageError(f"-o {target}: cannot write ({err.strerror or err})") from None
+    typer.echo(str(target))
+
+
 def main() -> None:
-    """Console-script entry point (``lesion = "runtime.cli:main"``)."""
-    app()
+    """Console-script entry point (``lesion = "runtime.cli:main"``).
+
+    Standard output that cannot take what a command prints (closed with ``>&-``, a full disk,
+    ``>/dev/full``) is a one-line error and exit 2, never a traceback nor output silently
+    dropped; a pipe closed by its reader (``| head``) keeps click's quiet exit 1."""
+    if sys.stdout is None:  # descriptor 1 closed at start: refuse before any work is done
+        _err("lesion: standard output is closed; redirect it instead (e.g. >/dev/null)")
+        sys.exit(2)
+    try:
+        app()
+    except SystemExit as done:
+        _flush_stdout()
+        raise done from None
+    except OSError as err:
+        # lesion's own files turn their OSErrors into user errors naming the file; one without a
+        # file name and of this kind is the console stream refusing bytes.
+        if err.filename is not None or err.errno not in _STREAM_ERRORS:
+            raise
+        _quiet_stdout()
+        _err(f"lesion: cannot write to standard output ({err.strerror or err})")
+        sys.exit(2)
+
+
+_STREAM_ERRORS = (errno.ENOSPC, errno.EDQUOT, errno.EFBIG, errno.EBADF, errno.EIO)
+
+
+def _quiet_stdout() -> None:
+    """Point descriptor 1 at /dev/null, so the interpreter's own flush at exit does not fail
+    again with a traceback."""
+    devnull = os.open(os.devnull, os.O_WRONLY)
+    os.dup2(devnull, sys.stdout.fileno())
+    os.close(devnull)
+
+
+def _flush_stdout() -> None:
+    try:
+        sys.stdout.flush()
+    except OSError as err:
+        if err.errno not in _STREAM_ERRORS:
+            raise
+        _quiet_stdout()
+        _err(f"lesion: cannot write to standard output ({err.strerror or err})")
+        sys.exit(2)
 
 
 if __name__ == "__main__":

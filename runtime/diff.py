@@ -31,7 +31,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from compiler.errors import SpecError
+from compiler.errors import SpecError, printable
 from compiler.expand import BASE_LABEL, expand, format_value
 from compiler.hashing import variant_payload
 from compiler.loader import load_text
@@ -98,6 +98,9 @@ def resolve_variant(loaded, given: str, option: str = "--baseline") -> int:
     labels = [v.label for v in variants]
     if given in labels:
         return labels.index(given)
+    shown = [printable(label) for label in labels]   # a label as a table printed it, escapes and all
+    if given in shown:
+        return shown.index(given)
     if given.isdigit() and int(given) < len(variants):
         return int(given)
     if given == BASE_LABEL:
@@ -124,8 +127,8 @@ def resolve_variant(loaded, given: str, option: str = "--baseline") -> int:
 def _no_variant(labels, given, option, why, indices=None):
     # One label per line: labels themselves contain ", ".
     indices = indices or range(len(labels))
-    raise ResultSetError("\n".join([f"{option} {given!r}: {why}; give a label, an index or 'base':"]
-                                   + [f"  {i}  {lab}" for i, lab in zip(indices, labels)]))
+    raise ResultSetError("\n".join([f"{option} {printable(repr(given))}: {why}; give a label, an index or 'base':"]
+                                   + [f"  {i}  {printable(lab)}" for i, lab in zip(indices, labels)]))
 
 
 def _values(rs: ResultSet, cols: dict, variant_hash: str, metric: str) -> dict[int, float | None]:
@@ -169,7 +172,7 @@ def _judge(question: str, items: list[tuple[dict, tuple[dict, dict]]], correctio
     adjusted = adjust(pvals, method=correction)
     level = family_alpha(pvals, alpha, correction)
     rows, notes = [], []
-    for (start, _), c, p_adj in zip(items, comps, adjusted):
+    for (start, arms), c, p_adj in zip(items, comps, adjusted):
         m = start["metric"]
         margin = margins.get(m)
         lo, hi = interval(c, level)
@@ -185,7 +188,7 @@ def _judge(question: str, items: list[tuple[dict, tuple[dict, dict]]], correctio
             "effect_sd": c.diff / c.sd_diff if c.sd_diff > 0 else math.nan,
             "p_improve": imp[0], "p_improve_low": imp[1], "p_improve_high": imp[2],
             "sd_diff": c.sd_diff, **_planning(c, level, margin, power),
-            "verdict": decide(lo, hi, METRICS[m], margin), "reason": c.reason,
+            "verdict": decide(lo, hi, METRICS[m], margin), "reason": _reason(c, arms),
         })
     paired = [c.n_a for c in comps if c.test == "paired"]
     if paired and 2 / 2 ** min(paired) > level:
@@ -193,6 +196,12 @@ def _judge(question: str, items: list[tuple[dict, tuple[dict, dict]]], correctio
         notes.append(f"{question}: with {n} seeds the exact sign-flip p cannot go below 2/2^{n} = "
                      f"{2 / 2 ** n:.4g}, above the family's level {level:.4g}: it cannot confirm any verdict here")
     return rows, notes
+
+
+def _reason(c: Comparison, arms: tuple) -> str:
+    # A variant with no stored run is an incomplete result set, not a lack of seeds.
+    absent = " and ".join(side for side, values in zip("AB", arms) if isinstance(values, dict) and not values)
+    return f"no test possible: {absent} stores no run of this variant (incomplete result set)" if absent else c.reason
 
 
 def _planning(c: Comparison, level: float, margin: float | None, power: float) -> dict:

@@ -27,16 +27,49 @@ from functools import cache
 from importlib import metadata
 from pathlib import Path
 
-__all__ = ["capture", "numerics", "fingerprint", "differences", "source_digest", "single_threaded_xla",
-           "xla_threads", "usable_cores"]
+__all__ = ["capture", "numerics", "fingerprint", "differences", "source_digest", "check_settings", "SettingError",
+           "single_threaded_xla", "xla_threads", "usable_cores"]
 
 # CPU features that decide which kernels XLA:CPU emits (and so the rounding of matmuls).
 _ISA_FLAGS = ("sse4_1", "sse4_2", "avx", "avx2", "fma", "f16c", "avx512f", "avx512bw", "avx512dq",
               "avx512vl", "avx512_vnni", "avx512_bf16", "amx_tile", "asimd", "sve")
 
-_NUMERICS_KEYS = ("lesion_sources", "python", "jax", "jaxlib", "optax", "numpy", "xla_flags",
-                  "jax_threefry_partitionable", "xla_cpu_threads",
-                  "jax_default_matmul_precision", "jax_enable_x64", "cpu_model", "cpu_isa", "machine", "os")
+# jax settings that change the numbers of a run (measured: a tiny study's parameter digests under
+# each): how keys become random bits, the seed itself, float width, matmul precision, and the
+# options XLA compiles with (as XLA_FLAGS). Settings that only raise errors are in _REFUSED; the
+# rest (logging, caches, devices, checks) cannot change a number.
+_COMPILER_SETTINGS = ("jax_disable_most_optimizations", "jax_optimization_level",
+                      "jax_exec_time_optimization_effort", "jax_memory_fitting_effort")
+_JAX_SETTINGS = ("jax_threefry_partitionable", "jax_default_prng_impl", "jax_random_seed_offset",
+                 "jax_default_matmul_precision", "jax_enable_x64", *_COMPILER_SETTINGS)
+
+_NUMERICS_KEYS = ("lesion_sources", "python", "jax", "jaxlib", "optax", "numpy", "xla_flags", *_JAX_SETTINGS,
+                  "xla_cpu_threads", "cpu_model", "cpu_isa", "machine", "os")
+
+# Settings under which lesion's programs cannot run (each made `lesion run` fail mid-way with a
+# traceback), with the value they need.
+_REFUSED = {"jax_disable_jit": False, "jax_numpy_rank_promotion": "allow", "jax_numpy_dtype_promotion": "standard"}
+
+
+class SettingError(Exception):
+    """A jax setting lesion's programs cannot run under (a user error: exit 2)."""
+
+
+def check_settings() -> None:
+    """Refuse, before anything is compiled, the jax settings lesion's programs cannot run under."""
+    import jax
+
+    wrong = [f"{name}={_setting(jax, name)}" for name, needed in _REFUSED.items() if _setting(jax, name) != needed]
+    if wrong:
+        raise SettingError(f"jax setting {', '.join(wrong)} is not supported by lesion's programs; unset it "
+                           f"(the environment variable {wrong[0].split('=')[0].upper()}) and run again")
+
+
+def _setting(jax, name: str):
+    """A jax setting as JSON can hold it (some are enums)."""
+    v = jax.config.values.get(name)
+    v = getattr(v, "value", v)
+    return v if v is None or isinstance(v, (bool, int, float, str)) else str(v)
 
 
 
@@ -136,9 +169,13 @@ def capture() -> dict:
         "lesion_sources": source_digest(),
         "xla_flags": os.environ.get("XLA_FLAGS", ""),
         "jax_threefry_partitionable": bool(jax.config.jax_threefry_partitionable),
-        "xla_cpu_threads": xla_threads(),
+        "jax_default_prng_impl": str(jax.config.jax_default_prng_impl),
+        "jax_random_seed_offset": int(jax.config.jax_random_seed_offset),
         "jax_default_matmul_precision": str(jax.config.jax_default_matmul_precision),
         "jax_enable_x64": bool(jax.config.jax_enable_x64),
+        # XLA compile options, as XLA_FLAGS are
+        **{name: _setting(jax, name) for name in _COMPILER_SETTINGS},
+        "xla_cpu_threads": xla_threads(),
         "cpu_model": model,
         "cpu_isa": isa,
         "cores": os.cpu_count() or 0,

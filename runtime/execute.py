@@ -32,7 +32,7 @@ import numpy as np
 
 from runtime.plan import Group
 
-__all__ = ["GroupResult", "LaneResult", "execute_group", "InProcess", "enable_compile_cache", "cache_dir",
+__all__ = ["GroupResult", "LaneResult", "execute_group", "InProcess", "enable_compile_cache", "cache_dir", "preparation",
            "CacheError", "cache_limit_bytes",
            "BN_COLLAPSE_RATIO"]
 
@@ -52,6 +52,9 @@ class LaneResult:
     diverged_at: int | None             # 1-based epoch, None when the run stayed finite
     param_digest: str
     warnings: list[str] = field(default_factory=list)
+    # Only with keep_arrays: "params/<layer>/<name>", "state/<layer>/<name>" (what the digest
+    # covers) and "input/mean", "input/scale", "split/validation" (what using them needs).
+    arrays: dict[str, np.ndarray] | None = None
 
 
 @dataclass
@@ -116,6 +119,38 @@ _programs: dict[tuple, tuple] = {}
 def _zero_knobs(knobs: dict) -> frozenset[str]:
     """Knobs that are 0 in every lane (padding copies a real lane, so it never adds a non-zero)."""
     return frozenset(name for name, values in knobs.items() if not np.any(np.asarray(values)))
+
+
+def _knob_arrays(group: Group) -> dict[str, np.ndarray]:
+    """Each knob's value per lane (padding lanes copy the first run), float32."""
+    from compiler.build import knob_vector
+
+    vectors = [knob_vector(r.variant.spec) for r in list(group.runs) + [group.runs[0]] * group.padding]
+    return {n: np.array([v[n] for v in vectors], dtype=np.float32) for n in vectors[0]}
+
+
+def _program_key(group: Group, dataset, zero: frozenset[str]) -> tuple:
+    return group.structure, group.lane_width, _data_signature(dataset), zero
+
+
+def preparation(groups: list[Group], data: dict, environment: dict) -> dict[str, str]:
+    """What executing ``groups`` in this process will do for each group's programs, without
+    doing it: ``"compile"``, ``"load"`` (stored in the compile cache) or ``"reuse"`` (compiled
+    or loaded already by this process or an earlier group), keyed by group id; for the time
+    estimate, whose costs differ a hundredfold between these."""
+    out: dict[str, str] = {}
+    seen = set(_programs)
+    for g in groups:
+        zero = _zero_knobs(_knob_arrays(g))
+        key = _program_key(g, data[g.group_id], zero)
+        if key in seen:
+            out[g.group_id] = "reuse"
+        elif _cache_enabled and _program_path(g, data[g.group_id], zero, environment).exists():
+            out[g.group_id] = "load"
+        else:
+            out[g.group_id] = "compile"
+        seen.add(key)
+    return out
 
 
 def _data_signature(dataset) -> tuple:
@@ -223,7 +258,7 @@ def _compiled(group: Group, dataset, knobs, seeds, reuse: bool, environment: dic
     from compiler.build import compile_variant, seed_key
 
     zero = _zero_knobs(knobs)
-    key = (group.structure, group.lane_width, _data_signature(dataset), zero)
+    key = _program_key(group, dataset, zero)
     if reuse and key in _programs:
         return _programs[key] + (0.0,)
     program = compile_variant(group.runs[0].variant.spec, dataset, zero_knobs=zero)
@@ -260,20 +295,20 @@ def _compiled(group: Group, dataset, knobs, seeds, reuse: bool, environment: dic
 
 
 def execute_group(group: Group, dataset, environment: dict,
-                  on_epoch: Callable[[int, int], None] | None = None, reuse: bool = True) -> GroupResult:
+                  on_epoch: Callable[[int, int], None] | None = None, reuse: bool = True,
+                  keep_arrays: bool = False) -> GroupResult:
     """Train every run of a group at the group's lane width and return its numbers.
 
     ``reuse=False`` compiles afresh even when this process already compiled the structure
-    (replay proves the bits with a new compile)."""
+    (replay proves the bits with a new compile). ``keep_arrays`` returns each lane's trained
+    arrays too (export); runs never store them."""
     import jax
     import jax.numpy as jnp
 
-    from compiler.build import knob_vector, param_digest
+    from compiler.build import param_digest
 
     lanes = list(group.runs) + [group.runs[0]] * group.padding
-    vectors = [knob_vector(r.variant.spec) for r in lanes]
-    names = tuple(vectors[0])
-    knobs = {n: jnp.asarray(np.array([v[n] for v in vectors], dtype=np.float32)) for n in names}
+    knobs = {n: jnp.asarray(a) for n, a in _knob_arrays(group).items()}
     seeds = np.array([r.seed for r in lanes], dtype=np.int32)
 
     program, init_c, epoch_c, status_fn, params_fn, compile_seconds = _compiled(group, dataset, knobs, seeds, reuse, environment)
@@ -301,8 +336,19 @@ def execute_group(group: Group, dataset, environment: dict,
             diverged_at=int(at[i]) + 1 if bool(diverged[i]) else None,
             param_digest=param_digest(lane_params),
             warnings=_warnings(run.variant.spec, curves),
+            arrays=_lane_arrays(lane_params, carry, i) if keep_arrays else None,
         ))
     return GroupResult(group.group_id, group.lane_width, names, results, compile_seconds, run_seconds, environment)
+
+
+def _lane_arrays(lane_params, carry, i) -> dict[str, np.ndarray]:
+    import jax
+
+    out = {"/".join(str(k.key) for k in path): np.asarray(leaf)
+           for path, leaf in jax.tree_util.tree_flatten_with_path(lane_params)[0]}
+    out["input/mean"], out["input/scale"] = np.asarray(carry.x_mean[i]), np.asarray(carry.x_scale[i])
+    out["split/validation"] = np.asarray(carry.val_idx[i])
+    return out
 
 
 class InProcess:
@@ -311,14 +357,30 @@ class InProcess:
     An executor's contract: ``run(groups, data, environment, progress)`` yields
     ``(group, GroupResult)`` as groups finish, in any order; ``data`` maps a group id to its
     Dataset; ``progress`` (or None) receives the ("group", group=…) and ("epoch", done=…, total=…)
-    events. The caller writes each result as it arrives."""
+    events. The caller writes each result as it arrives.
+
+    ``checkpoint()`` (optional) is called before each group and after each epoch, outside any
+    jax call, so that it may raise to abandon the group in flight (Ctrl-C)."""
+
+    def __init__(self, checkpoint: Callable[[], None] | None = None):
+        self.checkpoint = checkpoint
 
     def run(self, groups, data, environment, progress=None):
+        check = self.checkpoint
+
+        def on_epoch(done, total):
+            if progress:
+                progress("epoch", done=done, total=total)
+            if check:
+                check()
+
         for g in groups:
+            if check:
+                check()
             if progress:
                 progress("group", group=g, todo=len(g.runs))
-            on_epoch = (lambda d, t: progress("epoch", done=d, total=t)) if progress else None
-            yield g, execute_group(g, data[g.group_id], environment, on_epoch=on_epoch)
+            yield g, execute_group(g, data[g.group_id], environment,
+                                   on_epoch=on_epoch if check or progress else None)
 
 
 def _warnings(spec, curves: dict[str, np.ndarray]) -> list[str]:

@@ -18,6 +18,8 @@ import math
 from dataclasses import dataclass
 from typing import Any, Sequence
 
+from compiler.errors import printable
+
 __all__ = ["FORMATS", "Fit", "render", "fmt_number"]
 
 FORMATS = ("table", "json", "csv", "markdown")
@@ -85,8 +87,10 @@ def render(rows: Sequence[dict], columns: Sequence[str], fmt: str, *, title: str
         for r in rows:
             writer.writerow(["" if r.get(c) is None else r.get(c) for c in columns])
         return buf.getvalue().rstrip("\n")
-    cells = [[fmt_number(r.get(c)) for c in columns] for r in rows]
+    # The terminal formats: user text (labels, values) as one visible line each.
+    cells = [[printable(fmt_number(r.get(c))) for c in columns] for r in rows]
     heads = [headers.get(c, c) for c in columns]
+    title = printable(title)
     if fmt == "markdown":
         lines = [f"**{title}**", ""] if title else []
         lines.append("| " + " | ".join(heads) + " |")

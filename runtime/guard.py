@@ -8,8 +8,9 @@ Contract:
 - :func:`lane_budget` ``(groups, data, budget_bytes=None) -> {structure: lanes}``: for each
   structure, the most lanes whose estimate fits in ``budget_bytes`` (default
   :func:`memory_budget`), for :func:`runtime.plan.plan`'s ``lane_budget``;
-- :func:`check_data` ``(groups, where, available=None)`` raises :class:`ResourceError` before a
-  built-in data set too large to generate is drawn;
+- :func:`check_data` ``(groups, where, base_dir, available=None)`` raises :class:`ResourceError`
+  before a built-in data set too large to generate is drawn, or a data file too large to load (by
+  its metadata) is read; :func:`data_room` is the memory a data set may take now;
 - :func:`check` ``(estimate, lanes_given, where, available=None)`` raises :class:`ResourceError`,
   one line naming the estimate, what is available and the knob to turn, when the peak exceeds
   :func:`available_bytes`.
@@ -25,9 +26,13 @@ Memory model (float32 everywhere; a run's state is its lane's share of a vmapped
 - × :data:`XLA_SLACK` for temporaries XLA allocates beside the live values, plus
   :data:`RUNTIME_BYTES` for the interpreter, jax and the compiled programs.
 
-Time model: ``2·MACs`` FLOPs per example forward, ``6·MACs`` forward and backward, at
-:data:`FLOPS_PER_SECOND`; a fixed cost per vmapped step and per compiled structure. Both are
-rounded facts of this machine (see /work/shared/measured.md), good for the order of magnitude.
+Time model: execution is ``2·MACs`` FLOPs per example forward, ``6·MACs`` forward and backward,
+at :data:`FLOPS_PER_SECOND`, plus a fixed cost per vmapped step; each program costs a compile, or
+a load when the compile cache holds it, or nothing when an earlier group of the invocation made
+it; each group costs a fixed amount besides (moving its data, writing the result set). The
+constants start as rounded facts of an idle machine and are then *calibrated*: every
+``lesion run`` in this process stores what it measured (:class:`Calibration`, in the compile
+cache folder) and the next estimate uses it, so a slower or busier machine gets a larger one.
 
 The lane budget is taken from a fixed share of the machine's *total* memory, not from what
 happens to be free, so the lane width of a structure (which decides a run's bits) is the same on
@@ -36,14 +41,19 @@ every invocation on one machine; only the refusal looks at the memory free right
 
 from __future__ import annotations
 
+import dataclasses
+import json
 import os
+import tempfile
 from dataclasses import dataclass
+from pathlib import Path
 
 from compiler.spec import train_size
 from runtime.plan import Group, lane_bytes
 
-__all__ = ["Estimate", "ResourceError", "estimate", "lane_budget", "check", "check_data", "available_bytes",
-           "memory_budget", "total_bytes", "XLA_SLACK", "RUNTIME_BYTES", "FLOPS_PER_SECOND"]
+__all__ = ["Estimate", "ResourceError", "Calibration", "estimate", "model_seconds", "lane_budget", "check",
+           "check_data", "available_bytes", "memory_budget", "total_bytes", "data_room", "XLA_SLACK", "RUNTIME_BYTES",
+           "FLOPS_PER_SECOND"]
 
 XLA_SLACK = 1.5
 RUNTIME_BYTES = 512 * 2**20
@@ -52,6 +62,59 @@ FLOPS_PER_SECOND = 30e9
 STEP_SECONDS = 1e-3        # small grid: ~0.7 s for 480 vmapped steps of a tiny model
 COMPILE_SECONDS = 2.0      # one per-epoch program
 BUDGET_SHARE = 0.75        # of total memory, for choosing lane widths
+CGROUP_ROOT = "/sys/fs/cgroup"
+
+
+CALIBRATION_WEIGHT = 0.5   # of a new measurement against the stored one: recent load counts most
+
+
+@dataclass(frozen=True)
+class Calibration:
+    """Measured costs of this machine, stored as JSON beside the compiled programs."""
+
+    compile_seconds: float = COMPILE_SECONDS   # per program compiled
+    load_seconds: float = 0.1                  # per program loaded from the compile cache
+    execute_ratio: float = 1.0                 # measured ÷ modelled execution seconds
+    group_seconds: float = 0.05                # per group besides compiling and executing
+    runs: int = 0                              # invocations measured so far
+
+    @classmethod
+    def load(cls, path) -> "Calibration":
+        """The stored calibration, or the idle-machine defaults when there is none or it is unusable."""
+        try:
+            with open(path) as fh:
+                stored = json.load(fh)
+            return cls(**{f: float(stored[f]) for f in ("compile_seconds", "load_seconds", "execute_ratio",
+                                                        "group_seconds")}, runs=int(stored["runs"]))
+        except (OSError, ValueError, TypeError, KeyError):
+            return cls()
+
+    def save(self, path) -> None:
+        """Write atomically; a folder that cannot be written only leaves the estimate uncalibrated."""
+        path = Path(path)
+        try:
+            path.parent.mkdir(parents=True, exist_ok=True)
+            fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=".tmp-timing-")
+            with os.fdopen(fd, "w") as fh:
+                json.dump(dataclasses.asdict(self), fh)
+            os.replace(tmp, path)
+        except OSError:
+            pass
+
+    def updated(self, *, compiled: list[float], loaded: list[float], executed: tuple[float, float],
+                other: tuple[float, int]) -> "Calibration":
+        """Blend one invocation's measurements in: seconds of each program compiled and loaded,
+        (measured, modelled) execution seconds, (other seconds, groups)."""
+        def blend(old: float, new: float | None) -> float:
+            if new is None or not new >= 0:
+                return old
+            return new if self.runs == 0 else (1 - CALIBRATION_WEIGHT) * old + CALIBRATION_WEIGHT * new
+
+        mean = (lambda xs: sum(xs) / len(xs) if xs else None)
+        (measured, modelled), (rest, groups) = executed, other
+        return Calibration(blend(self.compile_seconds, mean(compiled)), blend(self.load_seconds, mean(loaded)),
+                           blend(self.execute_ratio, measured / modelled if modelled > 0 else None),
+                           blend(self.group_seconds, rest / groups if groups else None), self.runs + 1)
 
 
 class ResourceError(Exception):
@@ -94,7 +157,8 @@ def per_lane_bytes(group: Group, dataset) -> int:
     return lane_bytes(v, features, widths[-1]) + 4 * grows
 
 
-def _group_seconds(group: Group, dataset) -> float:
+def model_seconds(group: Group, dataset) -> float:
+    """Uncalibrated execution seconds of a group."""
     v, n, n_train, widths, steps = _shape(group, dataset)
     macs = sum(a * b for a, b in zip(widths[:-1], widths[1:]))
     flops = group.lane_width * (6 * macs * n_train + 2 * macs * (n - n_train))
@@ -102,8 +166,12 @@ def _group_seconds(group: Group, dataset) -> float:
     return epochs * (flops / FLOPS_PER_SECOND + steps * STEP_SECONDS)
 
 
-def estimate(groups: list[Group], data: dict) -> Estimate:
-    """Peak memory and rough time of executing ``groups`` one after another in this process."""
+def estimate(groups: list[Group], data: dict, *, preparation: dict[str, str] | None = None,
+             calibration: Calibration | None = None) -> Estimate:
+    """Peak memory and rough time of executing ``groups`` one after another in this process.
+    ``preparation`` (group id -> compile, load or reuse, from
+    :func:`runtime.execute.preparation`) defaults to one compile per structure and data set;
+    ``calibration`` defaults to the idle-machine constants."""
     host = {id(data[g.group_id]): data[g.group_id] for g in groups}
     device = {(g.structure, id(data[g.group_id])): data[g.group_id] for g in groups}
     data_bytes = sum(d.x.nbytes + d.y.nbytes for d in [*host.values(), *device.values()])
@@ -112,7 +180,14 @@ def estimate(groups: list[Group], data: dict) -> Estimate:
         b = per_lane_bytes(g, data[g.group_id])
         if b * g.lane_width >= widest:
             widest, lanes, lane = b * g.lane_width, g.lane_width, b
-    seconds = sum(_group_seconds(g, data[g.group_id]) for g in groups) + COMPILE_SECONDS * len(device)
+    cal = calibration or Calibration()
+    if preparation is None:
+        actions = ["compile"] * len(device)
+    else:
+        actions = [preparation[g.group_id] for g in groups]
+    seconds = (cal.execute_ratio * sum(model_seconds(g, data[g.group_id]) for g in groups)
+               + cal.compile_seconds * actions.count("compile") + cal.load_seconds * actions.count("load")
+               + cal.group_seconds * len(groups))
     peak = RUNTIME_BYTES + data_bytes + int(XLA_SLACK * widest)
     return Estimate(peak, data_bytes, lane, lanes, seconds)
 
@@ -146,19 +221,31 @@ def check(est: Estimate, *, lanes_given: bool, where: str, available: int | None
                         f"data {_size(est.data_bytes)}), but {_size(free)} is available; {knob}")
 
 
-def check_data(groups: list[Group], *, where: str, available: int | None = None) -> None:
-    """Before generating anything: raise :class:`ResourceError` when a built-in data set alone
-    (drawn in float64, then kept in float32) would not fit. File data is bounded by its file."""
+def check_data(groups: list[Group], *, where: str, base_dir=".", available: int | None = None) -> None:
+    """Before generating or loading anything: raise :class:`ResourceError` when a data set alone
+    would not fit — a built-in one drawn in float64 then kept in float32, a file as its metadata
+    declares it (:func:`compiler.data.load_bytes`: NPZ headers, Parquet row counts, CSV size), so
+    a small file that expands hugely is refused instead of killing the process."""
+    from compiler.data import inspect_file, load_bytes
+
     free = available_bytes() if available is None else available
     for g in groups:
         data = g.runs[0].variant.spec.data
-        if data.kind != "synthetic":
-            continue
-        need = RUNTIME_BYTES + 12 * data.samples * (data.features + 1)
+        if data.kind == "synthetic":
+            need = RUNTIME_BYTES + 12 * data.samples * (data.features + 1)
+            what = f"data.samples = {data.samples} × data.features = {data.features}"
+            fix = "lower data.samples or data.features"
+        else:
+            need = RUNTIME_BYTES + load_bytes(inspect_file(data, base_dir), data)
+            what, fix = f"data.path = {data.path}", "use a sample of its rows or fewer columns"
         if need > free:
-            raise ResourceError(f"{where}: data.samples = {data.samples} × data.features = {data.features} needs "
-                                f"about {_size(need)} of memory just to generate, but {_size(free)} is available; "
-                                "lower data.samples or data.features")
+            raise ResourceError(f"{where}: {what} needs about {_size(need)} of memory just to load, but "
+                                f"{_size(free)} is available; {fix}")
+
+
+def data_room() -> int:
+    """Memory a data set may take now: what is available, less the interpreter's share."""
+    return available_bytes() - RUNTIME_BYTES
 
 
 # ── this machine ────────────────────────────────────────────────────────────────────────────────
@@ -174,17 +261,30 @@ def _meminfo() -> dict[str, int]:
     return out
 
 
-def _cgroup() -> tuple[int, int] | None:
-    # A container's limit (cgroup v2) can be far below the machine's memory: (limit, in use).
+def _read_int(path: str) -> int | None:
     try:
-        with open("/sys/fs/cgroup/memory.max") as fh:
-            limit = fh.read().strip()
-        if limit == "max":
-            return None
-        with open("/sys/fs/cgroup/memory.current") as fh:
-            return int(limit), int(fh.read().strip())
-    except (OSError, ValueError):
+        with open(path) as fh:
+            text = fh.read().strip()
+    except OSError:
         return None
+    return int(text) if text.isdigit() else None   # cgroup v2 writes "max" for no limit
+
+
+# cgroup v1 writes "no limit" as the largest page-aligned signed 64-bit value; anything from 2**60
+# bytes up is read as none.
+_NO_LIMIT = 2**60
+
+
+def _cgroup(root: str = CGROUP_ROOT) -> tuple[int, int] | None:
+    """A container's memory limit and what it uses, (limit, in use), or None without a limit: cgroup
+    v2 (``memory.max``, ``memory.current``) or v1 (``memory/memory.limit_in_bytes``,
+    ``memory/memory.usage_in_bytes``). Either can be far below the machine's memory."""
+    for limit_file, usage_file in (("memory.max", "memory.current"),
+                                   ("memory/memory.limit_in_bytes", "memory/memory.usage_in_bytes")):
+        limit = _read_int(os.path.join(root, limit_file))
+        if limit is not None and limit < _NO_LIMIT:
+            return limit, _read_int(os.path.join(root, usage_file)) or 0
+    return None
 
 
 def total_bytes() -> int:

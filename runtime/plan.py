@@ -9,6 +9,8 @@ batch width, not on the neighbouring lanes' values), so:
   invocation used;
 - a group with fewer runs than the width is padded with copies of its first run, and the padding
   is discarded;
+- a resumed study keeps the width its stored runs of a structure were computed at, even when
+  the first invocation forced another one with ``--lanes``;
 - replay re-plans a stored run at its recorded width.
 
 The width is the number of runs of the structure, capped by ``max_lanes`` and by a memory bound.
@@ -61,17 +63,22 @@ def lane_bytes(variant: Variant, features: int, outputs: int) -> int:
 
 
 def plan(variants: list[Variant], seeds: list[int], *, lanes: int | None = None,
-         max_lanes: int = DEFAULT_MAX_LANES, lane_budget: dict[str, int] | None = None) -> list[Group]:
+         max_lanes: int = DEFAULT_MAX_LANES, lane_budget: dict[str, int] | None = None,
+         widths: dict[str, int] | None = None) -> list[Group]:
     """Groups of runs in a fixed order (structure in order of first appearance, then variant
     order, then seed order). ``lanes`` forces the width; ``lane_budget`` maps a structure key to
-    the most lanes its memory allows."""
+    the most lanes its memory allows; ``widths`` maps a structure key to the width its stored runs
+    were computed at, which a resumed study keeps (over ``lanes`` and the budget) so that one
+    structure never mixes widths."""
     by_structure: dict[str, list[Run]] = {}
     for v in variants:
         for s in seeds:
             by_structure.setdefault(v.structure, []).append(Run(run_id(v.hash, s), v, s))
     groups = []
     for structure, runs in by_structure.items():
-        if lanes is not None:
+        if widths and structure in widths:
+            width = widths[structure]
+        elif lanes is not None:
             width = lanes
         else:
             width = min(len(runs), max_lanes)

@@ -6,10 +6,11 @@ writes it as PNG or SVG at exactly ``figsize × DPI`` pixels (constrained layout
 outside the axes by the layout, never ``bbox_inches="tight"``). The numbers drawn come from the
 modules that print them — :func:`runtime.show.curve_rows` and :func:`runtime.show.summary_rows`
 for means, :func:`runtime.stats.summarize` for spreads and intervals, and
-:func:`runtime.diff.diff_result_sets` for differences — so a picture never disagrees with
+:func:`runtime.diff.diff_result_sets` and :func:`runtime.diff.diff_baseline` for differences — so a picture never disagrees with
 ``lesion show`` or ``lesion diff``. Each plotted mean carries a ``gid`` (``mean:<metric>:<variant>``,
 ``arm:<metric>:<variant>``, ``seeds:<metric>:<variant>``, ``cell:<metric>:<variant>``,
-``diff:<metric>:<variant>``) so that its data can be read back from the figure.
+``diff:<metric>:<variant>``; grid outlines ``best:…`` and ``tied:…``) so that its data can be read
+back from the figure.
 
 What is drawn:
 
@@ -17,20 +18,28 @@ What is drawn:
   deviation (ddof = 1) across those runs; train metrics dashed, validation metrics solid, one
   colour and marker per variant; a log axis when a panel's values span more than
   :data:`LOG_SPAN` (ratio of largest to smallest); each diverged run as a × at the top of the
-  panel at its ``diverged_at`` epoch (its values there are unbounded, so they are not drawn).
+  panel at its ``diverged_at`` epoch (its values there are unbounded, so they are not drawn). A
+  grid of more than :data:`FACET_OVER` variants becomes small multiples (:func:`_facets`): nine
+  lines in one panel cannot be followed.
 - ``arms``: per variant the final-epoch mean and its 95 % Student t interval
   (``mean ± t_{n-1,0.975} · s/√n``), every ok seed as a dot, best first in the metric's
   direction, the baseline's mean as a vertical line.
-- ``grid``: for a two-axis grid study, the final-epoch mean per cell, darker = better.
+- ``grid``: for a two-axis grid study, per cell the final-epoch mean ± sd as text; the colour is
+  the cell's gap to the best cell in half-widths of the 95 % interval of their difference (the
+  comparison of ``lesion diff --baseline <best>``) on a fixed scale 0 … :data:`GAP_SCALE`, so
+  cells within seed noise of the best stay as dark as it; cells with no detectable change from the best
+  (adjusted verdict) are outlined dashed. A scale spanning only the observed range would turn
+  noise into contrast.
 - ``diff``: per matched variant B − A with its 95 % interval, coloured by the verdict.
 
-Colours: :data:`PALETTE` ("lesion ten"), ten colours chosen for this project so that every pair
+Colours: :data:`PALETTE` (:data:`PALETTE_NAME`), ten colours chosen for this project so that every pair
 stays at least 20 CIELAB ΔE apart under simulated protanopia, deuteranopia and tritanopia;
 lines also differ by marker, so colour is never the only cue.
 """
 
 from __future__ import annotations
 
+import io
 import json
 import math
 import textwrap
@@ -54,10 +63,11 @@ from runtime.stats import summarize  # noqa: E402
 from runtime.store import ResultSet  # noqa: E402
 
 __all__ = ["PlotError", "PALETTE", "PALETTE_NAME", "SEQUENTIAL", "KINDS", "DPI", "LOG_SPAN",
-           "plot", "plot_curves", "plot_arms", "plot_grid", "plot_diff", "save_figure", "default_path",
+           "GAP_SCALE", "FACET_OVER", "plot", "plot_curves", "plot_arms", "plot_grid", "plot_diff", "save_figure", "svg_markup", "default_path",
            "short_labels"]
 
-PALETTE_NAME = "lesion ten"
+# A plain description, not a brand: what the colours are for.
+PALETTE_NAME = "ten colours apart under colour-vision deficiency"
 PALETTE = ("#0c5886", "#c7680f", "#33948d", "#ce2c66", "#8dbb5a",
            "#7235ba", "#8c5a2b", "#54c0fd", "#eda217", "#454735")
 MARKERS = ("o", "s", "^", "D", "v", "P", "X", "<", ">", "h")
@@ -69,6 +79,10 @@ VERDICT_COLOURS = {"better": PALETTE[2], "worse": PALETTE[3], "equivalent": PALE
 KINDS = ("curves", "arms", "grid")
 DPI = 150
 LOG_SPAN = 30.0
+# curves: a grid with more variants than this is drawn as small multiples (one panel per level).
+FACET_OVER = 4
+# Grid colour scale: gaps to the best of 0 … GAP_SCALE half-widths of the 95 % interval (beyond: the palest).
+GAP_SCALE = 4.0
 _LABEL_WIDTH = 28
 # Leaf names that say nothing without their section (``rate`` of what?).
 _GENERIC_LEAVES = {"kind", "rate", "delta", "momentum", "epsilon", "fraction", "value", "values", "size",
@@ -114,6 +128,12 @@ def short_labels(rs: ResultSet) -> dict[str, str]:
         text = ", ".join(parts)
         out[label] = text if len(text) <= _LABEL_WIDTH else "\n".join(parts)
     return out
+
+
+def _one_line(label: str, name: str) -> str:
+    """A display name on one line: a label the user wrote comes back as written (it was only
+    wrapped at spaces), a derived one's parts are joined by commas."""
+    return label if name.replace("\n", " ") == label else name.replace("\n", ", ")
 
 
 def _variants(rs: ResultSet) -> list[str]:
@@ -199,9 +219,33 @@ def _style(metric: str) -> str:
     return "--" if metric.startswith("train_") else "-"
 
 
+def _facets(rs: ResultSet, labels: list[str], names: dict[str, str]):
+    """How ``curves`` splits variants into panels: ``[(panel title, [labels])]``, each label's
+    colour index and its legend name. A grid over two or more axes with more than
+    :data:`FACET_OVER` variants gets one panel per level of its first axis, each variant coloured
+    by its levels of the other axes (the same colour means the same levels in every panel);
+    otherwise one panel holds every variant."""
+    ab = rs.tree.get("ablation") or {}
+    axes = ab.get("axis") or []
+    if ab.get("mode") != "grid" or len(axes) < 2 or ab.get("variant") or len(labels) <= FACET_OVER:
+        return [(None, labels)], {label: i for i, label in enumerate(labels)}, names
+    runs = _runs_by_variant(rs)
+    changes = {label: json.loads(runs[label][0]["changes"]) for label in labels}
+    keys = [a["key"] for a in axes]
+    short = {k: _short_key(k, keys) for k in keys}
+    panels = [(f"{short[keys[0]]} = {format_value(v)}", [label for label in labels if changes[label].get(keys[0]) == v])
+              for v in axes[0]["values"]]
+    rest = {label: tuple(json.dumps(changes[label].get(k)) for k in keys[1:]) for label in labels}
+    levels = list(dict.fromkeys(rest[label] for label in labels))
+    legend = {label: ", ".join(f"{short[k]}={format_value(changes[label].get(k))}" for k in keys[1:])
+              for label in labels}
+    return [p for p in panels if p[1]], {label: levels.index(rest[label]) for label in labels}, legend
+
+
 def plot_curves(rs: ResultSet, metrics: list[str] | None = None) -> Figure:
-    """Per-epoch mean ± 1 sd over ok seeds of each metric; train dashed, validation solid; one panel
-    per metric family (``train_divergence`` and ``val_divergence`` share a panel)."""
+    """Per-epoch mean ± 1 sd over ok seeds of each metric; train dashed, validation solid; one row
+    of panels per metric family (``train_divergence`` and ``val_divergence`` share one), one
+    column per level of a grid's first axis when there are many variants (:func:`_facets`)."""
     have = [c for c in rs.curves.column_names if c not in ("run_id", "variant_label", "seed", "epoch")]
     for m in metrics or []:
         if m not in have:
@@ -211,69 +255,88 @@ def plot_curves(rs: ResultSet, metrics: list[str] | None = None) -> Figure:
     families = list(dict.fromkeys(_family(m) for m in metrics))
     labels = _variants(rs)
     names = short_labels(rs)
+    panels, colour_of, legend_names = _facets(rs, labels, names)
+    faceted = len(panels) > 1
     runs = _runs_by_variant(rs)
     ok_ids = {r["run_id"] for rr in runs.values() for r in rr if r["status"] == "ok"}
     diverged = sum(r["status"] != "ok" for rr in runs.values() for r in rr)
-    bad_variants = [label for label in labels if any(r["status"] != "ok" for r in runs[label])]
     curves = rs.curves.to_pydict()
     ok_rows: dict[tuple[str, int], list[int]] = {}
     for i, (label, epoch, rid) in enumerate(zip(curves["variant_label"], curves["epoch"], curves["run_id"])):
         if rid in ok_ids:
             ok_rows.setdefault((label, epoch), []).append(i)
 
-    fig = _figure(max(6.4, 5.4 * len(families)), 4.4 + 0.22 * math.ceil(len(labels) / 3))
-    axes = fig.subplots(1, len(families), squeeze=False)[0]
-    for ax, fam in zip(axes, families):
-        top = blended_transform_factory(ax.transData, ax.transAxes)
-        panel = [m for m in metrics if _family(m) == fam]
+    legend_rows = math.ceil(len(set(colour_of.values())) / 3)
+    if faceted:
+        fig = _figure(max(6.4, 1.3 + 3.7 * len(panels)), 1.9 + 2.9 * len(families) + 0.22 * legend_rows)
+        grid = fig.subplots(len(families), len(panels), squeeze=False, sharex=True, sharey="row")
+    else:
+        fig = _figure(max(6.4, 5.4 * len(families)), 4.4 + 0.22 * legend_rows)
+        grid = fig.subplots(1, len(families), squeeze=False).T
+    for r, fam in enumerate(families):
+        panel_metrics = [m for m in metrics if _family(m) == fam]
         values = []
-        for vi, label in enumerate(labels):
-            colour, marker = PALETTE[vi % len(PALETTE)], MARKERS[vi % len(MARKERS)]
-            mine = [r for r in rows if r["variant"] == label]
-            for m in panel:
-                if mine:
-                    x = [r["epoch"] for r in mine]
-                    y = [r[m] for r in mine]
-                    line, = ax.plot(x, y, _style(m), color=colour, marker=marker, markersize=3.5,
-                                    markevery=max(1, len(x) // 8), linewidth=1.6, gid=f"mean:{m}:{label}")
-                    values += [v for v in y if math.isfinite(v)]
-                    sd = np.array([summarize([curves[m][i] for i in ok_rows[(label, e)]]).sd for e in x])
-                    if np.isfinite(sd).any():
-                        lo, hi = np.asarray(y) - sd, np.asarray(y) + sd
-                        # On a log axis a band below zero would vanish: stop it near the panel's floor.
-                        lo = np.maximum(lo, 0.5 * min(v for v in y if v > 0)) if min(y) > 0 else lo
-                        ax.fill_between(x, lo, hi, color=colour, alpha=0.15, linewidth=0)
-            stops = sorted(r["diverged_at"] for r in runs[label] if r["status"] != "ok" and r["diverged_at"])
-            # Just above the data area (diverged values are unbounded and would crush the scale),
-            # one row per variant so that runs stopping at the same epoch do not hide each other.
-            row = 1.03 + 0.05 * bad_variants.index(label) if stops else 0.0
-            for epoch in dict.fromkeys(stops):
-                ax.plot([epoch], [row], "x", color=colour, markersize=8, markeredgewidth=2,
-                        transform=top, clip_on=False, gid=f"diverged:{label}:{epoch}")
-                if stops.count(epoch) > 1:
-                    ax.annotate(f"×{stops.count(epoch)}", (epoch, row), xycoords=top, xytext=(6, 0),
-                                textcoords="offset points", va="center", fontsize=7.5, color=colour,
-                                annotation_clip=False)
+        for c, (title, members) in enumerate(panels):
+            ax = grid[r, c]
+            top = blended_transform_factory(ax.transData, ax.transAxes)
+            bad_variants = [label for label in members if any(x["status"] != "ok" for x in runs[label])]
+            for label in members:
+                colour, marker = PALETTE[colour_of[label] % len(PALETTE)], MARKERS[colour_of[label] % len(MARKERS)]
+                mine = [x for x in rows if x["variant"] == label]
+                for m in panel_metrics:
+                    if mine:
+                        x = [e["epoch"] for e in mine]
+                        y = [e[m] for e in mine]
+                        ax.plot(x, y, _style(m), color=colour, marker=marker, markersize=3.5,
+                                markevery=max(1, len(x) // 8), linewidth=1.6, gid=f"mean:{m}:{label}")
+                        values += [v for v in y if math.isfinite(v)]
+                        sd = np.array([summarize([curves[m][i] for i in ok_rows[(label, e)]]).sd for e in x])
+                        if np.isfinite(sd).any():
+                            lo, hi = np.asarray(y) - sd, np.asarray(y) + sd
+                            # On a log axis a band below zero would vanish: stop it near the panel's floor.
+                            lo = np.maximum(lo, 0.5 * min(v for v in y if v > 0)) if min(y) > 0 else lo
+                            ax.fill_between(x, lo, hi, color=colour, alpha=0.15, linewidth=0)
+                stops = sorted(x["diverged_at"] for x in runs[label] if x["status"] != "ok" and x["diverged_at"])
+                # Just above the data area (diverged values are unbounded and would crush the scale),
+                # one row per variant so that runs stopping at the same epoch do not hide each other.
+                row = 1.03 + 0.05 * bad_variants.index(label) if stops else 0.0
+                for epoch in dict.fromkeys(stops):
+                    ax.plot([epoch], [row], "x", color=colour, markersize=8, markeredgewidth=2,
+                            transform=top, clip_on=False, gid=f"diverged:{label}:{epoch}")
+                    if stops.count(epoch) > 1:
+                        ax.annotate(f"×{stops.count(epoch)}", (epoch, row), xycoords=top, xytext=(6, 0),
+                                    textcoords="offset points", va="center", fontsize=7.5, color=colour,
+                                    annotation_clip=False)
+            styles = " and ".join(f"{m} ({'dashed' if _style(m) == '--' else 'solid'})" for m in panel_metrics)
+            if faceted:
+                ax.set_title(title if r == 0 else "", fontsize=9.5, pad=6 + 14 * len(bad_variants))
+            else:
+                ax.set_title(styles, fontsize=9.5, pad=6 + 14 * len(bad_variants))
+            ax.grid(True, alpha=0.25, linewidth=0.6)
+            ax.xaxis.get_major_locator().set_params(integer=True)
+            if r == len(families) - 1 or not faceted:
+                ax.set_xlabel("epoch")
+            for side in ("top", "right"):
+                ax.spines[side].set_visible(False)
         positive = [v for v in values if v > 0]
         log = bool(positive) and len(positive) == len(values) and max(positive) / min(positive) > LOG_SPAN
-        if log:
-            ax.set_yscale("log")
-        ax.set_xlabel("epoch")
-        ax.set_ylabel(fam + (" (log scale)" if log else ""))
-        styles = " and ".join(f"{m} ({'dashed' if _style(m) == '--' else 'solid'})" for m in panel)
-        ax.set_title(styles, fontsize=9.5, pad=6 + 14 * len(bad_variants))
-        ax.grid(True, alpha=0.25, linewidth=0.6)
-        ax.xaxis.get_major_locator().set_params(integer=True)
-        for side in ("top", "right"):
-            ax.spines[side].set_visible(False)
+        for ax in grid[r]:
+            if log:
+                ax.set_yscale("log")
+        grid[r, 0].set_ylabel(fam + (" (log scale)" if log else ""))
 
-    handles = []
-    for vi, label in enumerate(labels):
-        ok = sum(r["status"] == "ok" for r in runs[label])
-        bad = len(runs[label]) - ok
-        tail = f" ({ok} ok, {bad} diverged)" if bad else f" (n={ok})"
-        handles.append(Line2D([], [], color=PALETTE[vi % len(PALETTE)], marker=MARKERS[vi % len(MARKERS)],
-                              markersize=4, label=names[label].replace("\n", ", ") + tail))
+    handles, seen = [], set()
+    for label in labels:
+        if colour_of[label] in seen:
+            continue
+        seen.add(colour_of[label])
+        same = [x for lab in labels if colour_of[lab] == colour_of[label] for x in runs[lab]]
+        ok = sum(x["status"] == "ok" for x in same)
+        bad = len(same) - ok
+        tail = f" ({ok} ok, {bad} diverged)" if bad else ("" if faceted else f" (n={ok})")
+        handles.append(Line2D([], [], color=PALETTE[colour_of[label] % len(PALETTE)],
+                              marker=MARKERS[colour_of[label] % len(MARKERS)], markersize=4,
+                              label=_one_line(label, legend_names[label]) + tail))
     # The key to styles goes in the legend's title: in a column of its own it would be read as a variant.
     key = []
     if any(m.startswith("train_") for m in metrics) and any(not m.startswith("train_") for m in metrics):
@@ -282,11 +345,13 @@ def plot_curves(rs: ResultSet, metrics: list[str] | None = None) -> Figure:
         key.append("shaded band = ±1 sd across ok seeds")
     if diverged:
         key.append("× = a diverged run, at the epoch it stopped")
-    _legend_below(fig, handles, 3, title="   ·   ".join(key) or None)
+    _legend_below(fig, handles, 3 if not faceted else len(handles), title="   ·   ".join(key) or None)
     one = _seed_counts(runs) == "one seed per variant"
     what = ("lines are single runs (one seed per variant: no spread to show)" if one else
             f"mean over ok seeds with a ±1 sd band; {_seed_counts(runs)}")
     sub = f"{what}; {_diverged_text(runs)}" + ("; diverged runs left out of the means" if diverged else "")
+    if faceted:
+        sub += f"; one column per {panels[0][0].split(' = ')[0]}"
     _suptitle(fig, _title(rs, "learning curves"), sub)
     return fig
 
@@ -403,8 +468,30 @@ def _cell_text(r: dict) -> str:
     return text
 
 
+def _gaps_to_best(rs: ResultSet, metric: str, best: str) -> dict[str, dict]:
+    """Per variant, its comparison with the best cell by ``lesion diff --baseline`` (same test,
+    same adjustment), and ``gap``: |B − A| in half-widths of its 95 % interval (below 1 the
+    interval holds 0; NaN without an interval)."""
+    from runtime.diff import diff_baseline
+
+    out = {best: {"gap": 0.0, "verdict": "best"}}
+    for row in diff_baseline(rs, best, metrics=[metric]).rows:
+        half = (row["ci_high"] - row["ci_low"]) / 2 if row["ci_low"] is not None else math.nan
+        diff = row["diff"] if row["diff"] is not None else math.nan
+        if not (math.isfinite(diff) and math.isfinite(half)):
+            gap = math.nan  # untested (too few seeds) or diverged: grey, not "far from the best"
+        elif half > 0:
+            gap = abs(diff) / half
+        else:  # every seed differs by the same amount: decided, not estimated
+            gap = 0.0 if diff == 0 else math.inf
+        out[row["variant_b"]] = {"gap": gap, "verdict": row["verdict"]}
+    return out
+
+
 def plot_grid(rs: ResultSet, metrics: list[str] | None = None) -> Figure:
-    """Heat map of the final-epoch mean over the two axes of a grid study (darker = better)."""
+    """Heat map over the two axes of a grid study: colour = distance from the best cell in units
+    of that comparison's uncertainty, on a fixed scale; text = mean ± sd; cells not
+    distinguishable from the best (the verdict of ``lesion diff --baseline <best>``) marked."""
     ax_y, ax_x = _grid_axes(rs)
     metrics = _metrics_of(rs, metrics)
     runs = _runs_by_variant(rs)
@@ -415,41 +502,54 @@ def plot_grid(rs: ResultSet, metrics: list[str] | None = None) -> Figure:
         j = next(j for j, v in enumerate(ax_x["values"]) if v == ch.get(ax_x["key"]))
         cell_of[label] = (i, j)
     ny, nx = len(ax_y["values"]), len(ax_x["values"])
-    fig = _figure(2.2 + (1.25 * nx + 1.6) * len(metrics), 1.9 + 0.85 * ny)
+    fig = _figure(2.2 + (1.25 * nx + 1.9) * len(metrics), 2.3 + 0.85 * ny)
     axes = fig.subplots(1, len(metrics), squeeze=False)[0]
+    # Dark = close to the best on a fixed scale: cells within seed noise of the best stay as dark
+    # as it, so noise does not turn into contrast.
+    cmap = SEQUENTIAL.reversed().with_extremes(bad="#d9d9d9", over=SEQUENTIAL(0.0))
     for ax, m in zip(axes, metrics):
         table = {r["variant"]: r for r in summary_rows(rs, m)}
+        means = {label: table[label]["mean"] for label in cell_of}
+        finite = [label for label in cell_of if math.isfinite(means[label])]
+        sign = 1.0 if METRICS.get(m, "max") == "max" else -1.0
+        best = max(finite, key=lambda label: sign * means[label]) if finite else None
+        gaps = _gaps_to_best(rs, m, best) if best else {}
         grid = np.full((ny, nx), np.nan)
         for label, (i, j) in cell_of.items():
-            grid[i, j] = table[label]["mean"]
-        cmap = SEQUENTIAL if METRICS.get(m, "max") == "max" else SEQUENTIAL.reversed()
-        cmap = cmap.with_extremes(bad="#d9d9d9")
-        finite = grid[np.isfinite(grid)]
-        lo, hi = (finite.min(), finite.max()) if finite.size else (0.0, 1.0)
-        if lo == hi:
-            lo, hi = lo - 0.5, hi + 0.5
-        image = ax.imshow(np.ma.masked_invalid(grid), cmap=cmap, vmin=lo, vmax=hi, aspect="auto", gid=f"grid:{m}")
+            grid[i, j] = gaps.get(label, {}).get("gap", math.nan)
+        image = ax.imshow(np.ma.masked_invalid(grid), cmap=cmap, vmin=0.0, vmax=GAP_SCALE, aspect="auto",
+                          gid=f"grid:{m}")
         for label, (i, j) in cell_of.items():
             v = grid[i, j]
-            shade = (v - lo) / (hi - lo) if math.isfinite(v) else 0.0
-            dark = shade > 0.55 if cmap.name == SEQUENTIAL.name else shade < 0.45
-            ax.text(j, i, _cell_text(table[label]), ha="center", va="center", fontsize=8.5,
-                    color="white" if math.isfinite(v) and dark else "black", gid=f"cell:{m}:{label}")
-        if finite.size:
-            best = np.nanargmax(grid) if METRICS.get(m, "max") == "max" else np.nanargmin(grid)
-            bi, bj = np.unravel_index(best, grid.shape)
-            ax.add_patch(Rectangle((bj - 0.5, bi - 0.5), 1, 1, fill=False, edgecolor=PALETTE[1], linewidth=2.5))
+            text = _cell_text(table[label])
+            verdict = gaps.get(label, {}).get("verdict")
+            if label == best:
+                text += "\nbest"
+            elif verdict in ("no detectable change", "no test possible"):
+                text += "\n≈ best" if verdict == "no detectable change" else "\nuntested"
+                ax.add_patch(Rectangle((j - 0.5, i - 0.5), 1, 1, fill=False, edgecolor=PALETTE[1], linewidth=1.6,
+                                       linestyle=(0, (3, 2)), gid=f"tied:{m}:{label}"))
+            dark = math.isfinite(v) and v < 0.45 * GAP_SCALE
+            ax.text(j, i, text, ha="center", va="center", fontsize=8.5,
+                    color="white" if dark else "black", gid=f"cell:{m}:{label}")
+        if best is not None:
+            bi, bj = cell_of[best]
+            ax.add_patch(Rectangle((bj - 0.5, bi - 0.5), 1, 1, fill=False, edgecolor=PALETTE[1], linewidth=2.5,
+                                   gid=f"best:{m}:{best}"))
         ax.set_xticks(range(nx), [format_value(v) for v in ax_x["values"]])
         ax.set_yticks(range(ny), [format_value(v) for v in ax_y["values"]])
         ax.set_xlabel(ax_x["key"])
         ax.set_ylabel(ax_y["key"])
+        ax.set_title(f"final {m} ({_direction_text(m)})", fontsize=9.5)
         ax.tick_params(length=0)
         for spine in ax.spines.values():
             spine.set_visible(False)
-        bar = fig.colorbar(image, ax=ax, shrink=0.9)
-        bar.set_label(f"final {m}\n({_direction_text(m)}; darker = better)", fontsize=8.5)
+        bar = fig.colorbar(image, ax=ax, shrink=0.9, extend="max")
+        bar.set_label("gap to the best cell, in half-widths\nof its 95 % interval (< 1: interval holds 0)",
+                      fontsize=8.5)
     _suptitle(fig, _title(rs, f"final {', '.join(metrics)} over {ax_y['key']} × {ax_x['key']}"),
-              f"cells: mean ± sd of the final epoch over ok seeds, best outlined; "
+              f"cells: mean ± sd over ok seeds; colour: distance from the best cell (solid outline) on a fixed "
+              f"scale; dashed: no detectable change from the best ('lesion diff --baseline', adjusted); "
               f"{_seed_counts(runs)}; {_diverged_text(runs)}")
     return fig
 
@@ -540,9 +640,26 @@ def save_figure(fig: Figure, path: str | Path) -> Path:
     fmt = path.suffix.lower().lstrip(".")
     if fmt not in ("png", "svg"):
         raise PlotError(f"-o {path}: expected a file ending in .png or .svg")
-    path.parent.mkdir(parents=True, exist_ok=True)
-    # No date in the file, fixed SVG ids: the same result set gives the same bytes.
-    metadata = {"Date": None} if fmt == "svg" else {}
-    with matplotlib.rc_context({"svg.hashsalt": "lesion", "svg.fonttype": "path"}):
-        fig.savefig(path, format=fmt, dpi=DPI, metadata=metadata)
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        _savefig(fig, path, fmt)
+    except OSError as err:
+        raise PlotError(f"{path}: cannot write the picture ({err.strerror or err}); choose a writable -o") from None
     return path
+
+
+def svg_markup(fig: Figure, salt: str) -> str:
+    """``fig`` as one ``<svg>`` element to place inside an HTML page; ``salt`` keeps its element
+    ids apart from those of the page's other pictures."""
+    buffer = io.StringIO()
+    _savefig(fig, buffer, "svg", salt)
+    text = buffer.getvalue()
+    return text[text.index("<svg"):]
+
+
+def _savefig(fig: Figure, target, fmt: str, salt: str = "lesion") -> None:
+    # No date in the file, fixed SVG ids, text drawn as paths (no font needed where it is shown):
+    # the same result set gives the same bytes.
+    metadata = {"Date": None} if fmt == "svg" else {}
+    with matplotlib.rc_context({"svg.hashsalt": salt, "svg.fonttype": "path"}):
+        fig.savefig(target, format=fmt, dpi=DPI, metadata=metadata)

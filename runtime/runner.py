@@ -1,14 +1,18 @@
 """``lesion run``: a loaded study planned, executed group by group, and stored.
 
 Order of work: hold the result set's writer lock; read what is already stored; plan every run of
-the study (so lane widths never depend on what is missing); skip runs stored with the same run
-id and the same numerics environment; execute the rest group by group, writing each finished
-group atomically before starting the next. An interruption loses at most the group in flight.
+the study (so lane widths never depend on what is missing, and a structure with stored runs keeps
+their width); skip runs stored with the same run id and the same numerics environment; execute
+the rest group by group, writing each finished group atomically before starting the next. An
+interruption loses at most the group in flight. ``--fresh`` writes into a staging folder inside
+the result set and replaces the stored runs only once the whole study is computed.
 """
 
 from __future__ import annotations
 
 import json
+import shutil
+import time
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
@@ -19,12 +23,13 @@ import pyarrow as pa
 
 from compiler.hashing import canonical_json, lookup, variant_payload
 from compiler.spec import METRICS
-from runtime import __version__, environment, guard
+from runtime import __version__, environment, execute, guard
 from runtime.execute import GroupResult, InProcess, enable_compile_cache
 from runtime.plan import Group, plan
-from runtime.store import ResultSet, ResultSetError, column, open_result_set, result_dir, write_results, writer_lock
+from runtime.store import (STAGING, ResultSet, ResultSetError, column, open_result_set, refuse_link, result_dir,
+                           write_results, writer_lock)
 
-__all__ = ["RunReport", "run_study", "study_meta", "varied_keys", "group_tables", "datasets_for"]
+__all__ = ["RunReport", "run_study", "study_meta", "varied_keys", "typed_key_columns", "group_tables", "datasets_for"]
 
 
 @dataclass
@@ -60,7 +65,7 @@ def varied_keys(variants) -> list[str]:
     return keys
 
 
-def _key_columns(variants, keys: list[str]) -> dict[str, tuple[pa.DataType, dict]]:
+def typed_key_columns(variants, keys: list[str]) -> dict[str, tuple[pa.DataType, dict]]:
     """Each varied key's value in every resolved variant, typed when the values share a type."""
     out = {}
     for key in keys:
@@ -193,6 +198,7 @@ def group_tables(result: GroupResult, group: Group, study_hash: str, headline: s
 
 
 def _stored(path: Path) -> ResultSet | None:
+    refuse_link(path)
     if not (path / "runs.parquet").exists():
         return None
     return open_result_set(path)
@@ -207,8 +213,38 @@ def _missing(groups: list[Group], done: set) -> list[Group]:
     return todo
 
 
+def _recorded_widths(stored: ResultSet | None, done: set) -> dict[str, int]:
+    """structure -> the lane width its reused runs were computed at (bits depend on the width, so
+    the rest of the structure is computed at that width too)."""
+    if stored is None or not done:
+        return {}
+    found: dict[str, set] = {}
+    cols = stored.runs.select(["run_id", "structure", "lane_width"]).to_pydict()
+    for rid, structure, width in zip(cols["run_id"], cols["structure"], cols["lane_width"]):
+        if rid in done:
+            found.setdefault(structure, set()).add(width)
+    return {s: next(iter(w)) for s, w in found.items() if len(w) == 1}
+
+
+def _refuse_other_width(todo: list[Group], widths: dict[str, int], lanes: int | None, where: Path, fresh: bool):
+    """A ``--lanes`` that differs from the width of a structure's stored runs would mix widths in
+    that structure: refused, rather than silently overridden, when runs of it are still missing."""
+    clash = sorted({widths[g.structure] for g in todo if g.structure in widths and lanes not in (None, widths[g.structure])})
+    if clash:
+        raise ResultSetError(
+            f"{where}: runs stored there were computed at lane width {', '.join(map(str, clash))}; --lanes {lanes} "
+            "would compute the rest of their structure at another width (a run's bits depend on it); "
+            + (f"omit --lanes to keep it, or delete {where} to start the fresh computation over" if fresh else
+               f"omit --lanes to keep it, or recompute every run with --fresh --lanes {lanes}"))
+
+
+def _timing_path() -> Path:
+    return execute.cache_dir() / "timing.json"
+
+
 def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = False,
-              progress: Callable | None = None, on_wait: Callable | None = None, executor=None) -> RunReport:
+              progress: Callable | None = None, on_wait: Callable | None = None, executor=None,
+              checkpoint: Callable[[], None] | None = None) -> RunReport:
     """Compute every run of the study not already stored; write each group as it finishes.
 
     ``executor`` runs the groups (default :class:`runtime.execute.InProcess`); whatever it is,
@@ -217,67 +253,108 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
     In this process (no ``executor``), the resource guard sees every group first: structures
     whose lanes would not fit the machine get a narrower width (unless ``lanes`` forces one), and
     a study that still does not fit raises :class:`runtime.guard.ResourceError` before anything
-    is compiled.
+    is compiled. Structures with reused runs keep the width those were computed at.
+
+    ``fresh`` recomputes every run without touching the stored ones until the whole study is
+    computed: the new runs are written group by group into the staging folder
+    (:data:`runtime.store.STAGING`) and replace the stored result set at the end. An interrupted
+    fresh computation is resumed by the next ``fresh`` call.
+
+    ``checkpoint()`` is called at safe points (between epochs, between groups, after each write,
+    while waiting for the lock); it may raise (:class:`runtime.interrupt.Interrupted`) to stop.
 
     ``progress(event, **info)`` receives ("plan", groups=…, runs=…, estimate=…), ("group", group=…,
     todo=…), ("epoch", done=…, total=…), ("stored", group=…, result=…)."""
     enable_compile_cache()
+    environment.check_settings()
     env = environment.capture()
     # Stored runs are reused when they match the environment that will compute the missing ones
     # (an executor's workers, when it says so), not necessarily this process's.
     env_fp = environment.fingerprint(getattr(executor, "compute_environment", None) or env)
     path = result_dir(out, loaded.spec.study.name, loaded.study_hash)
+    target = path / STAGING if fresh else path
     meta = study_meta(loaded, env)
     spec = loaded.spec
     headline = spec.study.metric
     seeds = spec.study.seed_list
-    with writer_lock(path, on_wait=on_wait):
-        stored = None if fresh else _stored(path)
-        if stored is not None and stored.study_hash != loaded.study_hash:
-            raise ResultSetError(f"{path}: holds study {stored.study_hash[:12]}, not {loaded.study_hash[:12]}")
+    base_dir = Path(loaded.path).resolve().parent if loaded.path else Path.cwd()
+    where = loaded.path or loaded.spec.study.name
+    # Everything that can refuse the study (data, memory) is decided before the result set's
+    # folder exists, from all runs (never from what is missing, so widths stay a function of
+    # the structure).
+    groups = plan(loaded.variants, seeds, lanes=lanes)
+    if executor is None:  # the memory checked is this machine's
+        guard.check_data(groups, where=where, base_dir=base_dir)
+    loaded_data: dict = {}
+    data = datasets_for(groups, base_dir, loaded_data)
+    budget = None
+    if executor is None:
+        budget = guard.lane_budget(groups, data)
+        if lanes is None and any(g.lane_width > budget[g.structure] for g in groups):
+            groups = plan(loaded.variants, seeds, lane_budget=budget)
+            data = datasets_for(groups, base_dir, loaded_data)
+        guard.check(guard.estimate(groups, data), lanes_given=lanes is not None, where=where)
+    check = checkpoint or (lambda: None)
+    with writer_lock(path, on_wait=on_wait, checkpoint=checkpoint):
+        check()
+        for folder in {path, target}:
+            found = _stored(folder)
+            if found is not None and found.study_hash != loaded.study_hash:
+                raise ResultSetError(f"{folder}: holds study {found.study_hash[:12]}, not {loaded.study_hash[:12]}")
+        stored = _stored(target)
         done = set()
         if stored is not None:
             for rid, fp in zip(stored.runs.column("run_id").to_pylist(),
                                stored.runs.column("env_fingerprint").to_pylist()):
                 if fp == env_fp:
                     done.add(rid)
-        groups = plan(loaded.variants, seeds, lanes=lanes)
+        # Structures with reused runs keep the width those were computed at.
+        widths = _recorded_widths(stored, done)
+        if widths:
+            groups = plan(loaded.variants, seeds, lanes=lanes, lane_budget=budget, widths=widths)
+            data = datasets_for(groups, base_dir, loaded_data)
         todo = _missing(groups, done)
-        base_dir = Path(loaded.path).resolve().parent if loaded.path else Path.cwd()
-        where = loaded.path or loaded.spec.study.name
-        if executor is None:  # the memory checked is this machine's
-            guard.check_data(todo, where=where)
-        loaded_data: dict = {}
-        data = datasets_for(todo, base_dir, loaded_data)
-        estimate = None
+        _refuse_other_width(todo, widths, lanes, target, fresh)
+        estimate = preparation = calibration = None
         if executor is None:
-            budget = guard.lane_budget(todo, data)
-            if lanes is None and any(g.lane_width > budget[g.structure] for g in todo):
-                groups = plan(loaded.variants, seeds, lane_budget=budget)
-                todo = _missing(groups, done)
-                data = datasets_for(todo, base_dir, loaded_data)
-            estimate = guard.estimate(todo, data)
-            guard.check(estimate, lanes_given=lanes is not None, where=where)
+            preparation = execute.preparation(todo, data, env)
+            calibration = guard.Calibration.load(_timing_path())
+            estimate = guard.estimate(todo, data, preparation=preparation, calibration=calibration)
         planned = sum(len(g.runs) for g in groups)
         if progress:
             progress("plan", groups=len(todo), runs=sum(len(g.runs) for g in todo), planned=planned,
                      estimate=estimate)
-        key_columns = _key_columns(loaded.variants, varied_keys(loaded.variants))
+        key_columns = typed_key_columns(loaded.variants, varied_keys(loaded.variants))
         diverged, warnings = 0, []
         compile_s = run_s = 0.0
         current = stored
-        for g, result in (executor or InProcess()).run(todo, data, env, progress):
+        started = time.perf_counter()
+        compiled, loaded_s = [], []
+        check()
+        for g, result in (executor or InProcess(checkpoint=checkpoint)).run(todo, data, env, progress):
+            if estimate is not None and preparation[g.group_id] != "reuse":
+                (compiled if preparation[g.group_id] == "compile" else loaded_s).append(result.compile_seconds)
             runs_t, curves_t = group_tables(result, g, loaded.study_hash, headline, key_columns,
                                             data[g.group_id].fingerprint)
-            current = write_results(path, meta, runs_t, curves_t, previous=current)
+            current = write_results(target, meta, runs_t, curves_t, previous=current)
             diverged += sum(1 for lane in result.lanes if lane.diverged_at is not None)
             warnings += [f"{lane.run_id}: {w}" for lane in result.lanes for w in lane.warnings]
             compile_s += result.compile_seconds
             run_s += result.run_seconds
             if progress:
                 progress("stored", group=g, result=result)
+            check()
+        if estimate is not None and todo:
+            # What this invocation measured calibrates the next estimate on this machine.
+            rest = time.perf_counter() - started - compile_s - run_s
+            modelled = sum(guard.model_seconds(g, data[g.group_id]) for g in todo)
+            calibration.updated(compiled=compiled, loaded=loaded_s, executed=(run_s, modelled),
+                                other=(rest, len(todo))).save(_timing_path())
         if current is None:  # nothing to compute and nothing stored: an empty study cannot happen
             raise ResultSetError(f"{path}: nothing was computed")
+        if fresh:  # the whole study is computed: it replaces the stored one
+            write_results(path, meta, current.runs, current.curves, previous=None)
+            shutil.rmtree(target)
         computed = sum(len(g.runs) for g in todo)
         return RunReport(path, planned, computed, planned - computed, diverged, warnings, len(todo),
                          compile_s, run_s)

@@ -99,3 +99,22 @@ def test_help_explains_with_examples(args):
 def test_usage_errors_exit_2_without_traceback():
     code, _, err = _run(["check", "specs/cold-chain.toml", "--format", "yaml"], False)
     assert code == 2 and "Traceback" not in err
+
+
+def test_labels_with_newlines_or_bidi_controls_are_escaped_in_check(tmp_path):
+    # Unicode TR #9 explicit directional overrides and isolates (U+202E, U+2066) reorder what a
+    # terminal shows (CVE-2021-42574); ESC starts an ANSI control sequence (ECMA-48). Printed
+    # raw, a label could pose as another one or spill over lines.
+    spec = tmp_path / "labels.toml"
+    spec.write_text('[study]\nname = "labels"\nseeds = 2\n[ablation]\nmode = "list"\n'
+                    '[[ablation.variant]]\nlabel = "fast\\u202eevil"\nset = { "optimizer.learning_rate" = 0.2 }\n'
+                    '[[ablation.variant]]\nlabel = "two\\nlines\\u001b[31m\\u2066"\n'
+                    'set = { "optimizer.learning_rate" = 0.01 }\n')
+    code, out, _ = _run(["check", str(spec)], subprocess_run=True)
+    assert code == 0
+    assert not {"\u202e", "\u2066", "\x1b"} & set(out)
+    assert "fast\\u202eevil" in out and "two\\nlines\\x1b[31m\\u2066" in out
+    code, out, _ = _run(["check", str(spec), "--format", "json"], subprocess_run=True)
+    assert not {"\u202e", "\u2066", "\x1b"} & set(out)
+    # JSON's own escapes (RFC 8259 §7) keep the labels exact for programs.
+    assert [v["label"] for v in json.loads(out)["variants"]] == ["base", "fast\u202eevil", "two\nlines\x1b[31m\u2066"]

@@ -102,3 +102,30 @@ def test_knob_only_changes_share_a_structure_and_kind_changes_do_not():
                    '[[ablation.axis]]\nkey = "optimizer.learning_rate"\nvalues = [0.01, 0.1]\n')
     assert vs[0].structure == vs[1].structure != vs[2].structure == vs[3].structure
     assert len({v.hash for v in vs}) == 4
+
+
+def _axes(*sizes: int) -> str:
+    keys = ["optimizer.learning_rate", "optimizer.momentum", "regularization.weight_decay"]
+    return "".join(f'[[ablation.axis]]\nkey = "{k}"\nvalues = {[round((i + 1) / (n + 1), 6) for i in range(n)]}\n'
+                   for k, n in zip(keys, sizes))
+
+
+def test_a_grid_of_millions_is_refused_by_its_count_before_expanding():
+    # 200³ = 8,000,000 variants (the size the tester's study asked for); counting is arithmetic,
+    # building them would take hours.
+    message = _error(_axes(200, 200, 200))
+    assert message.startswith("t.toml:4: ablation: the grid (200 × 200 × 200) makes 8,000,000 variants, "
+                              "above the limit of 10,000;"), message
+    assert "LESION_MAX_VARIANTS=8000000" in message and "\n" not in message
+
+
+def test_the_variant_limit_is_raised_or_lowered_by_its_environment_knob(monkeypatch):
+    monkeypatch.setenv("LESION_MAX_VARIANTS", "6")
+    assert len(_variants(_axes(2, 3))) == 6
+    # one at a time: the base + 3 + 4 values
+    assert "one value at a time (the base + 3 + 4) makes 8 variants, above the limit of 6" in \
+        _error('[ablation]\nmode = "one_at_a_time"\n' + _axes(3, 4))
+    monkeypatch.setenv("LESION_MAX_VARIANTS", "5")
+    assert "makes 6 variants, above the limit of 5" in _error(_axes(2, 3))
+    monkeypatch.setenv("LESION_MAX_VARIANTS", "lots")
+    assert "LESION_MAX_VARIANTS='lots': expected a positive whole number" in _error(_axes(2, 3))

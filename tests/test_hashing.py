@@ -95,6 +95,20 @@ def test_rfc8785_3_2_2_example():
     assert canonical_json(obj) == expected.encode("utf-8")
 
 
+def test_members_canonicalized_once_give_the_same_bytes():
+    # RFC 8785 §3.2.3 and §3.2.2 objects above, through one shared memo: an object is serialized
+    # member by member in UTF-16 key order, so cached members must join into the same bytes; 1,
+    # 1.0 and true are different members (§3.2.2.3 writes 1.0 as 1, so only the memo key differs).
+    memo: dict = {}
+    docs = [{"\u20ac": 1, "\r": 1.0, "\ufb33": True, "\U0001f600": [1.5, "x"], "1": {"b": 2e-3, "a": None}},
+            {"numbers": [333333333.33333329, 1e30, 4.50, 2e-3], "literals": [None, True, False], "\r": True},
+            {"\u20ac": True, "\r": 1, "\ufb33": 1.0}]
+    for doc in docs * 2:
+        assert canonical_json(doc, memo) == canonical_json(doc)
+    assert canonical_json(docs[0], memo) == ('{"\\r":1,"1":{"a":null,"b":0.002},"\u20ac":1,'
+                                             '"\U0001f600":[1.5,"x"],"\ufb33":true}').encode("utf-8")
+
+
 @pytest.mark.parametrize("bad", [math.nan, math.inf, -math.inf])
 def test_nan_and_infinity_are_refused(bad):
     # RFC 8785 §3.2.2.2 / Appendix B: NaN and Infinity have no JSON form; they must not hash.

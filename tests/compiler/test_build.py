@@ -10,13 +10,14 @@ import jax.numpy as jnp
 import numpy as np
 import pytest
 import scipy.stats
-from sklearn.datasets import load_diabetes, load_iris
+from sklearn.datasets import load_diabetes, load_digits, load_iris
 from sklearn.linear_model import LogisticRegression, Ridge
+from sklearn.preprocessing import StandardScaler
 
 from compiler import build, model
 from compiler.data import load_data
 from compiler.expand import expand
-from compiler.hashing import KNOBS, structure_key
+from compiler.hashing import KNOBS, structure_key, study_hash
 from compiler.spec import Spec
 
 ROOT = pathlib.Path(__file__).resolve().parents[2]
@@ -81,6 +82,57 @@ def test_standardization_is_fitted_on_the_training_rows(base):
     train = ds.x[np.asarray(carry.train_idx)].astype(np.float64)
     np.testing.assert_allclose(carry.x_mean, train.mean(0), rtol=1e-5, atol=1e-6)
     np.testing.assert_allclose(carry.x_scale, train.std(0), rtol=1e-5)
+
+
+@pytest.fixture(scope="module")
+def digits_run(tmp_path_factory):
+    """scikit-learn's digits, z-scored and written as CSV; seed 3's training rows hold pixel 56 at
+    one value (its few non-zero images all fall in validation)."""
+    folder = tmp_path_factory.mktemp("digits")
+    digits = load_digits()
+    x = StandardScaler().fit_transform(digits.data)
+    header = ",".join([f"p{j}" for j in range(64)] + ["y"])
+    np.savetxt(folder / "digits.csv", np.column_stack([x, digits.target]), delimiter=",", header=header,
+               comments="", fmt="%.9g")
+
+    def run(**data):
+        v = expand(Spec.model_validate({
+            "study": {"name": "digits"}, "data": {"kind": "file", "path": "digits.csv", **data},
+            "model": {"hidden": [16]}, "training": {"epochs": 3, "batch_size": 128}}))[0].spec
+        prog, ds = program(v, folder)
+        carry, metrics = jax.jit(prog.train)(knobs(v), build.seed_key(3), ds.x, ds.y)
+        return ds, carry, metrics
+    return run
+
+
+def test_near_constant_column_of_zscored_digits_is_centred_not_blown_up(digits_run):
+    ds, carry, metrics = digits_run()
+    train = ds.x[np.asarray(carry.train_idx)].astype(np.float64)
+    assert np.ptp(train[:, 56]) == 0 and np.ptp(ds.x[np.asarray(carry.val_idx), 56]) > 10  # the case itself
+    # scikit-learn StandardScaler (_is_constant_feature, _handle_zeros_in_scale): a feature constant
+    # up to rounding gets scale 1; every other scale is the population standard deviation.
+    reference = StandardScaler().fit(train)
+    np.testing.assert_allclose(carry.x_scale, reference.scale_, rtol=1e-4)
+    np.testing.assert_allclose(carry.x_mean, reference.mean_, rtol=1e-4, atol=1e-6)
+    # Before the rule, pixel 56's validation values were divided by ~2e-9 and the final
+    # validation divergence of this run was ~1e7. Ten classes: chance cross-entropy is ln 10 ≈ 2.3.
+    assert np.all(np.isfinite(metrics["val_divergence"])) and metrics["val_divergence"][-1] < 2.3
+
+
+def test_standardize_false_feeds_the_columns_as_they_are(digits_run):
+    ds, carry, _ = digits_run(standardize=False)
+    assert np.all(np.asarray(carry.x_mean) == 0) and np.all(np.asarray(carry.x_scale) == 1)
+
+
+def test_standardize_default_keeps_study_hashes_and_false_changes_them():
+    # RFC 8785 canonical JSON of the spec with defaults filled: a key added later must not change
+    # the hash of specs that do not write it (common practice: a content hash is a stable name).
+    def digest(**data):
+        return study_hash(Spec.model_validate({"study": {"name": "h"}, "data": {"kind": "file", "path": "d.csv",
+                                                                                  **data}}))
+    assert digest() == digest(standardize=True) != digest(standardize=False)
+    # the digest of that spec before data.standardize existed (computed on the earlier code)
+    assert digest() == "8e15e4b214adc78a303c7c3eed7fa9059626785fe60f6585e2cc3a0f6f17265d"
 
 
 def test_evaluate_is_the_inference_mode_validation_metric(base):

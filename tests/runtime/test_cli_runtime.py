@@ -71,7 +71,7 @@ def test_replay_cli_identical_and_json(stored):
     out = lesion("replay", path, "--format", "json")
     assert out.returncode == 0, out.stderr
     doc = json.loads(out.stdout)
-    assert doc["identical"] and doc["environment_changes"] == [] and len(doc["runs"]) == 2
+    assert doc["identical"] and doc["environment_changes"] == [] and len(doc["runs"]) == 6
     bad = lesion("replay", path, "--run", "nope")
     assert bad.returncode == 2 and "no run 'nope'" in bad.stderr and "Traceback" not in bad.stderr
 
@@ -203,3 +203,53 @@ def test_progress_says_compiling_then_counts_epochs_with_an_estimate():
         bar("epoch", done=4, total=4)
         bar("stored", group=group)
     assert study.fields["count"] == "2/4 runs"
+
+@pytest.mark.parametrize("redirect, message", [
+    (">/dev/full", "lesion: cannot write to standard output (No space left on device)"),
+    (">&-", "lesion: standard output is closed; redirect it instead (e.g. >/dev/null)"),
+])
+def test_an_unwritable_standard_output_is_one_line_and_exit_2(redirect, message):
+    # /dev/full refuses every write with ENOSPC (Linux null(4)/full(4) man page); `>&-` closes
+    # descriptor 1 (POSIX shell redirection)
+    out = subprocess.run(["bash", "-c", f'"$0" -m runtime.cli schema {redirect}', sys.executable],
+                         capture_output=True, text=True, cwd=ROOT, timeout=120)
+    assert out.returncode == 2, out.stderr
+    assert out.stderr.splitlines() == [message]
+
+
+def test_a_pipe_closed_by_its_reader_stays_quiet():
+    # `| head` closing early is normal use, not an error worth a message (common practice)
+    out = subprocess.run(["bash", "-c", '"$0" -m runtime.cli schema | head -c 1 >/dev/null; exit ${PIPESTATUS[0]}',
+                          sys.executable], capture_output=True, text=True, cwd=ROOT, timeout=120)
+    assert out.returncode in (0, 1) and out.stderr == "", out.stderr
+
+
+def test_the_default_generator_setting_changes_no_bits_and_is_recorded(stored, tmp_path):
+    # JAX documents JAX_DEFAULT_PRNG_IMPL=rbg as drawing other bits than threefry from the same
+    # seed (jax.random module docs, "Advanced RNG configuration"); lesion names its generator
+    from runtime import environment
+    from runtime.store import open_result_set
+
+    spec, path, _ = stored
+    out = lesion("run", spec, "--out", tmp_path, "--quiet", env={"JAX_DEFAULT_PRNG_IMPL": "rbg"})
+    assert out.returncode == 0, out.stderr
+    default, rbg = open_result_set(path), open_result_set(out.stdout.strip())
+    digests = [dict(zip(rs.runs.column("run_id").to_pylist(), rs.runs.column("param_digest").to_pylist()))
+               for rs in (default, rbg)]
+    assert digests[0] == digests[1]
+    assert rbg.meta["environment"]["jax_default_prng_impl"] == "rbg"
+    assert "jax_default_prng_impl: threefry2x32 → rbg" in environment.differences(
+        default.meta["environment"], rbg.meta["environment"])
+    # so resuming under the other setting recomputes rather than mixing: fingerprints differ
+    assert environment.fingerprint(default.meta["environment"]) != environment.fingerprint(rbg.meta["environment"])
+
+
+@pytest.mark.parametrize("variable, value", [("JAX_NUMPY_DTYPE_PROMOTION", "strict"),
+                                             ("JAX_NUMPY_RANK_PROMOTION", "raise"), ("JAX_DISABLE_JIT", "1")])
+def test_jax_settings_lesion_cannot_run_under_are_one_line_and_exit_2(stored, tmp_path, variable, value):
+    spec, _, _ = stored
+    out = lesion("run", spec, "--out", tmp_path, "--quiet", env={variable: value})
+    assert out.returncode == 2, out.stderr
+    (line,) = out.stderr.splitlines()
+    assert f"is not supported by lesion's programs; unset it (the environment variable {variable})" in line
+    assert not list(tmp_path.iterdir())

@@ -93,7 +93,7 @@ def test_resume_on_the_cluster_computes_nothing(on_cluster, cluster):
 
 def test_replay_of_worker_runs_succeeds_here(on_cluster):
     _, _, there, _ = on_cluster
-    report = replay(there.path, everything=True)
+    report = replay(there.path)
     assert len(report.rows) == 6 and report.identical, [r.as_dict() for r in report.rows]
     assert report.environment_changes == []
 
@@ -201,7 +201,7 @@ def test_cli_local_cluster_matches_in_process(tmp_path, tiny_spec, on_cluster):
     assert out.exit_code == 0, out.output
     path = out.stdout.strip().splitlines()[-1]
     _assert_same_bits(here, open_result_set(path))
-    again = CliRunner().invoke(app, ["replay", path, "--all"])
+    again = CliRunner().invoke(app, ["replay", path])
     assert again.exit_code == 0 and "all 6 replayed run(s) identical" in again.stdout, again.output
 
 

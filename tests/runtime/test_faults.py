@@ -22,7 +22,7 @@ from typer.testing import CliRunner
 
 from compiler.loader import load_study
 from runtime.cli import app
-from runtime.store import CURVES, RUNS, open_result_set
+from runtime.store import CURVES, RUNS, STAGING, open_result_set
 
 ROOT = Path(__file__).parents[2]
 RUNS_TOTAL, EPOCHS = 12, 3
@@ -232,3 +232,114 @@ def test_a_read_only_result_set_is_a_clean_error(stored):
         folder.chmod(0o755)
     assert result.exit_code == 2 and "cannot" in result.stderr
     assert (folder / RUNS).read_bytes() == before[RUNS]
+
+
+# ── Ctrl-C at a terminal ─────────────────────────────────────────────────────────────────────────
+def _at_terminal(spec: Path, out: Path, *extra: str, python: tuple = ()) -> tuple[int, int]:
+    """`lesion run` on a pseudo-terminal of its own (its session and foreground process group):
+    returns (pid, master fd). Typing Ctrl-C is writing the INTR character (0x03) to the master;
+    the terminal's line discipline turns it into SIGINT to the foreground group (POSIX termios,
+    ISIG), as at an interactive shell."""
+    import pty
+    import warnings
+    with warnings.catch_warnings():
+        # jax warns of forking a threaded process; the child only changes folder and signal
+        # disposition (system calls, no lock another thread could hold) before it execs
+        warnings.simplefilter("ignore", RuntimeWarning)
+        pid, fd = pty.fork()
+    if pid == 0:  # the child: pty.fork made the terminal its controlling one
+        os.chdir(ROOT)
+        signal.signal(signal.SIGINT, signal.SIG_DFL)  # a foreground job, even if pytest runs in the background
+        os.execv(sys.executable, [sys.executable, *python, "-m", "runtime.cli", "run", str(spec), "--out", str(out),
+                                  "--lanes", "1", *extra])
+    return pid, fd
+
+
+def _drain(fd: int, sink: bytearray, seconds: float) -> None:
+    import select
+    end = time.monotonic() + seconds
+    while time.monotonic() < end:
+        ready, _, _ = select.select([fd], [], [], max(0.0, min(0.02, end - time.monotonic())))
+        if ready:
+            try:
+                chunk = os.read(fd, 65536)
+            except OSError:  # EIO: the child closed the terminal
+                return
+            if not chunk:
+                return
+            sink += chunk
+
+
+def _interrupt_at(spec: Path, out: Path, moment: str, rng: random.Random, *extra: str) -> tuple[int | None, str, float]:
+    """Press Ctrl-C once at `moment` (import, compile, execution, write); returns (exit status or
+    None when a signal ended it, everything it printed, seconds from Ctrl-C to exit)."""
+    folder = out / load_study(spec).result_set
+    if "--fresh" in extra:  # its groups are written beside the stored set until the study is complete
+        folder = folder / STAGING
+    # -X importtime reports each import as it ends: the interpreter's own start-up (before the
+    # `site` module) is Python's, not lesion's, to handle.
+    pid, fd = _at_terminal(spec, out, *extra, python=("-X", "importtime") if moment == "import" else ())
+    text = bytearray()
+    deadline = time.monotonic() + 300
+    if moment == "import":  # while lesion imports typer, pyarrow, pydantic, jax
+        while b"| site\r\n" not in text and time.monotonic() < deadline:
+            _drain(fd, text, 0.002)
+        _drain(fd, text, rng.uniform(0.0, 1.0))
+    elif moment == "compile":  # the plan is printed just before the first compile
+        while b"runs to compute" not in text and time.monotonic() < deadline:
+            _drain(fd, text, 0.01)
+        _drain(fd, text, rng.uniform(0.0, 0.3))
+    else:
+        last = (folder / RUNS).stat().st_mtime_ns if (folder / RUNS).exists() else 0
+        while time.monotonic() < deadline:
+            _drain(fd, text, 0.001)
+            if moment == "write" and list(folder.glob(".*parquet-tmp")):
+                break
+            if moment == "execution" and (folder / RUNS).exists() and (folder / RUNS).stat().st_mtime_ns != last:
+                _drain(fd, text, rng.uniform(0.0, 0.1))
+                break
+    os.write(fd, b"\x03")
+    pressed = time.monotonic()
+    while True:
+        done, status = os.waitpid(pid, os.WNOHANG)
+        if done:
+            break
+        _drain(fd, text, 0.05)
+        assert time.monotonic() - pressed < 120, "Ctrl-C did not stop the run"
+    took = time.monotonic() - pressed
+    _drain(fd, text, 0.2)
+    os.close(fd)
+    return (os.WEXITSTATUS(status) if os.WIFEXITED(status) else None), text.decode(errors="replace"), took
+
+
+def _clean_interrupt(code, text: str, folder: Path, fresh: bool = False) -> dict:
+    assert code == 130, (code, text[-2000:])
+    for bad in ("Traceback", "Segmentation fault", "Exception ignored", "Aborted"):
+        assert bad not in text, text[-2000:]
+    assert "interrupted" in text
+    if fresh:
+        assert "run the same command again" not in text
+    return _state(folder)
+
+
+@pytest.mark.parametrize("moment", ["import", "compile", "execution", "write"])
+def test_ctrl_c_at_a_terminal_stops_cleanly_with_130_at_any_moment(tmp_path, reference, moment):
+    spec, digests = reference
+    out = tmp_path / "out"
+    code, text, took = _interrupt_at(spec, out, moment, random.Random(moment))
+    kept = _clean_interrupt(code, text, out / load_study(spec).result_set)
+    assert took < 30, f"Ctrl-C took {took:.1f} s to stop the run"
+    assert {r: d for r, (_, d) in kept.items()} == {r: digests[r] for r in kept}
+
+
+def test_ctrl_c_during_fresh_keeps_the_stored_set_and_says_what_happens(tmp_path, reference):
+    spec, digests = reference
+    out = tmp_path / "out"
+    folder = out / load_study(spec).result_set
+    first = subprocess.run([sys.executable, "-m", "runtime.cli", "run", str(spec), "--out", str(out), "--lanes", "1",
+                            "--quiet"], cwd=ROOT, capture_output=True, text=True, timeout=600)
+    assert first.returncode == 0, first.stderr
+    before = _state(folder)
+    code, text, _ = _interrupt_at(spec, out, "execution", random.Random(3), "--fresh")
+    assert _clean_interrupt(code, text, folder, fresh=True) == before
+    assert "is unchanged" in " ".join(text.split())

@@ -190,3 +190,66 @@ def test_memory_model_bounds_the_measured_peak(tmp_path):
     out = subprocess.run([sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True, check=True)
     estimate, peak = map(int, out.stdout.split())
     assert peak <= estimate <= 3 * peak, (estimate, peak)
+
+
+# ── memory limits and data files that expand ────────────────────────────────────────────────────
+@pytest.mark.parametrize("files, expected", [
+    # Linux kernel docs, cgroup-v2.rst: memory.max ("max" = no limit) and memory.current
+    ({"memory.max": "1073741824\n", "memory.current": "104857600\n"}, (2**30, 100 * 2**20)),
+    ({"memory.max": "max\n", "memory.current": "104857600\n"}, None),
+    # cgroup-v1/memory.rst: memory.limit_in_bytes and memory.usage_in_bytes, "no limit" written as
+    # the largest page-aligned int64 (9223372036854771712, from memory of what kernels print)
+    ({"memory/memory.limit_in_bytes": "536870912\n", "memory/memory.usage_in_bytes": "52428800\n"},
+     (2**29, 50 * 2**20)),
+    ({"memory/memory.limit_in_bytes": "9223372036854771712\n", "memory/memory.usage_in_bytes": "1\n"}, None),
+])
+def test_cgroup_v1_and_v2_memory_limits_are_read(tmp_path, files, expected):
+    for name, text in files.items():
+        (tmp_path / name).parent.mkdir(parents=True, exist_ok=True)
+        (tmp_path / name).write_text(text)
+    assert guard._cgroup(str(tmp_path)) == expected
+
+
+def test_a_compressed_npz_bomb_is_refused_from_its_headers_before_loading(tmp_path, monkeypatch):
+    import numpy as np
+
+    import compiler.data
+    # 2**25 float64 zeros: 256 MiB in memory, a few hundred KB deflated (numpy.savez_compressed).
+    np.savez_compressed(tmp_path / "bomb.npz", x=np.zeros(2**25), y=np.zeros(2**25, np.int8))
+    assert (tmp_path / "bomb.npz").stat().st_size < 2**20
+    spec = expand(Spec.model_validate({"study": {"name": "bomb"}, "data": {"kind": "file", "path": "bomb.npz"}}))
+    groups = plan(spec, [0])
+    monkeypatch.setattr(np, "load", lambda *a, **k: pytest.fail("the guard decompressed the data"))
+    # the arrays as stored (8 + 1 bytes a row) plus 20 bytes per feature value while converting
+    need = guard.RUNTIME_BYTES + 2**25 * (8 + 1) + 20 * 2**25
+    with pytest.raises(guard.ResourceError, match=r"data.path = bomb.npz needs about 1.4 GB .* just to load"):
+        guard.check_data(groups, where="s.toml", base_dir=tmp_path, available=need - 1)
+    guard.check_data(groups, where="s.toml", base_dir=tmp_path, available=need)
+    assert compiler.data.inspect_file(spec[0].spec.data, tmp_path).rows == 2**25
+
+def test_the_time_estimate_is_calibrated_by_what_runs_measured_on_this_machine(tmp_path, tiny_spec, monkeypatch):
+    # The estimate was 2-3× low on a busy machine (issue 14): each run stores what it measured,
+    # and the next estimate is built from it. The measurements are checked against the result
+    # set's own record of them (runs.parquet: compile_seconds, run_seconds; README).
+    from runtime import execute
+
+    monkeypatch.setenv("LESION_CACHE_DIR", str(tmp_path / "cache"))
+    monkeypatch.setattr(execute, "_programs", {})  # this process has compiled nothing yet
+    loaded = load_study(tiny_spec(tmp_path, "calibrate"))
+    groups = plan(loaded.variants, loaded.seeds)
+    data = runner.datasets_for(groups, tmp_path)
+    modelled = sum(guard.model_seconds(g, data[g.group_id]) for g in groups)
+    runs = open_result_set(runner.run_study(loaded, tmp_path / "a").path).runs.to_pydict()
+    stored = guard.Calibration.load(tmp_path / "cache" / "timing.json")
+    assert stored.runs == 1
+    assert stored.compile_seconds == pytest.approx(max(runs["compile_seconds"]))
+    assert stored.execute_ratio == pytest.approx(sum(runs["run_seconds"]) / modelled)
+
+    # A second process: the programs are in the compile cache, so the estimate counts a load.
+    monkeypatch.setattr(execute, "_programs", {})
+    events = []
+    runner.run_study(loaded, tmp_path / "b", progress=lambda e, **info: events.append((e, info)))
+    est = next(info["estimate"] for e, info in events if e == "plan")
+    assert est.seconds == pytest.approx(stored.execute_ratio * modelled + stored.load_seconds
+                                        + stored.group_seconds * len(groups))
+    assert guard.Calibration.load(tmp_path / "cache" / "timing.json").runs == 2

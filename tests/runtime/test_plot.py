@@ -76,7 +76,10 @@ def sets(tmp_path_factory, tiny_spec):
         "grid_b": _run(noisy, tmp / "rb"),
         "diverged": _run(tiny_spec(tmp, "flare", seeds=3, epochs=3, rates="[0.05, 1e5]", extra=GRID_AXIS), tmp / "r"),
         "single": _run(tiny_spec(tmp, "lone", seeds=1, epochs=3), tmp / "r"),
+        "single_grid": _run(tiny_spec(tmp, "lone-grid", seeds=1, epochs=3, extra=GRID_AXIS), tmp / "r"),
         "regression": _run(tmp / "slag-depth.toml", tmp / "r"),
+        "nine": _run(tiny_spec(tmp, "vats", seeds=2, epochs=2, rates="[0.03, 0.1, 0.3]", extra=GRID_AXIS.replace(
+            "[0.0, 0.01]", "[0.0, 0.001, 0.01]")), tmp / "r"),
     }
 
 
@@ -213,19 +216,45 @@ def test_grid_cells_hold_the_summary_means_on_the_axis_values(sets):
     rs = sets["grid"]
     fig = P.plot_grid(rs)
     ax = fig.axes[0]
-    image = ax.get_images()[0]
-    grid = np.ma.filled(image.get_array(), np.nan)
-    assert grid.shape == (2, 2)
     assert ax.get_ylabel() == "optimizer.learning_rate" and ax.get_xlabel() == "regularization.weight_decay"
     assert [t.get_text() for t in ax.get_yticklabels()] == ["0.03", "0.3"]
     assert [t.get_text() for t in ax.get_xticklabels()] == ["0", "0.01"]
     means = {r["variant"]: r["mean"] for r in summary_rows(rs)}
+    for lr, wd in itertools.product(["0.03", "0.3"], ["0.0", "0.01"]):
+        label = f"optimizer.learning_rate={lr}, regularization.weight_decay={wd}"
+        [text] = [t for t in ax.texts if t.get_gid() == f"cell:val_accuracy:{label}"]
+        assert text.get_text().startswith(f"{means[label]:.3g}")
+
+
+def test_grid_colour_is_the_gap_to_the_best_in_interval_half_widths_on_a_fixed_scale(sets):
+    rs = sets["grid"]
+    fig = P.plot_grid(rs)
+    ax = fig.axes[0]
+    image = ax.get_images()[0]
+    # a fixed scale, not the observed range: equal gaps get equal colours in every study
+    assert image.norm.vmin == 0.0 and image.norm.vmax == P.GAP_SCALE
+    grid = np.ma.filled(image.get_array(), np.nan)
+    runs = rs.runs.to_pandas()
+    by = {label: g.sort_values("seed").final_val_accuracy.to_numpy(dtype=float)
+          for label, g in runs.groupby("variant_label")}
+    best = max(by, key=lambda label: by[label].mean())
+    assert [p.get_gid() for p in ax.patches if (p.get_gid() or "").startswith("best:")] == [f"best:val_accuracy:{best}"]
     for i, lr in enumerate(["0.03", "0.3"]):
         for j, wd in enumerate(["0.0", "0.01"]):
             label = f"optimizer.learning_rate={lr}, regularization.weight_decay={wd}"
-            assert grid[i, j] == means[label]
+            d = by[label] - by[best]
+            if label == best:
+                assert grid[i, j] == 0.0
+                continue
+            if np.all(d == d[0]):
+                continue  # no spread: the interval is decided, not estimated (runtime.stats)
+            ci = sps.ttest_rel(by[label], by[best]).confidence_interval(0.95)  # paired t, scipy
+            assert grid[i, j] == pytest.approx(abs(d.mean()) / ((ci.high - ci.low) / 2), rel=1e-9)
             [text] = [t for t in ax.texts if t.get_gid() == f"cell:val_accuracy:{label}"]
-            assert text.get_text().startswith(f"{means[label]:.3g}")
+            # cells whose interval holds 0 cannot be told from the best (Holm only widens that)
+            if ci.low <= 0 <= ci.high:
+                assert text.get_text().endswith("≈ best")
+                assert any(p.get_gid() == f"tied:val_accuracy:{label}" for p in ax.patches)
 
 
 def test_diff_intervals_match_a_paired_t_interval_by_scipy(sets):
@@ -281,6 +310,40 @@ def test_diverged_runs_are_marked_at_their_epoch_and_said(sets):
     assert "6 of 12 runs diverged" in _subtitle(arms)
 
 
+def test_grid_cells_without_an_interval_are_grey_and_say_untested(sets):
+    # one seed per cell: lesion diff has no test (runtime.stats), so no gap can be measured
+    fig = P.plot_grid(sets["single_grid"])
+    ax = fig.axes[0]
+    grid = np.ma.filled(ax.get_images()[0].get_array(), np.nan)
+    assert np.sum(grid == 0.0) == 1 and np.isnan(grid).sum() == 3  # the best, and three unknown
+    texts = [t.get_text() for t in ax.texts if (t.get_gid() or "").startswith("cell:")]
+    assert sum(t.endswith("untested") for t in texts) == 3
+
+
+def test_curves_of_a_large_grid_are_small_multiples_one_panel_per_level(sets):
+    rs = sets["nine"]
+    fig = P.plot_curves(rs)
+    runs = rs.runs.to_pandas()
+    assert runs.variant_label.nunique() == 9 > P.FACET_OVER
+    # two metric families (accuracy; train and val divergence) × three learning rates
+    assert len(fig.axes) == 2 * 3
+    top = [ax for ax in fig.axes if ax.get_title()]
+    assert [ax.get_title() for ax in top] == ["learning_rate = 0.03", "learning_rate = 0.1", "learning_rate = 0.3"]
+    colour_of_decay = {}
+    for ax in fig.axes:
+        means = [l for l in ax.get_lines() if (l.get_gid() or "").startswith("mean:")]
+        labels = {l.get_gid().split(":", 2)[2] for l in means}
+        assert len(labels) == 3  # one line per weight decay, not all nine
+        assert len({lab.split(",")[0] for lab in labels}) == 1  # a single learning rate per panel
+        for line in means:
+            decay = line.get_gid().split("weight_decay=")[1]
+            # the same level of the other axis keeps its colour in every panel
+            assert colour_of_decay.setdefault(decay, line.get_color()) == line.get_color()
+    assert len(set(colour_of_decay.values())) == 3
+    legend = [t.get_text() for t in fig.legends[0].get_texts()]
+    assert legend == ["weight_decay=0.0", "weight_decay=0.001", "weight_decay=0.01"]
+
+
 def test_one_seed_says_so_and_draws_no_spread(sets):
     rs = sets["single"]
     fig = P.plot_curves(rs)
@@ -319,7 +382,8 @@ def _overlap(a, b) -> bool:
 
 
 @pytest.mark.parametrize("name,kind", [("grid", "curves"), ("grid", "arms"), ("grid", "grid"),
-                                       ("diverged", "curves"), ("regression", "arms"), ("grid", "diff")])
+                                       ("diverged", "curves"), ("regression", "arms"), ("grid", "diff"),
+                                       ("nine", "curves")])
 def test_text_stays_on_the_canvas_and_legends_stay_off_the_axes(sets, name, kind, tmp_path):
     fig = P.plot_diff(sets["grid"], sets["grid_b"]) if kind == "diff" else P.plot(sets[name], kind)
     FigureCanvasAgg(fig).draw()  # lays the figure out as saving does
@@ -427,3 +491,18 @@ def test_cli_bad_input_is_one_line_and_exit_2(sets, args, message):
     assert out.exit_code == 2, out.output
     assert message in out.stderr and len(out.stderr.strip().splitlines()) == 1
     assert "Traceback" not in out.output
+
+
+def test_palette_name_describes_its_purpose_and_readme_does_not_brand_it():
+    # our own rule: the palette is named for what it does, not in a vendor's "<brand> ten" style
+    assert P.PALETTE_NAME == "ten colours apart under colour-vision deficiency"
+    readme = (Path(__file__).parents[2] / "README.md").read_text()
+    assert "lesion ten" not in readme
+
+@pytest.mark.parametrize("target", ["/sys/lesion-plot.png", "/sys/lesion-plots/arms.png"])
+def test_cli_an_unwritable_picture_path_is_one_line_and_exit_2(sets, target):
+    # /sys refuses new files (EACCES) and folders (EPERM) even to root, where a read-only chmod would not
+    out = CliRunner().invoke(app, ["plot", str(sets["single"].path), "--kind", "arms", "-o", target])
+    assert out.exit_code == 2, out.exception
+    (line,) = out.stderr.splitlines()
+    assert line.startswith(target) and "cannot write the picture" in line, line

@@ -95,7 +95,7 @@ def test_replay_never_takes_a_stored_program(tmp_path, tiny_spec, store, monkeyp
     loaded = load_study(tiny_spec(tmp_path, "ember", seeds=2, epochs=2))
     path = run_study(loaded, tmp_path / "a").path
     monkeypatch.setattr(execute, "_load_programs", lambda p: pytest.fail("replay loaded a stored program"))
-    report = replay(path, everything=True)
+    report = replay(path)
     assert report.identical
 
 

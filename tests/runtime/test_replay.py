@@ -42,7 +42,7 @@ def test_bitwise_equal_rules():
 def test_replay_in_a_fresh_process_is_identical(stored):
     env = {**os.environ, "PYTHONPATH": str(ROOT)}
     out = subprocess.run([sys.executable, "-c",
-                          "import json,sys; from runtime.replay import replay; r = replay(sys.argv[1], everything=True);"
+                          "import json,sys; from runtime.replay import replay; r = replay(sys.argv[1]);"
                           "print(json.dumps([x.verdict for x in r.rows]))", str(stored)],
                          capture_output=True, text=True, env=env, cwd=ROOT, timeout=300)
     assert out.returncode == 0, out.stderr
@@ -79,7 +79,7 @@ def test_changed_metric_cell_is_reported_as_differing(stored, tmp_path):
     t = t.set_column(t.schema.get_field_index("val_divergence"), "val_divergence", pa.array(col))
     _rewrite(copy / "curves.parquet", t)
     rid = t.column("run_id")[1].as_py()
-    rows = {r.run_id: r for r in replay(copy, everything=True).rows}
+    rows = {r.run_id: r for r in replay(copy).rows}
     assert rows[rid].verdict == "differs" and rows[rid].first_metric == "val_divergence"
     assert rows[rid].first_epoch == t.column("epoch")[1].as_py()
     assert 0 < rows[rid].max_abs < 1e-5

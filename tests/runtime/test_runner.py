@@ -9,7 +9,7 @@ import pytest
 
 from compiler.loader import load_study
 from runtime.runner import run_study
-from runtime.store import open_result_set
+from runtime.store import ResultSetError, open_result_set
 
 
 @pytest.fixture(scope="module")
@@ -98,7 +98,7 @@ def test_runs_of_other_lesion_sources_are_recomputed_and_replay_names_the_change
     assert set(open_result_set(again.path).runs.column("env_fingerprint").to_pylist()) == {
         environment.fingerprint(environment.capture())}
     monkeypatch.setattr(environment, "source_digest", lambda: old)
-    report = replay(again.path, everything=True)
+    report = replay(again.path)
     assert f"lesion_sources: {'f' * 16} → {old}" in report.environment_changes
     assert report.identical  # the same code in fact: the bits agree, and the change is named
 
@@ -131,3 +131,49 @@ def test_a_divergent_arm_is_marked_and_the_others_finish(tmp_path, tiny_spec):
     assert (bad.status == "diverged").all() and bad.diverged_at.between(1, 4).all()
     assert (good.status == "ok").all() and good.final_val_accuracy.notna().all()
     assert report.diverged == 2
+
+
+class _KilledAfter:
+    """A progress callback that stops the run (as a kill would) once `groups` groups are stored."""
+
+    def __init__(self, groups: int):
+        self.left = groups
+
+    def __call__(self, event, **info):
+        if event == "stored":
+            self.left -= 1
+            if self.left == 0:
+                raise SystemExit("killed")
+
+
+def _digests(path) -> dict:
+    runs = open_result_set(path).runs
+    return dict(zip(runs.column("run_id").to_pylist(), zip(runs.column("param_digest").to_pylist(),
+                                                            runs.column("lane_width").to_pylist())))
+
+
+def test_an_interrupted_fresh_run_keeps_every_stored_run_until_the_study_is_complete(tmp_path, tiny_spec):
+    loaded = load_study(tiny_spec(tmp_path, "renew", seeds=3, epochs=2))
+    first = run_study(loaded, tmp_path / "r", lanes=2)
+    before = (first.path / "runs.parquet").read_bytes()
+    with pytest.raises(SystemExit):
+        run_study(loaded, tmp_path / "r", lanes=2, fresh=True, progress=_KilledAfter(1))
+    assert (first.path / "runs.parquet").read_bytes() == before  # all 6 stored runs, untouched
+    again = run_study(loaded, tmp_path / "r", lanes=2, fresh=True)
+    assert (again.computed, again.reused) == (4, 2)  # the interrupted fresh run's group is not redone
+    assert _digests(again.path) == _digests(first.path)
+    assert not (again.path / ".fresh").exists()
+
+
+def test_resume_keeps_the_lane_width_the_stored_runs_were_computed_at(tmp_path, tiny_spec):
+    # README, Reproducibility: bits depend on the lane width, so resume reuses the recorded one
+    loaded = load_study(tiny_spec(tmp_path, "narrow", seeds=3, epochs=2))
+    clean = run_study(loaded, tmp_path / "clean", lanes=2)
+    with pytest.raises(SystemExit):
+        run_study(loaded, tmp_path / "r", lanes=2, progress=_KilledAfter(1))
+    with pytest.raises(ResultSetError, match=r"computed at lane width 2; --lanes 3 would compute"):
+        run_study(loaded, tmp_path / "r", lanes=3)
+    resumed = run_study(loaded, tmp_path / "r")  # no --lanes: 6 would be the default width
+    assert (resumed.computed, resumed.reused) == (4, 2)
+    assert _digests(resumed.path) == _digests(clean.path)
+    assert run_study(loaded, tmp_path / "r", lanes=3).computed == 0  # complete: nothing to mix

@@ -139,7 +139,7 @@ def test_a_pickled_npz_is_refused_and_never_unpickled(tmp_path):
                           "--quiet"], cwd=ROOT, capture_output=True, text=True, timeout=300)
     assert out.returncode == 2 and "Traceback" not in out.stderr, out.stderr
     (line,) = out.stderr.splitlines()
-    assert "evil.npz: cannot read without pickle" in line
+    assert "evil.npz, which cannot be read without pickle" in line
     assert not marker.exists()
 
 

@@ -87,3 +87,57 @@ def test_result_files_get_the_users_umask(tmp_path, umask, mode):
         os.umask(old)
     assert {p.name: stat.S_IMODE(p.stat().st_mode) for p in (tmp_path / store.RUNS, tmp_path / store.CURVES)} == {
         store.RUNS: mode, store.CURVES: mode}
+
+def test_a_disk_that_refuses_the_locks_bytes_is_a_result_set_error(tmp_path):
+    # A file-size limit of 0 bytes makes the kernel refuse the pid written into the lock (EFBIG),
+    # as a full disk refuses it (ENOSPC): the same OSError path of the lock file.
+    import resource
+    import signal
+
+    soft, hard = resource.getrlimit(resource.RLIMIT_FSIZE)
+    old = signal.signal(signal.SIGXFSZ, signal.SIG_IGN)  # else the kernel's SIGXFSZ ends pytest
+    resource.setrlimit(resource.RLIMIT_FSIZE, (0, hard))
+    try:
+        with pytest.raises(ResultSetError, match=r"\.lock: cannot write \(File too large\)"):
+            with writer_lock(tmp_path / "new-set"):
+                pass
+    finally:
+        resource.setrlimit(resource.RLIMIT_FSIZE, (soft, hard))
+        signal.signal(signal.SIGXFSZ, old)
+
+
+def test_a_lock_that_is_a_symbolic_link_is_refused_and_its_target_untouched(tmp_path):
+    victim = tmp_path / "precious.txt"
+    victim.write_text("keep me")
+    folder = tmp_path / "set"
+    folder.mkdir()
+    (folder / ".lock").symlink_to(victim)
+    with pytest.raises(ResultSetError, match=r"\.lock: is a symbolic link"):
+        with writer_lock(folder):
+            pass
+    assert victim.read_text() == "keep me"
+
+
+def test_a_lock_with_another_hard_link_is_refused(tmp_path):
+    victim = tmp_path / "precious.txt"
+    victim.write_text("keep me")
+    folder = tmp_path / "set"
+    folder.mkdir()
+    (folder / ".lock").hardlink_to(victim)
+    with pytest.raises(ResultSetError, match=r"\.lock: is not a plain file of its own"):
+        with writer_lock(folder):
+            pass
+    assert victim.read_text() == "keep me"
+
+
+def test_a_result_folder_that_is_a_symbolic_link_is_refused(tmp_path):
+    outside = tmp_path / "outside"
+    outside.mkdir()
+    (tmp_path / "out").mkdir()
+    (tmp_path / "out" / "set").symlink_to(outside, target_is_directory=True)
+    with pytest.raises(ResultSetError, match=r"out/set: is a symbolic link"):
+        with writer_lock(tmp_path / "out" / "set"):
+            pass
+    with pytest.raises(ResultSetError, match=r"out/set: is a symbolic link"):
+        store.write_results(tmp_path / "out" / "set", META, *_tables(["a"]), previous=None)
+    assert list(outside.iterdir()) == []

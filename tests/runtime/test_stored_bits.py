@@ -48,6 +48,6 @@ def test_stored_result_set_replays_identical(path):
     blocking = _blocking_differences(path)
     if blocking:
         pytest.skip(f"stored on another software or machine: {'; '.join(blocking)}")
-    report = replay(path, everything=True)
+    report = replay(path)
     assert len(report.rows) == open_result_set(path).runs.num_rows
     assert [(r.run_id, r.verdict) for r in report.rows if r.verdict != "identical"] == []
