@@ -260,6 +260,9 @@ def run(
     cluster: str = typer.Option(None, "--cluster", metavar="ADDRESS",
                                 help="Run the groups on a Dask scheduler (tcp://HOST:PORT) or on N local "
                                      "worker processes (local:N); results are written here."),
+    workers: int = typer.Option(None, "--workers", "-j", min=1, max=4096, metavar="N",
+                                help="Compile groups computed side by side in N processes on this machine "
+                                     "(default: one per usable CPU); a run's bits do not depend on N."),
 ) -> None:
     """Run every variant × seed of a study and store the result set; print its path last.
 
@@ -276,6 +279,10 @@ def run(
     """
     from runtime.interrupt import Interrupted, interrupt_guard
 
+    if cluster is not None and workers is not None:
+        _err("--workers and --cluster: choose one (a cluster's workers are its own processes)")
+        raise typer.Exit(2)
+
     # Before anything heavy is imported: from here on Ctrl-C only asks the run to stop at its
     # next safe point (runtime/interrupt.py says why).
     with interrupt_guard("interrupted again: stopping at once; finished groups are stored") as ctrl_c:
@@ -284,6 +291,7 @@ def run(
         folder = out / study.result_set
         try:
             ctrl_c.check()
+            from runtime.environment import usable_cores
             from runtime.runner import run_study  # imports jax: after the spec and its data are known to be good
 
             ctrl_c.check()
@@ -294,7 +302,7 @@ def run(
                 executor = DaskExecutor(cluster, on_warning=lambda text: _err(f"warning: {text}"))
             with executor or _nothing(), progress or _nothing():
                 report = run_study(study, out, lanes=lanes, fresh=fresh, progress=progress, executor=executor,
-                                   checkpoint=ctrl_c.check,
+                                   checkpoint=ctrl_c.check, workers=workers or usable_cores(),
                                    on_wait=lambda: _err("waiting: another 'lesion run' is writing this result set"))
         except Interrupted:
             if fresh:

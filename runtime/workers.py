@@ -18,18 +18,24 @@ group at a time with :func:`runtime.execute.execute_group`; the caller stays the
   program compiles it, and groups of the same program that start later load it.
 - ``progress`` hears of a worker's group when it is back (a "group" event, then its last
   "epoch"), as from a cluster.
-- Interruptions: workers ignore SIGINT, so Ctrl-C reaches only this process; leaving the loop
-  early (an interrupt, an error) cancels the groups not started and ends the workers, so what
-  was yielded is all there is and nothing is computed after it. A worker that dies (killed, out
-  of memory) fails the study with :class:`WorkerError`; the groups already yielded are stored.
+- Interruptions: workers ignore SIGINT, so Ctrl-C reaches only this process, whose
+  ``checkpoint()`` (as :class:`~runtime.execute.InProcess` takes it) is called while it waits for
+  the workers; when it raises, or the loop is left early otherwise (an error), the groups not
+  started are cancelled and the workers end, so what was yielded is all there is. Workers also
+  end with this process, however it ends (Linux: a parent-death signal). A worker that dies
+  (killed, out of memory) fails the study with :class:`WorkerError`; the groups already yielded
+  are stored.
 """
 
 from __future__ import annotations
 
+import ctypes
 import multiprocessing
 import signal
+import sys
 from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 from concurrent.futures.process import BrokenProcessPool
+from typing import Callable
 
 from runtime.environment import capture, single_threaded_xla, usable_cores
 from runtime.execute import GroupResult, InProcess, enable_compile_cache, execute_group
@@ -44,9 +50,18 @@ class WorkerError(Exception):
 _worker_env: dict | None = None
 
 
+# How often a waiting run looks at its checkpoint (a Ctrl-C is answered within this).
+_POLL_SECONDS = 0.2
+
+
 def _start_worker() -> None:
     global _worker_env
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    if sys.platform.startswith("linux"):
+        # A parent that ends at once (a second Ctrl-C exits without cleaning up) takes its
+        # workers along instead of leaving them computing groups nobody will store.
+        PR_SET_PDEATHSIG = 1
+        ctypes.CDLL(None, use_errno=True).prctl(PR_SET_PDEATHSIG, signal.SIGTERM)
     single_threaded_xla()
     enable_compile_cache()
     _worker_env = capture()
@@ -59,21 +74,24 @@ def _execute(group, dataset) -> GroupResult:
 class LocalWorkers:
     """Runs compile groups in ``workers`` processes on this machine (see the module docstring)."""
 
-    def __init__(self, workers: int | None = None):
+    def __init__(self, workers: int | None = None, checkpoint: Callable[[], None] | None = None):
         self.workers = max(1, workers if workers is not None else usable_cores())
+        self.checkpoint = checkpoint
 
     def run(self, groups, data, environment, progress=None):
         groups = list(groups)
         n = min(self.workers, len(groups))
         if n <= 1:
-            yield from InProcess().run(groups, data, environment, progress)
+            yield from InProcess(checkpoint=self.checkpoint).run(groups, data, environment, progress)
             return
+        check = self.checkpoint or (lambda: None)
         pool = ProcessPoolExecutor(n, mp_context=multiprocessing.get_context("spawn"),
                                    initializer=_start_worker)
         pending = {pool.submit(_execute, g, data[g.group_id]): g for g in groups}
         try:
             while pending:
-                done, _ = wait(pending, return_when=FIRST_COMPLETED)
+                check()
+                done, _ = wait(pending, timeout=_POLL_SECONDS, return_when=FIRST_COMPLETED)
                 for fut in done:
                     g = pending.pop(fut)
                     try:

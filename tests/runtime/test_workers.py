@@ -19,9 +19,9 @@ import pytest
 
 from compiler.loader import load_study
 from runtime import environment
+from runtime.interrupt import Interrupted, interrupt_guard
 from runtime.runner import run_study
 from runtime.store import open_result_set
-from runtime.workers import LocalWorkers
 
 # Small, yet its standardization and weight gradients are reductions large enough for XLA:CPU
 # to split across threads (found by running it on one core and on two).
@@ -147,9 +147,9 @@ def one_and_two(sensitive, tmp_path_factory):
     """The sensitive study as 2 groups of 2 lanes: in this process (one worker) and on two."""
     tmp = tmp_path_factory.mktemp("workers")
     loaded = load_study(sensitive)
-    one = run_study(loaded, tmp / "one", lanes=2, executor=LocalWorkers(1))
+    one = run_study(loaded, tmp / "one", lanes=2, workers=1)
     events = []
-    two = run_study(loaded, tmp / "two", lanes=2, executor=LocalWorkers(2),
+    two = run_study(loaded, tmp / "two", lanes=2, workers=2,
                     progress=lambda event, **info: events.append(event))
     return one, two, events
 
@@ -173,23 +173,24 @@ def test_workers_report_each_group_when_it_is_back(one_and_two):
 
 def test_an_interrupt_keeps_what_was_stored_and_ends_the_workers(tiny_spec, tmp_path):
     loaded = load_study(tiny_spec(tmp_path, "halted", seeds=3, epochs=3))  # 6 runs: 3 groups of 2
+    ctrl_c = interrupt_guard()
 
-    def stop(event, **info):
+    def on_stored(event, **info):
         if event == "stored":
-            raise KeyboardInterrupt
+            ctrl_c.requested = True  # what the SIGINT handler does
 
-    with pytest.raises(KeyboardInterrupt):
-        run_study(loaded, tmp_path / "out", lanes=2, executor=LocalWorkers(2), progress=stop)
+    with pytest.raises(Interrupted):
+        run_study(loaded, tmp_path / "out", lanes=2, workers=2, progress=on_stored, checkpoint=ctrl_c.check)
     assert multiprocessing.active_children() == []
     stored = open_result_set(tmp_path / "out" / loaded.result_set)
     assert stored.runs.num_rows == 2
-    again = run_study(loaded, tmp_path / "out", lanes=2, executor=LocalWorkers(2))
+    again = run_study(loaded, tmp_path / "out", lanes=2, workers=2)
     assert (again.computed, again.reused) == (4, 2)
 
 
 def test_a_study_of_one_group_stays_in_this_process(tiny_spec, tmp_path):
     loaded = load_study(tiny_spec(tmp_path, "single", seeds=1, epochs=2))  # 2 runs: 1 group
     events = []
-    run_study(loaded, tmp_path / "out", executor=LocalWorkers(4), progress=lambda e, **i: events.append(e))
+    run_study(loaded, tmp_path / "out", workers=4, progress=lambda e, **i: events.append(e))
     assert multiprocessing.active_children() == []
     assert events.count("epoch") == 2  # streamed epoch by epoch, as only this process can
