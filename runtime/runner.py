@@ -298,7 +298,10 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
         if lanes is None and any(g.lane_width > budget[g.structure] for g in groups):
             groups = plan(loaded.variants, seeds, lane_budget=budget)
             data = datasets_for(groups, base_dir, loaded_data)
-        guard.check(guard.estimate(groups, data), lanes_given=lanes is not None, where=where)
+        one = guard.estimate(groups, data)
+        guard.check(one, lanes_given=lanes is not None, where=where)
+        # Each worker process holds its own data and group: no more workers than fit beside each other.
+        workers = max(1, min(workers, guard.available_bytes() // one.peak_bytes))
     check = checkpoint or (lambda: None)
     with writer_lock(path, on_wait=on_wait, checkpoint=checkpoint):
         check()
