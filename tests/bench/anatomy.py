@@ -107,17 +107,19 @@ def main() -> None:
         return jax.jit(jax.vmap(epoch, in_axes=(0, 0, 0, 0)))
 
     def products_epoch(p, order):
-        def body(c, idx):
+        # Weight gradients accumulate in the carry (an add per step, as the update's would), so
+        # no product is dead code and none is reduced to a scalar.
+        def body(acc, idx):
             h, acts = x[idx], []
             for W, _ in p:
                 acts.append(h)
                 h = h @ W
-            g = h
+            g, grads = h, []
             for (W, _), a in zip(reversed(p), reversed(acts)):
-                c = c + jnp.sum(a.T @ g)
+                grads.append(a.T @ g)
                 g = g @ W.T
-            return c + jnp.sum(g), None
-        return jax.lax.scan(body, jnp.float32(0), order)[0]
+            return tuple(c + d for c, d in zip(acc, reversed(grads))), None
+        return jax.lax.scan(body, tuple(jnp.zeros_like(W) for W, _ in p), order)[0]
 
     v0 = jax.tree.map(jnp.zeros_like, params)
     rows = {}
