@@ -110,7 +110,7 @@ def _loaded_user_errors() -> tuple[type[Exception], ...]:
     # cache or jax's settings; then their errors count too.
     found = [getattr(sys.modules[name], error) for name, error in
              (("compiler.data", "DataError"), ("runtime.cluster", "ClusterError"),
-              ("runtime.guard", "ResourceError"), ("runtime.execute", "CacheError"),
+              ("runtime.guard", "ResourceError"), ("runtime.workers", "WorkerError"), ("runtime.execute", "CacheError"),
               ("runtime.environment", "SettingError")) if name in sys.modules]
     return tuple(found)
 

@@ -33,6 +33,7 @@ import ctypes
 import multiprocessing
 import signal
 import sys
+import threading
 from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 from concurrent.futures.process import BrokenProcessPool
 from typing import Callable
@@ -56,7 +57,6 @@ _POLL_SECONDS = 0.2
 
 def _start_worker() -> None:
     global _worker_env
-    signal.signal(signal.SIGINT, signal.SIG_IGN)
     if sys.platform.startswith("linux"):
         # A parent that ends at once (a second Ctrl-C exits without cleaning up) takes its
         # workers along instead of leaving them computing groups nobody will store.
@@ -85,9 +85,18 @@ class LocalWorkers:
             yield from InProcess(checkpoint=self.checkpoint).run(groups, data, environment, progress)
             return
         check = self.checkpoint or (lambda: None)
-        pool = ProcessPoolExecutor(n, mp_context=multiprocessing.get_context("spawn"),
-                                   initializer=_start_worker)
-        pending = {pool.submit(_execute, g, data[g.group_id]): g for g in groups}
+        # Workers inherit an ignored SIGINT from the moment they exist (an ignored signal stays
+        # ignored across exec, and Python keeps it so): a Ctrl-C at a terminal reaches the whole
+        # process group, and a worker still importing jax would otherwise die of it.
+        main = threading.current_thread() is threading.main_thread()
+        previous = signal.signal(signal.SIGINT, signal.SIG_IGN) if main else None
+        try:
+            pool = ProcessPoolExecutor(n, mp_context=multiprocessing.get_context("spawn"),
+                                       initializer=_start_worker)
+            pending = {pool.submit(_execute, g, data[g.group_id]): g for g in groups}
+        finally:
+            if main:
+                signal.signal(signal.SIGINT, previous)
         try:
             while pending:
                 check()
