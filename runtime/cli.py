@@ -257,6 +257,9 @@ def run(
                                help="With --until-decided: seeds added per round (default: the spec's count)."),
     axis: str = typer.Option(None, "--axis", metavar="KEY", help="With --until-decided on a grid: decide only "
                              "this axis's questions (as lesion diff --axis)."),
+    workers: int = typer.Option(None, "--workers", "-j", min=1, max=4096, metavar="N",
+                                help="Compile groups computed side by side in N processes on this machine "
+                                     "(default: one per usable CPU); a run's bits do not depend on N."),
 ) -> None:
     """Run every variant × seed of a study and store the result set; print its path last.
 
@@ -280,6 +283,9 @@ def run(
     if until_decided and fresh:
         raise UsageError("--fresh recomputes a fixed set of runs; a procedure's seeds depend on its looks: "
                          "give --out another folder to start it over")
+    if cluster is not None and workers is not None:
+        _err("--workers and --cluster: choose one (a cluster's workers are its own processes)")
+        raise typer.Exit(2)
 
     # Before anything heavy is imported: from here on Ctrl-C only asks the run to stop at its
     # next safe point (runtime/interrupt.py says why).
@@ -289,6 +295,7 @@ def run(
         folder = out / study.result_set
         try:
             ctrl_c.check()
+            from runtime.environment import usable_cores
             from runtime.runner import run_study  # imports jax: after the spec and its data are known to be good
 
             ctrl_c.check()
@@ -300,6 +307,7 @@ def run(
             rule = _stopping_rule(study, margin, max_seeds, round_, axis) if until_decided else None
             with executor or _nothing(), progress or _nothing():
                 kw = dict(lanes=lanes, progress=progress, executor=executor, checkpoint=ctrl_c.check,
+                          workers=workers or usable_cores(),
                           on_wait=lambda: _err("waiting: another 'lesion run' is writing this result set"))
                 if rule is None:
                     report = run_study(study, out, fresh=fresh, **kw)

@@ -44,7 +44,7 @@ import uuid
 from typing import Callable
 
 from compiler.errors import UserError
-from runtime.environment import capture, differences, fingerprint
+from runtime.environment import capture, differences, fingerprint, single_threaded_xla
 from runtime.execute import GroupResult, execute_group
 from runtime.programs import enable_compile_cache
 
@@ -82,9 +82,12 @@ _worker_env: dict | None = None
 
 
 def worker_environment() -> dict:
-    """This worker process's environment, captured once, after enabling its compile cache."""
+    """This worker process's environment, captured once, after giving XLA:CPU its one-thread pool
+    (as ``lesion run`` does: a run's bits do not depend on the worker's cores) and enabling its
+    compile cache."""
     global _worker_env
     if _worker_env is None:
+        single_threaded_xla()
         enable_compile_cache()
         _worker_env = capture()
     return _worker_env

@@ -4,6 +4,16 @@ A run's numbers are a function of (resolved variant, seed, lane width, software,
 *numerics* fields below are the software and machine part: two environments with the same
 numerics fingerprint are expected to give identical bits, and resume/replay compare them field by
 field to say what changed. Host name and time are recorded for people, never compared.
+
+XLA:CPU's intra-op thread pool decides bits too (measured, jax 0.10.2): large reductions (a sum
+of 65536 values, the mean of a 4000 × 32 block, a weight gradient over a 4096-row batch) are
+split across the pool, and the split follows its size, which the CPU client takes from the
+process's CPU affinity when jax creates it (later affinity changes do not move it; a stored
+executable follows the pool of the process that runs it). Matrix products do not depend on it.
+So the same study gave other bits on 1 core than on 2 (the medium benchmark: every run), and
+would on a 64-core machine. :func:`single_threaded_xla` creates the client with one thread in
+every process that computes runs, so bits do not depend on the machine's cores; the cores are
+used by running groups side by side (:mod:`runtime.workers`). ``xla_cpu_threads`` records it.
 """
 
 from __future__ import annotations
@@ -19,7 +29,8 @@ from pathlib import Path
 
 from compiler.errors import UserError
 
-__all__ = ["capture", "numerics", "fingerprint", "differences", "source_digest", "check_settings", "SettingError"]
+__all__ = ["capture", "numerics", "fingerprint", "differences", "source_digest", "check_settings", "SettingError",
+           "single_threaded_xla", "xla_threads", "usable_cores"]
 
 # CPU features that decide which kernels XLA:CPU emits (and so the rounding of matmuls).
 _ISA_FLAGS = ("sse4_1", "sse4_2", "avx", "avx2", "fma", "f16c", "avx512f", "avx512bw", "avx512dq",
@@ -35,7 +46,7 @@ _JAX_SETTINGS = ("jax_threefry_partitionable", "jax_default_prng_impl", "jax_ran
                  "jax_default_matmul_precision", "jax_enable_x64", *_COMPILER_SETTINGS)
 
 _NUMERICS_KEYS = ("lesion_sources", "python", "jax", "jaxlib", "optax", "numpy", "xla_flags", *_JAX_SETTINGS,
-                  "cpu_model", "cpu_isa", "machine", "os")
+                  "xla_cpu_threads", "cpu_model", "cpu_isa", "machine", "os")
 
 # Settings under which lesion's programs cannot run (each made `lesion run` fail mid-way with a
 # traceback), with the value they need.
@@ -62,6 +73,50 @@ def _setting(jax, name: str):
     v = getattr(v, "value", v)
     return v if v is None or isinstance(v, (bool, int, float, str)) else str(v)
 
+
+
+# The pool size every computing process gets: 1 is the only size every machine can give.
+XLA_THREADS = 1
+_pinned = False
+
+
+def usable_cores() -> int:
+    """CPUs this process may run on (its affinity, e.g. under taskset or a container's cpuset)."""
+    try:
+        return len(os.sched_getaffinity(0))
+    except (AttributeError, OSError):
+        return os.cpu_count() or 1
+
+
+def single_threaded_xla() -> None:
+    """Create jax's CPU client with a one-thread intra-op pool, then give every thread of the
+    process back its CPUs. Call it before anything runs on jax; once the client exists its pool
+    is fixed, and this does nothing (:func:`xla_threads` then reports the CPUs the client saw,
+    assuming the affinity has not changed since)."""
+    global _pinned
+    import jax
+    from jax._src import xla_bridge
+
+    if _pinned or xla_bridge.backends_are_initialized() or not hasattr(os, "sched_setaffinity"):
+        return
+    cpus = os.sched_getaffinity(0)
+    # The client sizes its pool from the affinity of the thread that creates it; threads it
+    # starts meanwhile inherit the narrow mask, so afterwards every thread gets the full one back.
+    os.sched_setaffinity(0, set(sorted(cpus)[:XLA_THREADS]))
+    try:
+        jax.devices("cpu")
+    finally:
+        for task in os.listdir("/proc/self/task"):
+            try:
+                os.sched_setaffinity(int(task), cpus)
+            except OSError:
+                pass  # a thread that ended meanwhile
+    _pinned = True
+
+
+def xla_threads() -> int:
+    """The intra-op pool size XLA:CPU computes with in this process."""
+    return XLA_THREADS if _pinned else usable_cores()
 
 
 def _version(dist: str) -> str:
@@ -122,6 +177,7 @@ def capture() -> dict:
         "jax_enable_x64": bool(jax.config.jax_enable_x64),
         # XLA compile options, as XLA_FLAGS are
         **{name: _setting(jax, name) for name in _COMPILER_SETTINGS},
+        "xla_cpu_threads": xla_threads(),
         "cpu_model": model,
         "cpu_isa": isa,
         "cores": os.cpu_count() or 0,

@@ -157,6 +157,7 @@ def replay(path: str | Path, *, run: str | None = None, variant: str | None = No
         rid, n = next(iter(check.duplicated.items()))
         raise ReplayRefused(f"{rs.path}: run {rid} is stored {n} times (lesion writes one row per run); refusing")
     chosen = _select(cols, run, variant)
+    environment.single_threaded_xla()  # as lesion run computes
     current = environment.capture()
     recorded = json.loads(cols["environment"][chosen[0]])
     changes = environment.differences(recorded, current)

@@ -24,10 +24,11 @@ import pyarrow as pa
 from compiler.hashing import canonical_json, lookup, variant_payload
 from compiler.spec import METRICS
 from runtime import __version__, environment, execute, guard, programs
-from runtime.execute import GroupResult, InProcess
+from runtime.execute import GroupResult
 from runtime.plan import Group, plan
 from runtime.store import (SEQUENTIAL, STAGING, ResultSet, ResultSetError, column, open_result_set, refuse_link,
                            result_dir, write_results, writer_lock)
+from runtime.workers import LocalWorkers
 
 __all__ = ["RunReport", "run_study", "run_until_decided", "study_meta", "varied_keys", "typed_key_columns",
            "group_tables", "datasets_for"]
@@ -260,11 +261,14 @@ def _timing_path() -> Path:
 def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = False,
               progress: Callable | None = None, on_wait: Callable | None = None, executor=None,
               checkpoint: Callable[[], None] | None = None, seeds_of: dict[str, list[int]] | None = None,
-              sequential: dict | None = None) -> RunReport:
+              sequential: dict | None = None, workers: int = 1) -> RunReport:
     """Compute every run of the study not already stored; write each group as it finishes.
 
-    ``executor`` runs the groups (default :class:`runtime.execute.InProcess`); whatever it is,
-    this process stays the single writer of the result set.
+    ``executor`` runs the groups elsewhere (a cluster); without one they run on this machine, in
+    ``workers`` processes side by side (:class:`runtime.workers.LocalWorkers`; 1: in this
+    process). Whatever runs them, this process stays the single writer of the result set, and a
+    run's bits do not depend on the number of workers (XLA:CPU computes with one thread in each:
+    :func:`runtime.environment.single_threaded_xla`, called here first).
 
     In this process (no ``executor``), the resource guard sees every group first: structures
     whose lanes would not fit the machine get a narrower width (unless ``lanes`` forces one), and
@@ -285,6 +289,7 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
 
     ``progress(event, **info)`` receives ("plan", groups=…, runs=…, estimate=…), ("group", group=…,
     todo=…), ("epoch", done=…, total=…), ("stored", group=…, result=…)."""
+    environment.single_threaded_xla()
     programs.enable_compile_cache()
     environment.check_settings()
     env = environment.capture()
@@ -314,7 +319,10 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
         if lanes is None and any(g.lane_width > budget[g.structure] for g in groups):
             groups = plan(loaded.variants, seeds, lane_budget=budget, **shape)
             data = datasets_for(groups, base_dir, loaded_data)
-        guard.check(guard.estimate(groups, data), lanes_given=lanes is not None, where=where)
+        one = guard.estimate(groups, data)
+        guard.check(one, lanes_given=lanes is not None, where=where)
+        # Each worker process holds its own data and group: no more workers than fit beside each other.
+        workers = max(1, min(workers, guard.available_bytes() // one.peak_bytes))
     check = checkpoint or (lambda: None)
     with writer_lock(path, on_wait=on_wait, checkpoint=checkpoint):
         check()
@@ -353,7 +361,7 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
         started = time.perf_counter()
         compiled, loaded_s = [], []
         check()
-        for g, result in (executor or InProcess(checkpoint=checkpoint)).run(todo, data, env, progress):
+        for g, result in (executor or LocalWorkers(workers, checkpoint=checkpoint)).run(todo, data, env, progress):
             if estimate is not None and preparation[g.group_id] != "reuse":
                 (compiled if preparation[g.group_id] == "compile" else loaded_s).append(result.compile_seconds)
             runs_t, curves_t = group_tables(result, g, loaded.study_hash, headline, key_columns,

@@ -9,7 +9,9 @@ interleaved order (every way once, then again), it times as subprocesses, wall c
 to exit, with peak resident memory from GNU time (``%M``):
 
 - ``lesion_cold``: ``lesion run`` with a fresh, empty ``LESION_CACHE_DIR``;
-- ``lesion_warm``: the same command again on that cache, with ``--fresh``;
+- ``lesion_warm``: the same command again on that cache, with ``--fresh`` (one worker process
+  per CPU, the default);
+- ``lesion_warm_1w``: the same with ``--workers 1`` (everything in one process);
 - ``hand_jax``: :mod:`hand_jax` (jitted step, Python loop over batches, runs one after another);
 - ``hand_torch``: :mod:`hand_torch` (PyTorch CPU, same model and loop), if torch is installed;
 - ``import_jax``: ``python -c "import jax"``, the start-up every JAX-based way pays (a floor).
@@ -17,7 +19,7 @@ to exit, with peak resident memory from GNU time (``%M``):
 It then reports medians, the ratios lesion ÷ each other way, the study's matmul FLOPs divided by
 this machine's float32 matmul throughput (a 2048² ``jnp.dot``, measured before and after) as the
 physical limit, lesion's fraction of that limit (execution only: the result set's
-``run_seconds``), the throughput of the workload's hidden-layer product batched over its lanes
+``run_seconds`` of the one-worker run, i.e. per core), the throughput of the workload's hidden-layer product batched over its lanes
 as XLA:CPU runs it (what lesion's execution fraction cannot exceed), each way's final training loss per learning rate, and the peak memory of a
 64-run small study. The table goes to stdout and, with the machine's description, to
 ``results/bench-<UTC time>.json``.
@@ -83,8 +85,8 @@ def result_set_numbers(path: str, w: dict) -> dict:
             "final_val_accuracy": [float(runs["final_val_accuracy"][i]) for i in order]}
 
 
-def lesion(spec: Path, cache: Path, out: Path, fresh: bool, w: dict) -> dict:
-    cmd = [LESION, "run", str(spec), "--out", str(out), "--quiet"] + (["--fresh"] if fresh else [])
+def lesion(spec: Path, cache: Path, out: Path, fresh: bool, w: dict, extra: tuple[str, ...] = ()) -> dict:
+    cmd = [LESION, "run", str(spec), "--out", str(out), "--quiet", *extra] + (["--fresh"] if fresh else [])
     r = child(cmd, {"LESION_CACHE_DIR": str(cache)})
     r.update(result_set_numbers(r.pop("stdout").strip().splitlines()[-1], w))
     return r
@@ -186,7 +188,7 @@ def main() -> None:
     ap.add_argument("--no-torch", action="store_true", help="skip the PyTorch baseline")
     args = ap.parse_args()
 
-    ways = ["lesion_cold", "lesion_warm", "hand_jax", "import_jax"]
+    ways = ["lesion_cold", "lesion_warm", "lesion_warm_1w", "hand_jax", "import_jax"]
     if args.no_torch:
         print("PyTorch baseline skipped (--no-torch)", file=sys.stderr)
     elif importlib.util.find_spec("torch") is None:
@@ -212,6 +214,8 @@ def main() -> None:
                         r = lesion(spec, cache, out, False, w)
                     elif way == "lesion_warm":
                         r = lesion(spec, cache, out, True, w)
+                    elif way == "lesion_warm_1w":
+                        r = lesion(spec, cache, out, True, w, ("--workers", "1"))
                     elif way == "import_jax":
                         r = child([PYTHON, "-c", "import jax"])
                         r.pop("stdout")
@@ -234,8 +238,8 @@ def main() -> None:
         med = {way: {k: statistics.median(s[k] for s in runs) for k in ("seconds", "rss_mib")}
                for way, runs in samples[name].items()}
         cold, warm = med["lesion_cold"]["seconds"], med["lesion_warm"]["seconds"]
-        exec_s = statistics.median(s["execution_seconds"] for s in samples[name]["lesion_warm"]
-                                   + samples[name]["lesion_cold"])
+        # One process with one XLA thread: the execution's rate per core.
+        exec_s = statistics.median(s["execution_seconds"] for s in samples[name]["lesion_warm_1w"])
         compile_s = statistics.median(s["compile_seconds"] for s in samples[name]["lesion_cold"])
         flops = wl.matmul_flops(w)
         limit = flops["total"] / (peak * 1e9)
@@ -259,6 +263,8 @@ def main() -> None:
                                   "final_train_loss_per_lr": losses}
             lines.append(f"  {way:12s} {m['seconds']:8.2f} {m['rss_mib']:9.0f} {cold / m['seconds']:10.3f} "
                          f"{warm / m['seconds']:10.3f}  " + (" ".join(f"{v:.4f}" for v in losses) or "(trains nothing)"))
+        lines.append(f"  {os.cpu_count()} workers (the default) against 1: "
+                     f"{med['lesion_warm_1w']['seconds'] / warm:.2f}× (warm, end to end)")
         lines.append(f"  physical limit {limit:.3f} s ({peak:.0f} GFLOP/s); lesion execution {exec_s:.2f} s = "
                      f"{100 * limit / exec_s:.0f} % of it; cold compile {compile_s:.2f} s; "
                      f"end to end cold {100 * limit / cold:.1f} %")

@@ -1,0 +1,126 @@
+"""Every core of this machine: a study's compile groups in worker processes, with one machine's bits.
+
+Contract: :class:`LocalWorkers` is an executor in the sense of :class:`runtime.execute.InProcess`
+— ``run(groups, data, environment, progress)`` yields ``(group, GroupResult)`` as groups finish,
+in any order. ``workers`` processes (default: the CPUs this process may use) each execute one
+group at a time with :func:`runtime.execute.execute_group`; the caller stays the single writer.
+
+- Bits: a group is executed unchanged (its lane width and padding), and every worker, like
+  ``lesion run`` itself, computes with a one-thread XLA:CPU pool
+  (:func:`runtime.environment.single_threaded_xla`), so a run's bits do not depend on the number
+  of workers, on which one ran it, nor on the cores the machine has. Each result records the
+  environment of the worker that computed it.
+- Why processes: the cores are used by groups side by side, not by splitting one group's small
+  products (a run on this 2-core machine kept about 1.2 cores busy). Worker processes start with
+  Python's ``spawn`` (a fork of a process running XLA's threads is unsafe) and pay their own
+  ``import jax``; a study of one group, or ``workers=1``, runs in this process instead, where it
+  also streams its epochs to ``progress``. Workers use the compile cache: the first group of a
+  program compiles it, and groups of the same program that start later load it.
+- ``progress`` hears of a worker's group when it is back (a "group" event, then its last
+  "epoch"), as from a cluster.
+- Interruptions: workers ignore SIGINT, so Ctrl-C reaches only this process, whose
+  ``checkpoint()`` (as :class:`~runtime.execute.InProcess` takes it) is called while it waits for
+  the workers; when it raises, or the loop is left early otherwise (an error), the groups not
+  started are cancelled and the workers end, so what was yielded is all there is. Workers also
+  end with this process, however it ends (Linux: a parent-death signal). A worker that dies
+  (killed, out of memory) fails the study with :class:`WorkerError`; the groups already yielded
+  are stored.
+"""
+
+from __future__ import annotations
+
+import ctypes
+import multiprocessing
+import signal
+import sys
+import threading
+from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
+from concurrent.futures.process import BrokenProcessPool
+from typing import Callable
+
+from runtime.environment import capture, single_threaded_xla, usable_cores
+from compiler.errors import UserError
+from runtime.execute import GroupResult, InProcess, execute_group
+from runtime.programs import enable_compile_cache
+
+__all__ = ["LocalWorkers", "WorkerError"]
+
+
+class WorkerError(UserError):
+    """A worker process ended without returning its group, with a one-line message."""
+
+
+_worker_env: dict | None = None
+
+
+# How often a waiting run looks at its checkpoint (a Ctrl-C is answered within this).
+_POLL_SECONDS = 0.2
+
+
+def _start_worker() -> None:
+    global _worker_env
+    if sys.platform.startswith("linux"):
+        # A parent that ends at once (a second Ctrl-C exits without cleaning up) takes its
+        # workers along instead of leaving them computing groups nobody will store.
+        PR_SET_PDEATHSIG = 1
+        ctypes.CDLL(None, use_errno=True).prctl(PR_SET_PDEATHSIG, signal.SIGTERM)
+    single_threaded_xla()
+    enable_compile_cache()
+    _worker_env = capture()
+
+
+def _execute(group, dataset) -> GroupResult:
+    return execute_group(group, dataset, _worker_env)
+
+
+class LocalWorkers:
+    """Runs compile groups in ``workers`` processes on this machine (see the module docstring)."""
+
+    def __init__(self, workers: int | None = None, checkpoint: Callable[[], None] | None = None):
+        self.workers = max(1, workers if workers is not None else usable_cores())
+        self.checkpoint = checkpoint
+
+    def run(self, groups, data, environment, progress=None):
+        groups = list(groups)
+        n = min(self.workers, len(groups))
+        if n <= 1:
+            yield from InProcess(checkpoint=self.checkpoint).run(groups, data, environment, progress)
+            return
+        check = self.checkpoint or (lambda: None)
+        # Workers inherit an ignored SIGINT from the moment they exist (an ignored signal stays
+        # ignored across exec, and Python keeps it so): a Ctrl-C at a terminal reaches the whole
+        # process group, and a worker still importing jax would otherwise die of it.
+        main = threading.current_thread() is threading.main_thread()
+        previous = signal.signal(signal.SIGINT, signal.SIG_IGN) if main else None
+        try:
+            pool = ProcessPoolExecutor(n, mp_context=multiprocessing.get_context("spawn"),
+                                       initializer=_start_worker)
+            pending = {pool.submit(_execute, g, data[g.group_id]): g for g in groups}
+        finally:
+            if main:
+                signal.signal(signal.SIGINT, previous)
+        try:
+            while pending:
+                check()
+                done, _ = wait(pending, timeout=_POLL_SECONDS, return_when=FIRST_COMPLETED)
+                for fut in done:
+                    g = pending.pop(fut)
+                    try:
+                        result = fut.result()
+                    except BrokenProcessPool:
+                        raise WorkerError(f"a worker process died while computing group {g.group_id} "
+                                          "(killed, or out of memory?); the groups finished so far are "
+                                          "stored: run the same command again to resume") from None
+                    if progress:
+                        epochs = g.runs[0].variant.spec.training.epochs
+                        progress("group", group=g, todo=len(g.runs))
+                        progress("epoch", done=epochs, total=epochs)
+                    yield g, result
+        finally:
+            if pending:
+                # Groups still running would finish unseen (their results are dropped), so the
+                # workers end now instead of keeping the interrupted study alive.
+                # ProcessPoolExecutor only gains terminate_workers() in Python 3.14.
+                for process in list((pool._processes or {}).values()):
+                    process.terminate()
+            pool.shutdown(wait=True, cancel_futures=True)

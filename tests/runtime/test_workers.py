@@ -1,0 +1,196 @@
+"""Every core: groups in local worker processes, and a run's bits against the cores it ran on.
+
+The reference facts (measured on these machines, jax 0.10.2): XLA:CPU splits large reductions
+across its intra-op thread pool, whose size it takes from the process's CPU affinity when the
+client is created, so the same group computed on one core and on two gave other bits — unless
+the pool is given one thread (`runtime.environment.single_threaded_xla`). Matrix products alone
+do not move. The control test below keeps that fact checked: should a jax upgrade stop splitting
+reductions, it fails and the pinning can be reconsidered.
+"""
+
+import json
+import multiprocessing
+import os
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+
+from compiler.loader import load_study
+from runtime import environment
+from runtime.interrupt import Interrupted, interrupt_guard
+from runtime.runner import run_study
+from runtime.store import open_result_set
+
+# Small, yet its standardization and weight gradients are reductions large enough for XLA:CPU
+# to split across threads (found by running it on one core and on two).
+SENSITIVE = """
+[study]
+name = "{name}"
+seeds = 2
+
+[data]
+kind = "synthetic"
+generator = "blobs"
+samples = 4000
+features = 32
+classes = 3
+validation = 0.2
+
+[model]
+hidden = [16]
+
+[divergence]
+kind = "kl"
+
+[optimizer]
+kind = "sgd"
+learning_rate = 0.05
+momentum = 0.9
+
+[training]
+epochs = 1
+batch_size = 512
+
+[ablation]
+mode = "grid"
+[[ablation.axis]]
+key = "optimizer.learning_rate"
+values = [0.01, 0.1]
+"""
+
+# One group of the study in a fresh process: its parameter digests and the pool size recorded.
+_PROBE = """
+import json, os, sys
+os.sched_setaffinity(0, json.loads(sys.argv[3]))
+from pathlib import Path
+from runtime import environment
+if sys.argv[2] == "pinned":
+    environment.single_threaded_xla()
+from compiler.loader import load_study
+from runtime.execute import execute_group
+from runtime.plan import plan
+from runtime.runner import datasets_for
+study = load_study(sys.argv[1])
+group = plan(study.variants, study.spec.study.seed_list, lanes=2)[0]
+data = datasets_for([group], Path(sys.argv[1]).parent)
+env = environment.capture()
+result = execute_group(group, data[group.group_id], env)
+print(json.dumps({"digests": [lane.param_digest for lane in result.lanes],
+                  "xla_cpu_threads": env["xla_cpu_threads"]}))
+"""
+
+two_cores = pytest.mark.skipif(environment.usable_cores() < 2, reason="needs two CPUs to compare with one")
+
+
+@pytest.fixture(scope="module")
+def sensitive(tmp_path_factory):
+    path = tmp_path_factory.mktemp("sensitive") / "sensitive.toml"
+    path.write_text(SENSITIVE.format(name="sensitive"))
+    return path
+
+
+def _probe(spec, mode: str, cpus: set[int]) -> dict:
+    done = subprocess.run([sys.executable, "-c", _PROBE, str(spec), mode, json.dumps(sorted(cpus))],
+                          capture_output=True, text=True, timeout=300)
+    assert done.returncode == 0, done.stderr[-2000:]
+    return json.loads(done.stdout.strip().splitlines()[-1])
+
+
+def _two_cpus() -> tuple[set[int], set[int]]:
+    cpus = sorted(os.sched_getaffinity(0))[:2]
+    return {cpus[0]}, set(cpus)
+
+
+@two_cores
+def test_the_cores_decide_bits_when_xla_keeps_its_default_pool(sensitive):
+    one, two = _two_cpus()
+    on_one, on_two = _probe(sensitive, "default", one), _probe(sensitive, "default", two)
+    assert (on_one["xla_cpu_threads"], on_two["xla_cpu_threads"]) == (1, 2)
+    assert on_one["digests"] != on_two["digests"]
+
+
+@two_cores
+def test_a_run_pinned_to_one_core_has_the_bits_of_one_on_two(sensitive):
+    one, two = _two_cpus()
+    on_one, on_two = _probe(sensitive, "pinned", one), _probe(sensitive, "pinned", two)
+    assert on_one["xla_cpu_threads"] == on_two["xla_cpu_threads"] == 1
+    assert on_one["digests"] == on_two["digests"]
+
+
+def test_pinning_gives_every_thread_its_cpus_back():
+    code = ("import os; from runtime import environment; environment.single_threaded_xla(); "
+            "import jax; jax.numpy.ones(3).block_until_ready(); "
+            "print(sorted({len(os.sched_getaffinity(int(t))) for t in os.listdir('/proc/self/task')}))")
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
+    assert done.returncode == 0, done.stderr[-2000:]
+    assert json.loads(done.stdout.strip().splitlines()[-1]) == [environment.usable_cores()]
+
+
+def _assert_same_bits(a, b):
+    ra, rb = a.runs.sort_by("run_id"), b.runs.sort_by("run_id")
+    ca = a.curves.sort_by([("run_id", "ascending"), ("epoch", "ascending")])
+    cb = b.curves.sort_by([("run_id", "ascending"), ("epoch", "ascending")])
+    for column in ("run_id", "param_digest", "lane_width"):
+        assert ra.column(column).to_pylist() == rb.column(column).to_pylist(), column
+    metrics = [c for c in ca.column_names if c not in ("run_id", "variant_label", "seed", "epoch")]
+    assert metrics
+    for m in metrics:
+        x = ca.column(m).to_numpy().astype(np.float32).view(np.uint32)
+        y = cb.column(m).to_numpy().astype(np.float32).view(np.uint32)
+        np.testing.assert_array_equal(x, y, err_msg=m)
+
+
+@pytest.fixture(scope="module")
+def one_and_two(sensitive, tmp_path_factory):
+    """The sensitive study as 2 groups of 2 lanes: in this process (one worker) and on two."""
+    tmp = tmp_path_factory.mktemp("workers")
+    loaded = load_study(sensitive)
+    one = run_study(loaded, tmp / "one", lanes=2, workers=1)
+    events = []
+    two = run_study(loaded, tmp / "two", lanes=2, workers=2,
+                    progress=lambda event, **info: events.append(event))
+    return one, two, events
+
+
+def test_two_workers_compute_the_bits_of_one(one_and_two):
+    one, two, _ = one_and_two
+    assert one.computed == two.computed == 4 and one.groups == two.groups == 2
+    _assert_same_bits(open_result_set(one.path), open_result_set(two.path))
+
+
+def test_runs_from_workers_record_a_one_thread_pool(one_and_two):
+    _, two, _ = one_and_two
+    envs = {json.loads(e)["xla_cpu_threads"] for e in open_result_set(two.path).runs.column("environment").to_pylist()}
+    assert envs == {1}
+
+
+def test_workers_report_each_group_when_it_is_back(one_and_two):
+    _, _, events = one_and_two
+    assert events.count("group") == events.count("stored") == 2
+
+
+def test_an_interrupt_keeps_what_was_stored_and_ends_the_workers(tiny_spec, tmp_path):
+    loaded = load_study(tiny_spec(tmp_path, "halted", seeds=3, epochs=3))  # 6 runs: 3 groups of 2
+    ctrl_c = interrupt_guard()
+
+    def on_stored(event, **info):
+        if event == "stored":
+            ctrl_c.requested = True  # what the SIGINT handler does
+
+    with pytest.raises(Interrupted):
+        run_study(loaded, tmp_path / "out", lanes=2, workers=2, progress=on_stored, checkpoint=ctrl_c.check)
+    assert multiprocessing.active_children() == []
+    stored = open_result_set(tmp_path / "out" / loaded.result_set)
+    assert stored.runs.num_rows == 2
+    again = run_study(loaded, tmp_path / "out", lanes=2, workers=2)
+    assert (again.computed, again.reused) == (4, 2)
+
+
+def test_a_study_of_one_group_stays_in_this_process(tiny_spec, tmp_path):
+    loaded = load_study(tiny_spec(tmp_path, "single", seeds=1, epochs=2))  # 2 runs: 1 group
+    events = []
+    run_study(loaded, tmp_path / "out", workers=4, progress=lambda e, **i: events.append(e))
+    assert multiprocessing.active_children() == []
+    assert events.count("epoch") == 2  # streamed epoch by epoch, as only this process can
