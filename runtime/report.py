@@ -160,7 +160,7 @@ def render_report(rs: ResultSet, baseline: str | None = None) -> str:
         '<section id="replay"><h2>Replay</h2>',
         "<p>Re-execute stored runs from the result set's own spec and compare them bit for bit "
         "(exit 0 identical, 1 differs, 2 refused), or take the best run's trained network out:</p>",
-        f"<pre>lesion replay {where}\nlesion replay {where} --all\n"
+        f"<pre>lesion replay {where}\nlesion replay {where} --run {escape(best_run)}\n"
         f"lesion export {where} --run {escape(best_run)} -o best.npz</pre>",
         "</section></body></html>",
     ]
