@@ -106,25 +106,17 @@ def test_a_disk_that_refuses_the_locks_bytes_is_a_result_set_error(tmp_path):
         signal.signal(signal.SIGXFSZ, old)
 
 
-def test_a_lock_that_is_a_symbolic_link_is_refused_and_its_target_untouched(tmp_path):
+@pytest.mark.parametrize("link, refusal", [
+    ("symlink_to", r"\.lock: is a symbolic link"),
+    ("hardlink_to", r"\.lock: is not a plain file of its own"),
+])
+def test_a_lock_linked_to_another_file_is_refused_and_that_file_untouched(tmp_path, link, refusal):
     victim = tmp_path / "precious.txt"
     victim.write_text("keep me")
     folder = tmp_path / "set"
     folder.mkdir()
-    (folder / ".lock").symlink_to(victim)
-    with pytest.raises(ResultSetError, match=r"\.lock: is a symbolic link"):
-        with writer_lock(folder):
-            pass
-    assert victim.read_text() == "keep me"
-
-
-def test_a_lock_with_another_hard_link_is_refused(tmp_path):
-    victim = tmp_path / "precious.txt"
-    victim.write_text("keep me")
-    folder = tmp_path / "set"
-    folder.mkdir()
-    (folder / ".lock").hardlink_to(victim)
-    with pytest.raises(ResultSetError, match=r"\.lock: is not a plain file of its own"):
+    getattr(folder / ".lock", link)(victim)
+    with pytest.raises(ResultSetError, match=refusal):
         with writer_lock(folder):
             pass
     assert victim.read_text() == "keep me"
