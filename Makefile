@@ -17,7 +17,7 @@ $(STAMP): $(BIN)/python pyproject.toml requirements.lock
 	touch $(STAMP)
 
 demo: $(STAMP)
-	@path=$$($(BIN)/lesion run specs/cold-chain.toml --out results | tail -n 1) && \
+	@path=$$($(BIN)/lesion run specs/cold-chain.toml --results results | tail -n 1) && \
 	  $(BIN)/lesion show "$$path" && \
 	  $(BIN)/lesion plot "$$path" --kind curves && \
 	  $(BIN)/lesion plot "$$path" --kind arms && \

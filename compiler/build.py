@@ -19,7 +19,7 @@ epoch: shuffle, every step in ``lax.scan``, then the validation split in inferen
 ``train`` is ``init`` then a scan over ``epochs``. Metrics per epoch (``Program.metric_names``):
 ``train_divergence`` and ``train_penalty`` (``λ/2‖W‖²``, 0 when decay is decoupled) averaged
 over the epoch's steps; ``val_divergence`` and ``val_accuracy`` or ``val_rmse`` (target units)
-on the validation split in inference mode; ``grad_norm`` and ``grad_norm_l<i>`` (L2 norm of the
+on the validation split in inference mode; ``grad_norm`` and ``grad_norm_layer<i>`` (L2 norm of the
 objective's gradient, all of it or one layer's, averaged over steps); ``weight_norm`` (L2 norm of
 the weight matrices at the end of the epoch); ``learning_rate`` at the epoch's last step.
 ``evaluate`` returns ``divergence`` and ``accuracy`` or ``rmse``.
@@ -65,7 +65,7 @@ from compiler.hashing import knobs_of, structure_key
 from compiler.spec import Spec, Strict, train_size
 
 __all__ = ["Program", "Carry", "compile_structure", "zero_knobs", "fit_standardization", "knob_vector", "seed_key",
-           "param_digest", "permutation",
+           "param_hash", "permutation",
            "SPLIT", "INIT", "SHUFFLE", "DROPOUT"]
 
 # Purpose tags of the random streams; fixed forever, since they decide every run's bits.
@@ -99,8 +99,8 @@ class Carry(NamedTuple):
     x_scale: jax.Array
     shuffle_key: jax.Array
     dropout_key: jax.Array
-    diverged: jax.Array   # bool
-    diverged_at: jax.Array  # int32 epoch index, −1 while healthy
+    non_finite: jax.Array   # bool
+    non_finite_epoch: jax.Array  # int32 epoch index, −1 while healthy
 
 
 class _Parts(NamedTuple):
@@ -131,7 +131,7 @@ def knob_vector(variant: Spec) -> dict[str, np.float32]:
     return {name: np.float32(value) for name, value in knobs_of(variant).items()}
 
 
-def param_digest(params_pytree) -> str:
+def param_hash(params_pytree) -> str:
     """SHA-256 hex over every leaf in sorted key-path order: path, dtype, shape, raw bytes."""
     h = hashlib.sha256()
     leaves = jax.tree_util.tree_flatten_with_path(params_pytree)[0]
@@ -311,7 +311,7 @@ def compile_structure(variants: Sequence[Spec], dataset: Dataset) -> Program:
             # overflow show up in the next step's objective or in the check after the epoch.
             bad = bad | ~jnp.isfinite(value) | ~jnp.isfinite(grad_norm)
             metrics = {"train_divergence": div, "train_penalty": penalty, "grad_norm": grad_norm,
-                       **{f"grad_norm_{name}": _global_norm(grads[name]) for name in names}}
+                       **{model.layer_metric(name): _global_norm(grads[name]) for name in names}}
             return (optax.apply_updates(params, updates), new_state, new_opt_state, bad), metrics
 
         (params, state, opt_state, bad), per_step = jax.lax.scan(
@@ -328,15 +328,15 @@ def compile_structure(variants: Sequence[Spec], dataset: Dataset) -> Program:
         # parameter, a running statistic or a metric (finite but huge weights can overflow the
         # validation loss) became non-finite is discarded whole. The run keeps the state it ended
         # its last healthy epoch with, and every reported number is either finite or NaN.
-        diverged = (carry.diverged | bad | ~_all_finite(params) | ~_all_finite(metrics)
-                    | (~_all_finite(state) if jax.tree.leaves(state) else False))
-        keep = lambda new, old: jax.tree.map(lambda a, b: jnp.where(diverged, b, a), new, old)
+        non_finite = (carry.non_finite | bad | ~_all_finite(params) | ~_all_finite(metrics)
+                      | (~_all_finite(state) if jax.tree.leaves(state) else False))
+        keep = lambda new, old: jax.tree.map(lambda a, b: jnp.where(non_finite, b, a), new, old)
         params, state, opt_state = (keep(params, carry.params), keep(state, carry.state),
                                     keep(opt_state, carry.opt_state))
-        metrics = {name: jnp.where(diverged, jnp.nan, metrics[name]).astype(jnp.float32) for name in metric_names}
-        diverged_at = jnp.where(diverged & ~carry.diverged, e, carry.diverged_at)
+        metrics = {name: jnp.where(non_finite, jnp.nan, metrics[name]).astype(jnp.float32) for name in metric_names}
+        non_finite_epoch = jnp.where(non_finite & ~carry.non_finite, e, carry.non_finite_epoch)
         return carry._replace(params=params, state=state, opt_state=opt_state, epoch=e + 1,
-                              diverged=diverged, diverged_at=diverged_at), metrics
+                              non_finite=non_finite, non_finite_epoch=non_finite_epoch), metrics
 
     def train(knobs, key, data_x, data_y):
         carry = init(knobs, key, data_x, data_y)
@@ -348,7 +348,7 @@ def compile_structure(variants: Sequence[Spec], dataset: Dataset) -> Program:
 
     metric_names = ("train_divergence", "train_penalty", "val_divergence",
                     "val_accuracy" if classification else "val_rmse", "grad_norm",
-                    *(f"grad_norm_{name}" for name in names), "weight_norm", "learning_rate")
+                    *(model.layer_metric(name) for name in names), "weight_norm", "learning_rate")
     return Program(structure, knob_names, zero, metric_names, epochs, init, epoch, train, evaluate,
                    lambda carry: {"params": carry.params, "state": carry.state},
-                   lambda carry: (carry.diverged, carry.diverged_at), pack)
+                   lambda carry: (carry.non_finite, carry.non_finite_epoch), pack)

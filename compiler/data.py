@@ -6,7 +6,7 @@ train/validation split (and fits standardization on its training rows) inside th
 
 - ``x``: float32 ``[n, features]``; ``y``: int32 ``[n]`` class indices ``0..K−1`` (labels mapped in
   sorted order) or float32 ``[n, targets]``;
-- ``fingerprint``: SHA-256 hex of the file's bytes, or of the generated arrays (dtype, shape and
+- ``data_hash``: SHA-256 hex of the file's bytes, or of the generated arrays (dtype, shape and
   bytes), so a replay can check it reads the same data.
 
 Files are first read through their metadata only (:func:`inspect_file`: NPZ array headers, the
@@ -38,7 +38,7 @@ from compiler.spec import FileData, Spec, classes_of, task_of, train_size
 
 __all__ = ["Dataset", "DataError", "load_data", "FileInfo", "Column", "inspect_file", "load_bytes", "file_problems",
            "check_files", "locate", "GENERATORS", "rings", "spirals", "blobs", "friedman1",
-           "sines", "fingerprint_arrays"]
+           "sines", "hash_arrays"]
 
 
 class DataError(UserError, ValueError):
@@ -50,7 +50,7 @@ class Dataset(NamedTuple):
     y: np.ndarray
     task: str
     classes: int | None
-    fingerprint: str
+    data_hash: str
 
 
 # ── generators ──────────────────────────────────────────────────────────────────────────────────
@@ -122,7 +122,7 @@ GENERATORS: dict[str, Callable] = {"rings": rings, "spirals": spirals, "blobs": 
                                    "friedman1": friedman1, "sines": sines}
 
 
-def fingerprint_arrays(*arrays: np.ndarray) -> str:
+def hash_arrays(*arrays: np.ndarray) -> str:
     """SHA-256 over each array's dtype, shape and C-order bytes."""
     h = hashlib.sha256()
     for a in arrays:
@@ -377,7 +377,7 @@ def _numeric(path, name, values) -> np.ndarray:
     return values
 
 
-def _file_digest(path: pathlib.Path) -> str:
+def _file_hash(path: pathlib.Path) -> str:
     # In blocks: the file's bytes never sit in memory beside its decoded columns.
     h = hashlib.sha256()
     with open(path, "rb") as fh:
@@ -414,9 +414,9 @@ def _load_file(variant: Spec, base_dir: pathlib.Path):
         classes = len(labels)
         if variant.divergence.kind == "bce" and classes != 2:
             raise DataError(f"{path}: divergence 'bce' is binary but the target has {classes} classes; use 'kl'")
-        return x, y.reshape(-1), classes, _file_digest(path)
+        return x, y.reshape(-1), classes, _file_hash(path)
     y = _numeric(path, data.target, target)
-    return x, y.reshape(n, -1), None, _file_digest(path)
+    return x, y.reshape(n, -1), None, _file_hash(path)
 
 
 def load_data(variant: Spec, base_dir: pathlib.Path) -> Dataset:
@@ -424,12 +424,12 @@ def load_data(variant: Spec, base_dir: pathlib.Path) -> Dataset:
     data = variant.data
     task = task_of(data)
     if isinstance(data, FileData):
-        x, y, classes, fingerprint = _load_file(variant, base_dir)
+        x, y, classes, data_hash = _load_file(variant, base_dir)
     else:
         rng = np.random.Generator(np.random.PCG64(data.seed))
         x, y = GENERATORS[data.generator](rng, data.samples, data.features, data.classes, data.noise)
         classes = classes_of(data)
-        fingerprint = None
+        data_hash = None
     x = np.ascontiguousarray(x, np.float32)
     y = np.ascontiguousarray(y, np.int32 if task == "classification" else np.float32)
-    return Dataset(x, y, task, classes, fingerprint or fingerprint_arrays(x, y))
+    return Dataset(x, y, task, classes, data_hash or hash_arrays(x, y))

@@ -28,7 +28,7 @@ from pydantic import BaseModel, ValidationError
 
 from compiler.errors import Problem, SpecError, dotted
 from compiler.hashing import identity
-from compiler.labels import BASE_LABEL, format_value, variant_label
+from compiler.labels import BASE_LABEL, axis_label, axis_names, format_value, grid_label, label_parts
 from compiler.paths import field_paths
 from compiler.problems import pydantic_problems
 from compiler.spec import NeuronBudget, Spec
@@ -130,7 +130,7 @@ def expand(spec: Spec) -> list[Variant]:
     abl = spec.ablation
     # Each candidate: (label, changes, where it is written in the TOML document, where each
     # changed key is written)
-    candidates: list[tuple[str | None, dict, tuple, dict[str, tuple]]] = []
+    candidates: list[tuple[str, dict, tuple, dict[str, tuple]]] = []
     problems: list[Problem] = []
 
     if abl is None:
@@ -139,12 +139,12 @@ def expand(spec: Spec) -> list[Variant]:
         if abl.include_base:
             candidates.append((BASE_LABEL, {}, ("ablation",), {}))
         for i, v in enumerate(abl.variant):
-            for key in v.set:
+            for key in v.changes:
                 why = _check_key(key)
                 if why:
-                    problems.append(Problem(("ablation", "variant", i, "set", key), why))
-            candidates.append((v.label, dict(v.set), ("ablation", "variant", i),
-                               {k: ("ablation", "variant", i, "set", k) for k in v.set}))
+                    problems.append(Problem(("ablation", "variant", i, "changes", key), why))
+            candidates.append((v.label, dict(v.changes), ("ablation", "variant", i),
+                               {k: ("ablation", "variant", i, "changes", k) for k in v.changes}))
     else:
         for i, axis in enumerate(abl.axis):
             why = _check_key(axis.key)
@@ -153,17 +153,19 @@ def expand(spec: Spec) -> list[Variant]:
         if abl.mode == "grid":
             for combo in itertools.product(*[list(enumerate(a.values)) for a in abl.axis]):
                 changes = {a.key: v for a, (_, v) in zip(abl.axis, combo)}
+                label = grid_label([v for _, v in combo])
                 # The last axis stands for the whole combination; _blame narrows a problem down
                 # to the axis whose key it concerns.
                 where = ("ablation", "axis", len(abl.axis) - 1, "values", combo[-1][0])
                 origins = {a.key: ("ablation", "axis", k, "values", j) for k, (a, (j, _)) in enumerate(zip(abl.axis, combo))}
-                candidates.append((None, changes, where, origins))
+                candidates.append((label, changes, where, origins))
         else:
             candidates.append((BASE_LABEL, {}, ("ablation",), {}))
+            names = axis_names([(a.key, a.name) for a in abl.axis])
             for i, axis in enumerate(abl.axis):
                 for j, value in enumerate(axis.values):
                     here = ("ablation", "axis", i, "values", j)
-                    candidates.append((None, {axis.key: value}, here, {axis.key: here}))
+                    candidates.append((axis_label(names[axis.key], value), {axis.key: value}, here, {axis.key: here}))
     if problems:
         raise SpecError(problems)
 
@@ -174,13 +176,12 @@ def expand(spec: Spec) -> list[Variant]:
         tree = dict(raw)
         for key, value in changes.items():
             _deep_set(tree, key, value)
-        label = label or variant_label(changes)
         try:
             resolved = _resolve(tree)
         except ValidationError as err:
             for p in pydantic_problems(err):
                 cause = _blame(origins, p.loc)
-                message = f"variant '{label}' is invalid: {dotted(p.loc)}: {p.message}"
+                message = f"variant {_named(label, changes, abl)} is invalid: {dotted(p.loc)}: {p.message}"
                 if cause and p.message.startswith("unknown key") and _written(raw, p.loc):
                     message += (f"; the base spec sets {dotted(p.loc)}, which {cause}={format_value(changes[cause])} "
                                 "does not have: remove it from the base or set it only in the variants that use it")
@@ -191,7 +192,7 @@ def expand(spec: Spec) -> list[Variant]:
             first = by_hash[vhash]
             if abl is not None and abl.mode == "one_at_a_time" and first.label == BASE_LABEL:
                 continue  # the axis lists the base value itself: the base already runs it
-            problems.append(Problem(where, f"variant '{label}' is the same configuration as '{first.label}' "
+            problems.append(Problem(where, f"variant {_named(label, changes, abl)} is the same configuration as '{first.label}' "
                                            "(remove one of them)"))
             continue
         v = Variant(len(variants), label, changes, resolved, vhash, structure)
@@ -203,6 +204,13 @@ def expand(spec: Spec) -> list[Variant]:
     if problems:
         raise SpecError(problems)
     return variants
+
+
+def _named(label: str, changes: dict, abl) -> str:
+    """A variant as a message names it: a generated label gives values alone, so the keys follow."""
+    if abl is None or abl.mode == "list" or not changes:
+        return f"'{label}'"
+    return f"'{label}' ({', '.join(label_parts(changes))})"
 
 
 def _with_kinds(raw: dict, model: BaseModel) -> None:

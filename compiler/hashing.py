@@ -6,6 +6,8 @@
 - variant hash: SHA-256 over what decides a run's numbers — every section but ``study`` (name,
   description, seeds, metric do not change a run) and ``ablation``;
 - run id: ``<variant hash>-s<seed>``;
+- every hash is taken over the dump in its identity form (:func:`compiler.vocabulary.identity_form`:
+  the words of result-set format 1), so renaming a word of the spec language changes no hash;
 - structure key: the variant with every *knob* removed. Knobs are the continuous values the
   compiled program takes as traced inputs, so all variants with one structure key share one
   XLA program. Each spec model names its knob fields (``knobs``, a class attribute); a variant's
@@ -23,8 +25,9 @@ from pydantic import BaseModel
 
 from compiler.paths import models_in
 from compiler.spec import Spec
+from compiler.vocabulary import identity_form
 
-__all__ = ["canonical_json", "sha256_hex", "study_hash", "variant_hash", "run_id",
+__all__ = ["canonical_json", "sha256_hex", "study_json", "study_hash", "variant_hash", "run_id",
            "sections", "KNOBS", "knobs_of", "structure_key", "identity", "variant_payload", "lookup"]
 
 # Sections that do not decide a run's numbers (and have no knobs).
@@ -78,8 +81,13 @@ def sha256_hex(data: bytes) -> str:
     return hashlib.sha256(data).hexdigest()
 
 
+def study_json(spec: Spec) -> bytes:
+    """The canonical JSON a study is identified by (and stored with), in its identity form."""
+    return canonical_json(identity_form(spec.model_dump(mode="json")))
+
+
 def study_hash(spec: Spec) -> str:
-    return sha256_hex(canonical_json(spec.model_dump(mode="json")))
+    return sha256_hex(study_json(spec))
 
 
 def variant_payload(variant: Spec) -> dict:
@@ -88,7 +96,7 @@ def variant_payload(variant: Spec) -> dict:
 
 
 def variant_hash(variant: Spec) -> str:
-    return sha256_hex(canonical_json(variant_payload(variant)))
+    return sha256_hex(canonical_json(identity_form(variant_payload(variant))))
 
 
 def run_id(vhash: str, seed: int) -> str:
@@ -134,7 +142,7 @@ def structure_key(variant: Spec) -> str:
 def identity(variant: Spec, memo: dict[str, bytes] | None = None) -> tuple[str, str]:
     """(variant hash, structure key) from one dump of the variant; ``memo`` as in
     :func:`canonical_json`, shared across the variants of a study."""
-    tree = variant_payload(variant)
+    tree = identity_form(variant_payload(variant))
     vhash = sha256_hex(canonical_json(tree, memo))
     for path in knobs_of(variant):
         *head, last = path.split(".")

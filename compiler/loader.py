@@ -11,6 +11,9 @@ Contract:
   tracebacks; so are key paths of more than :data:`MAX_KEY_PARTS` parts and values
   nested deeper than Python's stack allows.
 - each problem carries the line of its key path in the source (:mod:`compiler.locate`).
+- an old word of the spec language (:mod:`compiler.vocabulary`) is read as the current one and
+  reported in :attr:`LoadedStudy.notices`, one line each (``FILE:LINE: key: ...``): a stored
+  source written with the old words still loads to the same study hash.
 
 This module never imports jax.
 """
@@ -26,12 +29,13 @@ from dataclasses import dataclass
 
 from pydantic import ValidationError
 
-from compiler.errors import Problem, SpecError
+from compiler.errors import Problem, SpecError, dotted
 from compiler.expand import Variant, expand
 from compiler.hashing import study_hash
 from compiler.locate import key_lines, lookup
 from compiler.problems import pydantic_problems
 from compiler.spec import Spec
+from compiler.vocabulary import respell
 
 __all__ = ["LoadedStudy", "load_study", "load_text", "MAX_SPEC_BYTES", "MAX_KEY_PARTS"]
 
@@ -55,6 +59,7 @@ class LoadedStudy:
     spec: Spec
     study_hash: str
     variants: tuple[Variant, ...]
+    notices: tuple[str, ...] = ()   # old words read as current ones, one line each
 
     @property
     def result_set(self) -> str:
@@ -154,6 +159,7 @@ def _load(text: str, name: str) -> LoadedStudy:
         elif m := _TOML_END.search(msg):
             line, msg = max(1, len(text.rstrip("\n").split("\n"))), f"{msg[:m.start()]} (at the end of the file)"
         raise _fail(name, f"invalid TOML: {msg[0].lower() + msg[1:]}", line) from None
+    doc, old_words = respell(doc)
     try:
         spec = Spec.model_validate(doc)
     except ValidationError as err:
@@ -162,7 +168,16 @@ def _load(text: str, name: str) -> LoadedStudy:
         variants = expand(spec)
     except SpecError as err:
         raise _located(err.problems, text, name) from None
-    return LoadedStudy(name, text, spec, study_hash(spec), tuple(variants))
+    return LoadedStudy(name, text, spec, study_hash(spec), tuple(variants), _notices(old_words, text, name))
+
+
+def _notices(old_words, text: str, name: str) -> tuple[str, ...]:
+    lines = key_lines(text)
+    out = []
+    for loc, old, new in old_words:
+        out.append(f"{name}:{lookup(lines, loc)}: {dotted(loc)}: '{old}' is now '{new}' (read as such; "
+                   "rename it to silence this notice)")
+    return tuple(out)
 
 
 def _located(problems: list[Problem], text: str, name: str) -> SpecError:

@@ -27,7 +27,7 @@ from typing import Callable, NamedTuple
 import jax
 import jax.numpy as jnp
 
-__all__ = ["Network", "mlp", "FAMILIES", "weight_mask", "layer_names", "draw_weights", "ACTIVATIONS", "INITIALIZERS"]
+__all__ = ["Network", "mlp", "FAMILIES", "weight_mask", "layer_names", "layer_metric", "draw_weights", "ACTIVATIONS", "INITIALIZERS"]
 
 ACTIVATIONS: dict[str, Callable] = {
     "relu": jax.nn.relu,
@@ -81,6 +81,12 @@ class Network(NamedTuple):
 def layer_names(depth: int) -> tuple[str, ...]:
     """``("l1", …, "l<depth>")`` for ``depth`` affine layers, the output layer last."""
     return tuple(f"l{i}" for i in range(1, depth + 1))
+
+
+def layer_metric(name: str) -> str:
+    """The per-epoch metric of a layer's gradient norm: ``l3`` → ``grad_norm_layer3`` (not
+    ``grad_norm_l3``, which reads as an L3 norm)."""
+    return f"grad_norm_layer{name.removeprefix('l')}"
 
 
 def mlp(hidden, out_width, activation, init, normalizer, dropout) -> Network:

@@ -97,16 +97,16 @@ REGISTRY: dict[str, Callable[..., Normalizer]] = {"none": none, "batch": batch, 
 
 def diagnose(kind: str, hidden: int, curves: dict[str, np.ndarray]) -> list[str]:
     """Batch-normalized layers whose gradient collapsed, judged from the per-layer gradient norms
-    (``grad_norm_l1`` … ``grad_norm_l{hidden + 1}``, the last the output layer's) of a run with
+    (``grad_norm_layer1`` … ``grad_norm_layer{hidden + 1}``, the last the output layer's) of a run with
     ``hidden`` hidden layers normalized by ``kind``; one line per layer."""
     if kind != "batch":
         return []
-    out_norm = curves.get(f"grad_norm_l{hidden + 1}")
+    out_norm = curves.get(f"grad_norm_layer{hidden + 1}")
     if out_norm is None:
         return []
     found = []
     for layer in range(1, hidden + 1):
-        g = curves.get(f"grad_norm_l{layer}")
+        g = curves.get(f"grad_norm_layer{layer}")
         if g is None:
             continue
         with np.errstate(divide="ignore", invalid="ignore"):

@@ -22,7 +22,7 @@ import jax
 import jax.numpy as jnp
 import optax
 
-__all__ = ["l2_penalty", "decoupled_decay", "Dropout", "inverted", "scaled", "connect", "REGISTRY"]
+__all__ = ["l2_penalty", "decoupled_decay", "Dropout", "inverted", "scaled", "dropconnect", "REGISTRY"]
 
 
 def l2_penalty(params, mask, weight_decay):
@@ -76,7 +76,7 @@ def scaled(rate=0.0) -> Dropout:
     return Dropout(_plain_dense, activation)
 
 
-def connect(rate=0.0) -> Dropout:
+def dropconnect(rate=0.0) -> Dropout:
     """DropConnect (Wan et al. 2013): while training each weight of a hidden layer is kept with
     probability ``p`` (unscaled), with a fresh mask ``M`` per example: ``u_b = x_b (M_b ⊙ W)``.
     Inference is mean-weight, ``u = p·xW`` (common practice); the paper's inference instead
@@ -92,4 +92,4 @@ def connect(rate=0.0) -> Dropout:
     return Dropout(dense, lambda key, h, train: h)
 
 
-REGISTRY: dict[str, Callable[..., Dropout]] = {"inverted": inverted, "scaled": scaled, "connect": connect}
+REGISTRY: dict[str, Callable[..., Dropout]] = {"inverted": inverted, "scaled": scaled, "dropconnect": dropconnect}

@@ -11,7 +11,7 @@ what pydantic cannot know from the types added:
   table only yields "not valid under any of the given schemas", under ``if``/``then`` the
   validator names the bad key;
 - ``study.metric`` as an enum of the known metrics (the model checks it in a validator);
-- axis keys and ``[[ablation.variant]]`` ``set`` keys as enums of the dotted keys an ablation may
+- axis keys and ``[[ablation.variant]]`` ``changes`` keys as enums of the dotted keys an ablation may
   change (expand checks them), so an editor offers them;
 - no ``null`` for ``[ablation]``: TOML has no null, the table is simply left out.
 
@@ -38,7 +38,7 @@ def spec_schema() -> dict[str, Any]:
     settable = sorted(p for p in field_paths() if "." in p and not p.startswith(("ablation", "study")))
     defs["Study"]["properties"]["metric"]["enum"] = list(METRICS)
     defs["Axis"]["properties"]["key"]["enum"] = settable
-    defs["ListedVariant"]["properties"]["set"]["propertyNames"] = {"enum": settable}
+    defs["ListedVariant"]["properties"]["changes"]["propertyNames"] = {"enum": settable}
     schema["properties"]["ablation"] = {"$ref": "#/$defs/Ablation", "description": defs["Ablation"]["description"]}
     schema = _tagged(schema, defs)
     return {

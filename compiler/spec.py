@@ -323,9 +323,9 @@ class Dropout(Strict):
     """Dropout on the hidden layers during training."""
 
     rate: Rate = 0.0
-    """Probability of dropping a unit (or, for connect, a weight)."""
-    kind: Literal["inverted", "scaled", "connect"] = "inverted"
-    """inverted: rescale while training; scaled: rescale at inference; connect: DropConnect on weights."""
+    """Probability of dropping a unit (or, for dropconnect, a weight)."""
+    kind: Literal["inverted", "scaled", "dropconnect"] = "inverted"
+    """inverted: rescale while training; scaled: rescale at inference; dropconnect: DropConnect (Wan et al. 2013) on weights."""
     knobs: ClassVar[tuple[str, ...]] = ("rate",)
 
 
@@ -468,6 +468,10 @@ class Axis(Strict):
     """Dotted key of the setting to vary, e.g. optimizer.learning_rate."""
     values: Annotated[list[AxisValue], Field(min_length=1, max_length=1000)]
     """Values the key takes, each a value of that setting."""
+    # Left out of the study's JSON while unset, so existing study hashes hold (see Study.margin).
+    name: Annotated[Union[Annotated[str, Field(pattern=r"^[A-Za-z][A-Za-z0-9_-]{0,23}$")], None],
+                    Field(exclude_if=lambda v: v is None)] = None
+    """Short name of the axis in labels and tables (e.g. lr); default: the shortest end of the key that tells the axes apart."""
 
     @field_validator("values")
     @classmethod
@@ -486,10 +490,10 @@ class ListedVariant(Strict):
 
     label: Annotated[str, Field(min_length=1, max_length=200)]
     """The variant's name in every report."""
-    set: Annotated[dict[str, AxisValue], Field(min_length=1)]
+    changes: Annotated[dict[str, AxisValue], Field(min_length=1)]
     """Dotted keys and the values this variant gives them."""
 
-    @field_validator("set")
+    @field_validator("changes")
     @classmethod
     def _keys(cls, v):
         for k in v:
@@ -515,7 +519,7 @@ class Ablation(Strict):
     def _fits_mode(self):
         if self.mode == "list":
             if not self.variant:
-                raise ValueError("mode 'list' needs [[ablation.variant]] tables (label = ..., set = {...})")
+                raise ValueError("mode 'list' needs [[ablation.variant]] tables (label = ..., changes = {...})")
             if self.axis:
                 raise ValueError("mode 'list' takes [[ablation.variant]] tables, not [[ablation.axis]]; "
                                  "use mode = 'grid' or 'one_at_a_time' for axes")
@@ -533,6 +537,10 @@ class Ablation(Strict):
             dup = sorted({k for k in keys if keys.count(k) > 1})
             if dup:
                 raise ValueError(f"each key may have one axis (repeated: {dup})")
+            names = [a.name for a in self.axis if a.name is not None]
+            dup = sorted({n for n in names if names.count(n) > 1})
+            if dup:
+                raise ValueError(f"axis names must be distinct (repeated: {dup})")
         return self
 
 

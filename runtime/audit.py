@@ -1,5 +1,5 @@
 """What a reader checks before it trusts a stored result set, without re-executing anything
-(that is replay's job): the digests stored with the tables, one row per run id, and the runs the
+(that is replay's job): the hashes stored with the tables, one row per run id, and the runs the
 result set's own spec derives (every variant × seed).
 
 ``show`` and ``diff`` print the findings as warnings and still report what is stored; replay
@@ -26,7 +26,7 @@ class Audit:
     missing: dict[str, list[int]]      # variant label -> seeds not stored, in study order
     duplicated: dict[str, int]         # run id -> rows holding it (more than one)
     foreign: list[str]                 # stored run ids the spec does not derive
-    edits: list[str] | None            # None: no digests stored (an older result set)
+    edits: list[str] | None            # None: no hashes stored (an older result set)
     spec_problem: str | None = None    # the stored spec does not load: counts not checked
 
     @property
@@ -51,7 +51,7 @@ class Audit:
 
     def notes(self) -> list[str]:
         if self.edits is None:
-            return ["no consistency digest stored (written by an older lesion): edits made after writing "
+            return ["no consistency hash stored (written by an older lesion): edits made after writing "
                     "cannot be detected without 'lesion replay'"]
         return []
 

@@ -148,6 +148,8 @@ def _load_runnable(spec: Path):
 
     study = load_study(spec)
     check_files(study, room=data_room())
+    for line in study.notices:   # old words, read as today's (compiler.vocabulary)
+        typer.echo(f"notice: {printable(line)}", err=True)
     return study
 
 
@@ -158,10 +160,10 @@ def _check_report(study) -> dict:
         "study_hash": study.study_hash,
         "result_set": study.result_set,
         "seeds": study.seeds,
-        "structures": len({v.structure for v in study.variants}),
+        "programs": len({v.structure for v in study.variants}),
         "runs": study.runs,
         "variants": [
-            {"label": v.label, "changes": v.changes, "variant_hash": v.hash, "structure": v.structure,
+            {"label": v.label, "changes": v.changes, "variant_hash": v.hash, "program": v.structure,
              "seeds": study.seeds}
             for v in study.variants
         ],
@@ -169,7 +171,7 @@ def _check_report(study) -> dict:
 
 
 def _print_check_table(study, wide: bool) -> None:
-    from compiler.labels import label_parts
+    from compiler.labels import axis_names, label_parts
     from runtime.formats import Fit, render
 
     structures = sorted({v.structure for v in study.variants}, key=[v.structure for v in study.variants].index)
@@ -179,15 +181,23 @@ def _print_check_table(study, wide: bool) -> None:
     typer.echo(f"{len(study.variants)} variants × {len(study.seeds)} seeds = {study.runs} runs, "
                f"compiled as {len(structures)} program{'s' if len(structures) != 1 else ''}")
     seeds = _seeds_text(study.seeds)
+    abl = study.spec.ablation
+    generated = abl is not None and abl.mode != "list"
+    if generated:
+        # A generated label is values alone: say once which keys they are, in label order.
+        names = axis_names([(a.key, a.name) for a in abl.axis])
+        what = " · ".join(a.key for a in abl.axis) if abl.mode == "grid" else \
+            ", ".join(f"{names[a.key]} = {a.key}" for a in abl.axis)
+        typer.echo(printable(f"labels      {what}"))
     rows = []
     for v in study.variants:
         changes = ", ".join(label_parts(v.changes)) or "(nothing: the base)"
-        # A generated label already spells its changes out; the column then stays empty (and,
-        # when every label is generated, is left out).
-        rows.append({"#": v.index, "label": v.label, "changes": "" if changes == v.label else changes,
-                     "variant hash": v.hash[:12], "seeds": seeds, "structure": v.structure})
+        # A generated label already tells its changes (with the line above); the column then
+        # stays empty, and is left out when every label is generated.
+        rows.append({"#": v.index, "label": v.label, "changes": "" if generated else changes,
+                     "variant hash": v.hash[:12], "seeds": seeds, "program": v.structure})
     typer.echo(render(rows, list(rows[0]), "table", width=_terminal_width(wide),
-                      fit=Fit(keep=("#", "label"), drop=("structure", "seeds"), wrap=("label", "changes"))))
+                      fit=Fit(keep=("#", "label"), drop=("program", "seeds"), wrap=("label", "changes"))))
 
 
 def _terminal_width(wide: bool = False) -> int | None:
@@ -237,9 +247,11 @@ def _err(text: str) -> None:
 @app.command(cls=_Command)
 def run(
     spec: Path = typer.Argument(..., metavar="SPEC", help="The study's TOML spec file.", show_default=False),
-    out: Path = typer.Option(Path("results"), "--out", "-o", metavar="DIR", help="Folder that receives the result set."),
+    results: Path = typer.Option(Path("results"), "--results", metavar="DIR",
+                                 help="Folder that receives the result set (-o/--out name a file in every command)."),
+    old_out: Path = typer.Option(None, "--out", "-o", hidden=True),
     lanes: int = typer.Option(None, "--lanes", min=1, max=4096, metavar="N",
-                              help="Runs per compiled program call (lane width); default: chosen per structure."),
+                              help="Runs per compiled program call (lane width); default: chosen per program."),
     fresh: bool = typer.Option(False, "--fresh", help="Recompute every run, even those already stored."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bars or summary on stderr."),
     cluster: str = typer.Option(None, "--cluster", metavar="ADDRESS",
@@ -270,7 +282,7 @@ def run(
 
       lesion run specs/cold-chain.toml
 
-      lesion run specs/cold-chain.toml --out /tmp/results --lanes 16 --quiet
+      lesion run specs/cold-chain.toml --results /tmp/results --lanes 16 --quiet
 
       lesion run specs/cold-chain.toml --cluster local:4
 
@@ -282,17 +294,21 @@ def run(
         raise UsageError("--margin, --max-seeds, --round and --axis belong to --until-decided")
     if until_decided and fresh:
         raise UsageError("--fresh recomputes a fixed set of runs; a procedure's seeds depend on its looks: "
-                         "give --out another folder to start it over")
+                         "give --results another folder to start it over")
     if cluster is not None and workers is not None:
         _err("--workers and --cluster: choose one (a cluster's workers are its own processes)")
         raise typer.Exit(2)
+    if old_out is not None:
+        # -o/--out name a file elsewhere (plot, report, export); run's folder was --out before.
+        _err(f"notice: --out is now --results for run's folder (read as --results {printable(str(old_out))})")
+        results = old_out
 
     # Before anything heavy is imported: from here on Ctrl-C only asks the run to stop at its
     # next safe point (runtime/interrupt.py says why).
     with interrupt_guard("interrupted again: stopping at once; finished groups are stored") as ctrl_c:
 
         study = _load_runnable(spec)
-        folder = out / study.result_set
+        folder = results / study.result_set
         try:
             ctrl_c.check()
             from runtime.environment import usable_cores
@@ -310,10 +326,10 @@ def run(
                           workers=workers or usable_cores(),
                           on_wait=lambda: _err("waiting: another 'lesion run' is writing this result set"))
                 if rule is None:
-                    report = run_study(study, out, fresh=fresh, **kw)
+                    report = run_study(study, results, fresh=fresh, **kw)
                 else:
                     from runtime.runner import run_until_decided
-                    looks, decided = run_until_decided(study, out, rule, axis=axis, **kw)
+                    looks, decided = run_until_decided(study, results, rule, axis=axis, **kw)
                     report = _looks_total(looks)
         except Interrupted:
             if fresh:
@@ -327,7 +343,7 @@ def run(
             raise typer.Exit(130) from None
     if not quiet:
         _err(f"{report.planned} runs: {report.computed} computed, {report.reused} already stored; "
-             f"{report.diverged} diverged; {report.groups} groups, "
+             f"{report.non_finite} non-finite; {report.groups} groups, "
              f"compile {report.compile_seconds:.1f} s, run {report.run_seconds:.1f} s")
         for w in report.warnings:
             _err(f"warning: {w}")
@@ -345,7 +361,7 @@ def _looks_total(looks):
     computed = sum(r.computed for r in looks)
     spent = open_result_set(looks[-1].path).runs.num_rows
     return dataclasses.replace(looks[-1], planned=spent, computed=computed, reused=spent - computed,
-                               diverged=sum(r.diverged for r in looks), groups=sum(r.groups for r in looks),
+                               non_finite=sum(r.non_finite for r in looks), groups=sum(r.groups for r in looks),
                                warnings=[w for r in looks for w in r.warnings],
                                compile_seconds=sum(r.compile_seconds for r in looks),
                                run_seconds=sum(r.run_seconds for r in looks))
@@ -486,7 +502,7 @@ def show(
     runs: bool = typer.Option(False, "--runs", help="One row per run, with the run id that 'lesion replay --run' takes."),
     wide: bool = typer.Option(False, "--wide", help=_WIDE_HELP),
 ) -> None:
-    """Summarize a result set per variant: runs ok/diverged, mean ± sd and 95 % CI across seeds.
+    """Summarize a result set per variant: runs ok/non-finite, mean ± sd and 95 % CI across seeds.
 
     Examples:
 
@@ -521,14 +537,13 @@ def show(
         fit = dataclasses.replace(RUNS_FIT, keep=RUNS_FIT.keep + tuple(metrics))
         title = f"{name} ({rs.study_hash[:12]}): {len(rows)} runs, final {', '.join(metrics)}"
     else:
-        rows = [{"variant": r["variant"], "metric": m, **r} for m in metrics for r in summary_rows(rs, m)]
+        rows = [r for m in metrics for r in summary_rows(rs, m)]
+        columns, fit = SUMMARY_COLUMNS, SUMMARY_FIT
         if len(metrics) > 1:
             order = [r["variant"] for r in rows]
             rows.sort(key=lambda r: order.index(r["variant"]))
-            columns = ["variant", "metric", *SUMMARY_COLUMNS[1:]]
-            fit = dataclasses.replace(SUMMARY_FIT, keep=SUMMARY_FIT.keep + ("metric",))
-        else:
-            columns, fit = SUMMARY_COLUMNS, SUMMARY_FIT
+            fit = dataclasses.replace(SUMMARY_FIT, keep=SUMMARY_FIT.keep + ("metric",),
+                                      drop=tuple(c for c in SUMMARY_FIT.drop if c != "metric"))
         title = f"{name} ({rs.study_hash[:12]}): final {', '.join(metrics)} across seeds (mean, sd, 95% CI)"
     extra = {"findings": findings}
     rule = rs.meta.get("sequential")
@@ -587,7 +602,7 @@ def replay(
                        (lambda g: _err(f"replaying {len(g.runs)} run(s) at lane width {g.lane_width} ...")))
     rows = [r.as_dict() for r in report.rows]
     columns = ["run_id", "variant", "seed", "lane_width", "verdict", "first_epoch", "first_metric",
-               "max_abs", "max_rel", "digest", "cells"]
+               "max_abs", "max_rel", "param_hash", "cells"]
     if format is Format.json:
         typer.echo(json.dumps({"result_set": str(report.path), "identical": report.identical,
                                "environment_changes": report.environment_changes,
@@ -605,7 +620,7 @@ def replay(
             typer.echo(f"note: {line}")
         typer.echo(render([{**r, "cells": ", ".join(r["cells"])} for r in rows], columns, "table", title="replay",
                           width=_terminal_width(wide),
-                          fit=Fit(keep=("run_id", "verdict", "cells"), drop=("lane_width", "max_rel", "digest"),
+                          fit=Fit(keep=("run_id", "verdict", "cells"), drop=("lane_width", "max_rel", "param_hash"),
                                   wrap=("variant", "cells"))))
         differing = sum(r.verdict == "differs" for r in report.rows)
         missing = sum(r.verdict == "missing" for r in report.rows)
@@ -633,7 +648,7 @@ def export(
     """Write a run's trained parameters and running statistics to a .npz file.
 
     The run is re-executed from the result set's own spec; the file is written only if the
-    parameters' digest equals the stored one (exit 2 and nothing written otherwise).
+    parameters' hash equals the stored one (exit 2 and nothing written otherwise).
 
     Examples:
 
@@ -643,8 +658,8 @@ def export(
 
     done = export_run(result, run, out, on_group=lambda g: _err(f"re-executing run {run} "
                                                                 f"at lane width {g.lane_width} ..."))
-    note = " (the run diverged: these are its last finite parameters)" if done.status != "ok" else ""
-    _err(f"parameter digest {done.param_digest[:16]}… matches the stored one; {done.arrays} arrays written{note}")
+    note = " (the run became non-finite: these are its last finite parameters)" if done.status != "ok" else ""
+    _err(f"parameter hash {done.param_hash[:16]}… matches the stored one; {done.arrays} arrays written{note}")
     typer.echo(str(done.path))
 
 

@@ -44,7 +44,7 @@ import uuid
 from typing import Callable
 
 from compiler.errors import UserError
-from runtime.environment import capture, differences, fingerprint, single_threaded_xla
+from runtime.environment import capture, differences, env_hash, single_threaded_xla
 from runtime.execute import GroupResult, execute_group
 from runtime.programs import enable_compile_cache
 
@@ -172,7 +172,7 @@ class DaskExecutor:
         envs = self.client.run(worker_environment)
         by_fp: dict[str, list[str]] = {}
         for worker, env in sorted(envs.items()):
-            by_fp.setdefault(fingerprint(env), []).append(worker)
+            by_fp.setdefault(env_hash(env), []).append(worker)
         first = next(iter(by_fp.values()))[0]
         if len(by_fp) > 1:
             parts = []
@@ -197,7 +197,7 @@ class DaskExecutor:
 
         self.open()
         client = self.client
-        agreed = fingerprint(self._env)
+        agreed = env_hash(self._env)
         scattered: dict[int, object] = {}
 
         def scatter(d):
@@ -252,7 +252,7 @@ class DaskExecutor:
                     continue
                 for later in waiting.pop(program_of.pop(fut.key, None), []):
                     finished.add(submit(later))
-                if fingerprint(result.environment) != agreed:
+                if env_hash(result.environment) != agreed:
                     changes = differences(self._env, result.environment)
                     raise ClusterError(f"--cluster {self.address}: group {g.group_id} was computed by a "
                                        f"worker ({result.environment.get('host')}) that joined with another "

@@ -33,7 +33,7 @@ import numpy as np
 
 from compiler.errors import SpecError, printable
 from compiler.expand import expand
-from compiler.labels import BASE_LABEL, format_value, label_parts
+from compiler.labels import BASE_LABEL, SEPARATOR, format_value, label_parts, old_label
 from compiler.hashing import variant_payload
 from compiler.loader import load_text
 from compiler.spec import METRICS
@@ -95,9 +95,10 @@ def _variants(rs: ResultSet, loaded=None) -> list[dict]:
 
 def resolve_variant(loaded, given: str, option: str = "--baseline") -> int:
     """Index of the variant ``given`` names: its full label; its index in the study; ``base`` for
-    the variant whose configuration equals the spec's base (a grid cell included); or a short
-    label: comma-separated parts each naming one part of the label, whole, by its last dotted
-    pieces or by value ("kind=batch, 0.0"), or a prefix of the label, matching one variant alone."""
+    the variant whose configuration equals the spec's base (a grid cell included); the label
+    format 1 gave it (``key=value, key=value``); or a short label: parts separated by ``·`` or
+    ``,``, each naming one of the variant's values, or one of its changes whole, by its key's last
+    dotted pieces or by value ("kind=batch, 0.0"), or a prefix of the label, matching one variant alone."""
     variants = loaded.variants
     labels = [v.label for v in variants]
     if given in labels:
@@ -113,14 +114,18 @@ def resolve_variant(loaded, given: str, option: str = "--baseline") -> int:
         if same:
             return same[0]
         return _no_variant(labels, given, option, "no variant equals the base configuration")
-    tokens = [t.strip() for t in given.split(",") if t.strip()]
+    old = [old_label(v.changes) for v in variants]
+    if old.count(given) == 1:
+        return old.index(given)
+    tokens = [t.strip() for t in re.split(r"[,·]", given) if t.strip()]
 
     def names(token: str, part: str) -> bool:
         value = part.split("=", 1)[-1]
         return token in (part, value) or part.endswith("." + token)
 
+    parts = [[*lab.split(SEPARATOR), *label_parts(v.changes)] for lab, v in zip(labels, variants)]
     hits = [i for i, lab in enumerate(labels)
-            if lab.startswith(given) or (tokens and all(any(names(t, p) for p in lab.split(", ")) for t in tokens))]
+            if lab.startswith(given) or (tokens and all(any(names(t, p) for p in parts[i]) for t in tokens))]
     if len(hits) == 1:
         return hits[0]
     if hits:
@@ -129,14 +134,14 @@ def resolve_variant(loaded, given: str, option: str = "--baseline") -> int:
 
 
 def _no_variant(labels, given, option, why, indices=None):
-    # One label per line: labels themselves contain ", ".
+    # One label per line: labels themselves contain " · " (and, written by a person, anything).
     indices = indices or range(len(labels))
     raise ResultSetError("\n".join([f"{option} {printable(repr(given))}: {why}; give a label, an index or 'base':"]
                                    + [f"  {i}  {printable(lab)}" for i, lab in zip(indices, labels)]))
 
 
 def _values(rs: ResultSet, cols: dict, variant_hash: str, metric: str) -> dict[int, float | None]:
-    """Final values of a variant's runs by seed (None for a diverged run); ``cols`` is
+    """Final values of a variant's runs by seed (None for a non-finite run); ``cols`` is
     ``rs.runs.to_pydict()``, converted once per result set."""
     rs.require([metric])
     col = f"final_{metric}"
@@ -382,7 +387,7 @@ def _ignored_keys(changes: list[Change], a_tree: dict, b_tree: dict) -> set[str]
             i = int(m.group(2))
             if i < len(entries):
                 entry = entries[i]
-                keys |= {entry["key"]} if m.group(1) == "axis" else set(entry.get("set", {}))
+                keys |= {entry["key"]} if m.group(1) == "axis" else set(entry.get("changes", {}))
     return keys
 
 
@@ -431,7 +436,7 @@ def diff_design(rs: ResultSet, *, axis: str | None = None, metrics: list[str] | 
 
     For a grid, per axis K (or only ``axis``): its *simple effects* — every pair of K's levels
     (B the later level in the axis) within each combination of the other axes; its *main effect* —
-    the same pairs over each seed's mean across the other axes' combinations (seeds with a diverged
+    the same pairs over each seed's mean across the other axes' combinations (seeds with a non-finite
     run among them are left out); and for each other axis L the K × L interaction
     (:func:`runtime.stats.interaction_test`, seeds as subjects, other axes averaged). One change
     at a time and lists compare each variant with ``base``.

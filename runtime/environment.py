@@ -2,7 +2,7 @@
 
 A run's numbers are a function of (resolved variant, seed, lane width, software, machine). The
 *numerics* fields below are the software and machine part: two environments with the same
-numerics fingerprint are expected to give identical bits, and resume/replay compare them field by
+numerics hash are expected to give identical bits, and resume/replay compare them field by
 field to say what changed. Host name and time are recorded for people, never compared.
 
 XLA:CPU's intra-op thread pool decides bits too (measured, jax 0.10.2): large reductions (a sum
@@ -29,14 +29,14 @@ from pathlib import Path
 
 from compiler.errors import UserError
 
-__all__ = ["capture", "numerics", "fingerprint", "differences", "source_digest", "check_settings", "SettingError",
+__all__ = ["capture", "numerics", "env_hash", "differences", "source_hash", "check_settings", "SettingError",
            "single_threaded_xla", "xla_threads", "usable_cores"]
 
 # CPU features that decide which kernels XLA:CPU emits (and so the rounding of matmuls).
 _ISA_FLAGS = ("sse4_1", "sse4_2", "avx", "avx2", "fma", "f16c", "avx512f", "avx512bw", "avx512dq",
               "avx512vl", "avx512_vnni", "avx512_bf16", "amx_tile", "asimd", "sve")
 
-# jax settings that change the numbers of a run (measured: a tiny study's parameter digests under
+# jax settings that change the numbers of a run (measured: a tiny study's parameter hashes under
 # each): how keys become random bits, the seed itself, float width, matmul precision, and the
 # options XLA compiles with (as XLA_FLAGS). Settings that only raise errors are in _REFUSED; the
 # rest (logging, caches, devices, checks) cannot change a number.
@@ -127,7 +127,7 @@ def _version(dist: str) -> str:
 
 
 @cache
-def source_digest() -> str:
+def source_hash() -> str:
     """SHA-256 (16 hex digits) over lesion's own Python sources: a changed compiler (another
     release, a local edit) can change every run's bits, as a changed jax can."""
     h = hashlib.sha256()
@@ -168,7 +168,7 @@ def capture() -> dict:
         "numpy": _version("numpy"),
         "pyarrow": _version("pyarrow"),
         "lesion": _version("lesion"),
-        "lesion_sources": source_digest(),
+        "lesion_sources": source_hash(),
         "xla_flags": os.environ.get("XLA_FLAGS", ""),
         "jax_threefry_partitionable": bool(jax.config.jax_threefry_partitionable),
         "jax_default_prng_impl": str(jax.config.jax_default_prng_impl),
@@ -191,8 +191,8 @@ def numerics(env: dict) -> dict:
     return {k: env.get(k) for k in _NUMERICS_KEYS}
 
 
-def fingerprint(env: dict) -> str:
-    """Short digest of the numerics fields: equal fingerprints, comparable bits."""
+def env_hash(env: dict) -> str:
+    """Short hash of the numerics fields: equal hashes, comparable bits."""
     text = json.dumps(numerics(env), sort_keys=True, separators=(",", ":"))
     return hashlib.sha256(text.encode()).hexdigest()[:16]
 

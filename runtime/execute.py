@@ -36,10 +36,10 @@ class LaneResult:
     run_id: str
     lane: int
     curves: dict[str, np.ndarray]       # metric -> float32[epochs]
-    diverged_at: int | None             # 1-based epoch, None when the run stayed finite
-    param_digest: str
+    non_finite_epoch: int | None             # 1-based epoch, None when the run stayed finite
+    param_hash: str
     warnings: list[str] = field(default_factory=list)
-    # Only with keep_arrays: "params/<layer>/<name>", "state/<layer>/<name>" (what the digest
+    # Only with keep_arrays: "params/<layer>/<name>", "state/<layer>/<name>" (what the hash
     # covers) and "input/mean", "input/scale", "split/validation" (what using them needs).
     arrays: dict[str, np.ndarray] | None = None
 
@@ -137,7 +137,7 @@ def execute_group(group: Group, dataset, environment: dict,
     arrays too (export); runs never store them."""
     import jax
 
-    from compiler.build import compile_structure, param_digest
+    from compiler.build import compile_structure, param_hash
     from compiler.normalization import diagnose
 
     # Padding copies a real run, so it never adds a non-zero to a knob that is 0 in every run.
@@ -158,7 +158,7 @@ def execute_group(group: Group, dataset, environment: dict,
         if on_epoch is not None:
             jax.block_until_ready(metrics)
             on_epoch(e + 1, program.epochs)
-    per_epoch, (diverged, at), params = jax.device_get((per_epoch, status_fn(carry), params_fn(carry)))
+    per_epoch, (non_finite, at), params = jax.device_get((per_epoch, status_fn(carry), params_fn(carry)))
     run_seconds = time.perf_counter() - t0
 
     names = program.metric_names
@@ -169,8 +169,8 @@ def execute_group(group: Group, dataset, environment: dict,
         lane_params = jax.tree.map(lambda a: a[i], params)
         results.append(LaneResult(
             run_id=run.run_id, lane=i, curves=curves,
-            diverged_at=int(at[i]) + 1 if bool(diverged[i]) else None,
-            param_digest=param_digest(lane_params),
+            non_finite_epoch=int(at[i]) + 1 if bool(non_finite[i]) else None,
+            param_hash=param_hash(lane_params),
             warnings=diagnose(run.variant.spec.normalization.kind, len(run.variant.spec.model.widths), curves),
             arrays=_lane_arrays(lane_params, carry, i) if keep_arrays else None,
         ))

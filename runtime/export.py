@@ -1,8 +1,8 @@
 """``lesion export``: take the trained arrays of one stored run out of lesion, as a ``.npz`` file.
 
-A result set stores no weights, only their digest; the arrays are recovered by re-executing the
+A result set stores no weights, only their hash; the arrays are recovered by re-executing the
 run with :func:`runtime.replay.replay` (fresh compile, recorded lane width) and are written only
-when the re-executed parameter digest equals the stored ``param_digest`` — so the file holds
+when the re-executed parameter hash equals the stored ``param_hash`` — so the file holds
 exactly the network the stored numbers describe, or nothing is written.
 
 File layout (plain arrays, loadable with ``numpy.load(path)``, no pickle):
@@ -12,10 +12,10 @@ File layout (plain arrays, loadable with ``numpy.load(path)``, no pickle):
 - ``state/<layer>/<name>``: running statistics (``mean``, ``var`` of batch normalization);
 - ``input/mean``, ``input/scale``: the run's standardization of the inputs, ``(x − mean) / scale``;
 - ``split/validation``: the row indices of the run's validation split (into the data as loaded);
-- ``lesion/run_id``, ``lesion/study_hash``, ``lesion/param_digest``, ``lesion/variant``: where it
+- ``lesion/run_id``, ``lesion/study_hash``, ``lesion/param_hash``, ``lesion/variant``: where it
   came from (``variant``: the resolved variant's canonical JSON).
 
-The ``params/`` and ``state/`` arrays are what ``param_digest`` covers; the README defines it.
+The ``params/`` and ``state/`` arrays are what ``param_hash`` covers; the README defines it.
 """
 
 from __future__ import annotations
@@ -40,7 +40,7 @@ class ExportRefused(ResultSetError):
 class Exported:
     path: Path
     run_id: str
-    param_digest: str
+    param_hash: str
     arrays: int
     status: str
 
@@ -70,16 +70,16 @@ def export_run(result: str | Path, run: str, out: str | Path, on_group=None) -> 
     [row] = report.rows
     cols = rs.runs.to_pydict()
     i = cols["run_id"].index(run_id)
-    stored = cols["param_digest"][i]
-    if row.digest != "identical":
+    stored = cols["param_hash"][i]
+    if row.param_hash != "identical":
         cause = ("the environment differs from the recorded one: " + "; ".join(report.environment_changes)
                  if report.environment_changes else "in the recorded environment: the result set or the code changed")
-        raise ExportRefused(f"run {run_id}: the re-executed parameters do not match the stored digest "
+        raise ExportRefused(f"run {run_id}: the re-executed parameters do not match the stored hash "
                             f"{stored[:16]}… ({cause}); nothing written")
     arrays = dict(report.arrays[run_id])
     variant = next(v for v in _variants(rs) if v.hash == cols["variant_hash"][i])
     arrays.update({"lesion/run_id": np.array(run_id), "lesion/study_hash": np.array(rs.study_hash),
-                   "lesion/param_digest": np.array(stored),
+                   "lesion/param_hash": np.array(stored),
                    "lesion/variant": np.array(canonical_json(variant.spec.model_dump(mode="json")).decode())})
     _atomic_savez(out, arrays)
     return Exported(out, run_id, stored, len(arrays), cols["status"][i])

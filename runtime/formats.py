@@ -59,7 +59,7 @@ class Fit:
 
     Columns whose cells are all empty go first, then ``drop`` in its order, then every other column
     not in ``keep`` from the right; ``wrap`` columns break at spaces (labels such as
-    ``a=1, b=2`` break between their parts) instead of being dropped.
+    ``none · 0.15`` break between their parts) instead of being dropped.
     """
 
     keep: tuple[str, ...] = ()

@@ -57,7 +57,7 @@ def lane_bytes(variant: Variant, features: int, outputs: int) -> int:
     params = sum(a * b + 3 * b for a, b in zip(widths[:-1], widths[1:]))
     batch = spec.training.batch_size
     activations = batch * sum(widths) * 4
-    if spec.regularization.dropout.kind == "connect":
+    if spec.regularization.dropout.kind == "dropconnect":
         activations += batch * params  # a weight mask per example
     return 4 * (5 * params + activations)
 

@@ -17,8 +17,8 @@ What is drawn:
 - ``curves``: per epoch, the mean over a variant's ok runs, and a band of ±1 sample standard
   deviation (ddof = 1) across those runs; train metrics dashed, validation metrics solid, one
   colour and marker per variant; a log axis when a panel's values span more than
-  :data:`LOG_SPAN` (ratio of largest to smallest); each diverged run as a × at the top of the
-  panel at its ``diverged_at`` epoch (its values there are unbounded, so they are not drawn). A
+  :data:`LOG_SPAN` (ratio of largest to smallest); each non-finite run as a × at the top of the
+  panel at its ``non_finite_epoch`` epoch (its values there are unbounded, so they are not drawn). A
   grid of more than :data:`FACET_OVER` variants becomes small multiples (:func:`_facets`): nine
   lines in one panel cannot be followed.
 - ``arms``: per variant the final-epoch mean and its 95 % Student t interval
@@ -57,7 +57,7 @@ from matplotlib.patches import Rectangle  # noqa: E402
 from matplotlib.transforms import blended_transform_factory  # noqa: E402
 
 from compiler.errors import UserError  # noqa: E402
-from compiler.labels import BASE_LABEL, format_value, label_parts, variant_label  # noqa: E402
+from compiler.labels import axis_names, format_value, label_parts  # noqa: E402
 from compiler.spec import METRICS  # noqa: E402
 from runtime.show import curve_rows, summary_rows  # noqa: E402
 from runtime.stats import summarize  # noqa: E402
@@ -83,9 +83,6 @@ FACET_OVER = 4
 # Grid colour scale: gaps to the best of 0 … GAP_SCALE half-widths of the 95 % interval (beyond: the palest).
 GAP_SCALE = 4.0
 _LABEL_WIDTH = 28
-# Leaf names that say nothing without their section (``rate`` of what?).
-_GENERIC_LEAVES = {"kind", "rate", "delta", "momentum", "epsilon", "fraction", "value", "values", "size",
-                   "neurons", "depth"}
 
 
 class PlotError(UserError, ValueError):
@@ -93,39 +90,11 @@ class PlotError(UserError, ValueError):
 
 
 # ── labels and titles ───────────────────────────────────────────────────────────────────────────
-def _short_key(key: str, keys: list[str]) -> str:
-    """The shortest dotted suffix of ``key`` that is unique among ``keys`` and says what it is:
-    ``normalization.kind`` → ``normalization``, ``regularization.dropout.rate`` → ``dropout.rate``."""
-    parts = key.split(".")
-    if len(parts) > 1 and parts[-1] == "kind":
-        parts = parts[:-1]
-    others = [k for k in keys if k != key]
-    for n in range(1, len(parts) + 1):
-        suffix = ".".join(parts[-n:])
-        if n == 1 and parts[-1] in _GENERIC_LEAVES and len(parts) > 1:
-            continue
-        if not any(o == suffix or o.endswith("." + suffix) or o.removesuffix(".kind").endswith(suffix)
-                   for o in others):
-            return suffix
-    return key
-
-
 def short_labels(rs: ResultSet) -> dict[str, str]:
-    """Variant label → display label built from its changed keys (shortened, wrapped). A label the
-    user wrote (a listed variant) is kept as written."""
-    cols = rs.runs.to_pydict()
-    changes = {lab: json.loads(ch) for lab, ch in zip(cols["variant_label"], cols["changes"])}
-    keys = list(dict.fromkeys(k for ch in changes.values() for k in ch))
-    short = {k: _short_key(k, keys) for k in keys}
-    out = {}
-    for label, ch in changes.items():
-        if label != variant_label(ch):
-            out[label] = "\n".join(textwrap.wrap(label, _LABEL_WIDTH)) or label
-            continue
-        parts = label_parts(ch, short.__getitem__) or [BASE_LABEL]
-        text = ", ".join(parts)
-        out[label] = text if len(text) <= _LABEL_WIDTH else "\n".join(parts)
-    return out
+    """Variant label → display label: the label, wrapped at spaces (generated labels are short
+    already: a grid cell's values, an axis's short name and value)."""
+    return {label: "\n".join(textwrap.wrap(label, _LABEL_WIDTH)) or label
+            for label in dict.fromkeys(rs.runs.column("variant_label").to_pylist())}
 
 
 def _one_line(label: str, name: str) -> str:
@@ -168,10 +137,10 @@ def _runs_by_variant(rs: ResultSet) -> dict[str, list[dict]]:
     return out
 
 
-def _diverged_text(runs: dict[str, list[dict]]) -> str:
+def _non_finite_text(runs: dict[str, list[dict]]) -> str:
     total = sum(len(r) for r in runs.values())
     bad = sum(1 for rr in runs.values() for r in rr if r["status"] != "ok")
-    return f"{bad} of {total} runs diverged" if bad else f"all {total} runs finished"
+    return f"{bad} of {total} runs non-finite" if bad else f"all {total} runs finished"
 
 
 def _seed_counts(runs: dict[str, list[dict]]) -> str:
@@ -227,7 +196,7 @@ def _facets(rs: ResultSet, labels: list[str], names: dict[str, str]):
     runs = _runs_by_variant(rs)
     changes = {label: json.loads(runs[label][0]["changes"]) for label in labels}
     keys = [a["key"] for a in axes]
-    short = {k: _short_key(k, keys) for k in keys}
+    short = axis_names([(a["key"], a.get("name")) for a in axes])
     panels = [(f"{short[keys[0]]} = {format_value(v)}", [label for label in labels if changes[label].get(keys[0]) == v])
               for v in axes[0]["values"]]
     rest = {label: tuple(json.dumps(changes[label].get(k)) for k in keys[1:]) for label in labels}
@@ -251,7 +220,7 @@ def plot_curves(rs: ResultSet, metrics: list[str] | None = None) -> Figure:
     faceted = len(panels) > 1
     runs = _runs_by_variant(rs)
     ok_ids = {r["run_id"] for rr in runs.values() for r in rr if r["status"] == "ok"}
-    diverged = sum(r["status"] != "ok" for rr in runs.values() for r in rr)
+    non_finite = sum(r["status"] != "ok" for rr in runs.values() for r in rr)
     curves = rs.curves.to_pydict()
     ok_rows: dict[tuple[str, int], list[int]] = {}
     for i, (label, epoch, rid) in enumerate(zip(curves["variant_label"], curves["epoch"], curves["run_id"])):
@@ -288,13 +257,13 @@ def plot_curves(rs: ResultSet, metrics: list[str] | None = None) -> Figure:
                             # On a log axis a band below zero would vanish: stop it near the panel's floor.
                             lo = np.maximum(lo, 0.5 * min(v for v in y if v > 0)) if min(y) > 0 else lo
                             ax.fill_between(x, lo, hi, color=colour, alpha=0.15, linewidth=0)
-                stops = sorted(x["diverged_at"] for x in runs[label] if x["status"] != "ok" and x["diverged_at"])
-                # Just above the data area (diverged values are unbounded and would crush the scale),
+                stops = sorted(x["non_finite_epoch"] for x in runs[label] if x["status"] != "ok" and x["non_finite_epoch"])
+                # Just above the data area (non-finite values are unbounded and would crush the scale),
                 # one row per variant so that runs stopping at the same epoch do not hide each other.
                 row = 1.03 + 0.05 * bad_variants.index(label) if stops else 0.0
                 for epoch in dict.fromkeys(stops):
                     ax.plot([epoch], [row], "x", color=colour, markersize=8, markeredgewidth=2,
-                            transform=top, clip_on=False, gid=f"diverged:{label}:{epoch}")
+                            transform=top, clip_on=False, gid=f"non_finite:{label}:{epoch}")
                     if stops.count(epoch) > 1:
                         ax.annotate(f"×{stops.count(epoch)}", (epoch, row), xycoords=top, xytext=(6, 0),
                                     textcoords="offset points", va="center", fontsize=7.5, color=colour,
@@ -325,7 +294,7 @@ def plot_curves(rs: ResultSet, metrics: list[str] | None = None) -> Figure:
         same = [x for lab in labels if colour_of[lab] == colour_of[label] for x in runs[lab]]
         ok = sum(x["status"] == "ok" for x in same)
         bad = len(same) - ok
-        tail = f" ({ok} ok, {bad} diverged)" if bad else ("" if faceted else f" (n={ok})")
+        tail = f" ({ok} ok, {bad} non-finite)" if bad else ("" if faceted else f" (n={ok})")
         handles.append(Line2D([], [], color=PALETTE[colour_of[label] % len(PALETTE)],
                               marker=MARKERS[colour_of[label] % len(MARKERS)], markersize=4,
                               label=_one_line(label, legend_names[label]) + tail))
@@ -335,13 +304,13 @@ def plot_curves(rs: ResultSet, metrics: list[str] | None = None) -> Figure:
         key.append("dashed = train, solid = validation")
     if _seed_counts(runs) != "one seed per variant":
         key.append("shaded band = ±1 sd across ok seeds")
-    if diverged:
-        key.append("× = a diverged run, at the epoch it stopped")
+    if non_finite:
+        key.append("× = a non-finite run, at the epoch it stopped")
     _legend_below(fig, handles, 3 if not faceted else len(handles), title="   ·   ".join(key) or None)
     one = _seed_counts(runs) == "one seed per variant"
     what = ("lines are single runs (one seed per variant: no spread to show)" if one else
             f"mean over ok seeds with a ±1 sd band; {_seed_counts(runs)}")
-    sub = f"{what}; {_diverged_text(runs)}" + ("; diverged runs left out of the means" if diverged else "")
+    sub = f"{what}; {_non_finite_text(runs)}" + ("; non-finite runs left out of the means" if non_finite else "")
     if faceted:
         sub += f"; one column per {panels[0][0].split(' = ')[0]}"
     _suptitle(fig, _title(rs, "learning curves"), sub)
@@ -372,9 +341,9 @@ def _seed_rows(n: int) -> np.ndarray:
 
 def _arm_tick(name: str, row: dict, is_base: bool, single: bool) -> str:
     notes = ["baseline"] if is_base else []
-    if row["diverged"]:
-        total = row["ok"] + row["diverged"]
-        notes.append(f"all {total} diverged" if not row["ok"] else f"{row['diverged']} of {total} diverged")
+    if row["non_finite"]:
+        total = row["ok"] + row["non_finite"]
+        notes.append(f"all {total} non-finite" if not row["ok"] else f"{row['non_finite']} of {total} non-finite")
     if row["ok"] == 1 and not single:  # when every variant has one seed, the subtitle says so once
         notes.append("n=1")
     return name + (f"\n({', '.join(notes)})" if notes else "")
@@ -430,7 +399,7 @@ def plot_arms(rs: ResultSet, metrics: list[str] | None = None, baseline: str | N
     _legend_below(fig, handles, 4)
     head = metrics[0]
     sub = (f"final-epoch {', '.join(metrics)}, sorted best first by {head}; {_seed_counts(runs)}; "
-           f"{_diverged_text(runs)}")
+           f"{_non_finite_text(runs)}")
     if single:
         sub += "; one seed: no interval (run more seeds)"
     _suptitle(fig, _title(rs, "arms compared"), sub)
@@ -451,12 +420,12 @@ def _grid_axes(rs: ResultSet) -> list[dict]:
 
 def _cell_text(r: dict) -> str:
     if not math.isfinite(r["mean"]):
-        return f"all {r['diverged']}\ndiverged"
+        return f"all {r['non_finite']}\nnon-finite"
     text = f"{r['mean']:.3g}"
     if math.isfinite(r["sd"]):
         text += f"\n±{r['sd']:.2g}"
-    if r["diverged"]:
-        text += f"\n{r['diverged']} diverged"
+    if r["non_finite"]:
+        text += f"\n{r['non_finite']} non-finite"
     return text
 
 
@@ -471,7 +440,7 @@ def _gaps_to_best(rs: ResultSet, metric: str, best: str) -> dict[str, dict]:
         half = (row["ci_high"] - row["ci_low"]) / 2 if row["ci_low"] is not None else math.nan
         diff = row["diff"] if row["diff"] is not None else math.nan
         if not (math.isfinite(diff) and math.isfinite(half)):
-            gap = math.nan  # untested (too few seeds) or diverged: grey, not "far from the best"
+            gap = math.nan  # untested (too few seeds) or non-finite: grey, not "far from the best"
         elif half > 0:
             gap = abs(diff) / half
         else:  # every seed differs by the same amount: decided, not estimated
@@ -542,7 +511,7 @@ def plot_grid(rs: ResultSet, metrics: list[str] | None = None) -> Figure:
     _suptitle(fig, _title(rs, f"final {', '.join(metrics)} over {ax_y['key']} × {ax_x['key']}"),
               f"cells: mean ± sd over ok seeds; colour: distance from the best cell (solid outline) on a fixed "
               f"scale; dashed: no detectable change from the best ('lesion diff --baseline', adjusted); "
-              f"{_seed_counts(runs)}; {_diverged_text(runs)}")
+              f"{_seed_counts(runs)}; {_non_finite_text(runs)}")
     return fig
 
 

@@ -91,7 +91,7 @@ def program_path(group: Group, dataset, zero: frozenset[str], environment: dict)
     from runtime import environment as env
 
     config = {k: repr(v) for k, v in sorted(jax.config.values.items()) if "cache" not in k}
-    parts = [env.fingerprint(environment), config, group.structure, group.lane_width,
+    parts = [env.env_hash(environment), config, group.structure, group.lane_width,
              data_signature(dataset), sorted(zero)]
     digest = hashlib.sha256(json.dumps(parts, sort_keys=True, default=str).encode()).hexdigest()
     return cache_dir() / "programs" / f"{digest}.pkl"

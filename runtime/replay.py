@@ -7,10 +7,10 @@ stored run's variant hash, label and run id must be re-derived from it. The sele
 then re-executed, each at its own recorded lane width, with a fresh compile (never a stored
 program, never one compiled earlier in the process). Every per-epoch metric and every runs-table
 cell the re-execution decides (final and best metrics, status, divergence epoch, epochs, the
-parameter digest, labels, changes, varied-key columns, warnings) is compared: floats by bit
+parameter hash, labels, changes, varied-key columns, warnings) is compared: floats by bit
 pattern, except that any NaN equals any NaN (−0.0 ≠ 0.0). A duplicated run is refused; a run the
 spec derives but the result set lacks is reported as missing; a run whose recorded width
-disagrees with the other runs of its call is reported; stored digests that no longer match the
+disagrees with the other runs of its call is reported; stored hashes that no longer match the
 tables (``runtime.audit``) make the replay not identical even when every number reproduces.
 """
 
@@ -26,7 +26,7 @@ from pathlib import Path
 import numpy as np
 
 from compiler.errors import SpecError, printable
-from compiler.hashing import canonical_json, sha256_hex
+from compiler.hashing import sha256_hex, study_json
 from compiler.hashing import run_id as make_run_id
 from compiler.loader import load_text
 from runtime import environment
@@ -54,7 +54,7 @@ class ReplayRow:
     first_metric: str | None = None
     max_abs: float = 0.0
     max_rel: float = 0.0
-    digest: str = "identical"          # or "differs"
+    param_hash: str = "identical"      # or "differs"
     cells: list[str] = field(default_factory=list)   # runs-table columns that differ
 
     def as_dict(self) -> dict:
@@ -68,7 +68,7 @@ class ReplayReport:
     environment_changes: list[str] = field(default_factory=list)
     warnings: list[str] = field(default_factory=list)   # runtime.audit: missing runs, edits
     notes: list[str] = field(default_factory=list)
-    edited: bool = False               # the stored digests no longer match the tables
+    edited: bool = False               # the stored hashes no longer match the tables
     arrays: dict[str, dict] = field(default_factory=dict)  # run id -> trained arrays (keep_arrays)
 
     @property
@@ -94,7 +94,7 @@ def _verify(rs):
         loaded = load_text(meta["spec_source"], meta["spec_path"] or "stored spec")
     except SpecError as err:
         raise ReplayRefused(f"{rs.path}: the stored spec source no longer loads: {err.problems[0].render()}") from None
-    if canonical_json(loaded.spec.model_dump(mode="json")).decode() != canon or loaded.study_hash != rs.study_hash:
+    if study_json(loaded.spec).decode() != canon or loaded.study_hash != rs.study_hash:
         raise ReplayRefused(f"{rs.path}: the stored spec source and canonical JSON disagree "
                             f"(source hashes to {loaded.study_hash[:12]}, stored {rs.study_hash[:12]}); refusing")
     by_hash = {v.hash: v for v in loaded.variants}
@@ -127,7 +127,7 @@ def _select(cols, run: str | None, variant: str | None) -> list[int]:
 # Runs-table cells re-execution does not decide: the inputs replay takes from the record (group,
 # width, position), where and when the run was computed (environment differences are named
 # separately), and clocks. Every other cell is recomputed and compared.
-_NOT_DETERMINED = {"group_id", "lane_width", "lane", "env_fingerprint", "environment",
+_NOT_DETERMINED = {"group_id", "lane_width", "lane", "env_hash", "environment",
                    "compile_seconds", "run_seconds", "finished_at"}
 
 
@@ -186,15 +186,15 @@ def replay(path: str | Path, *, run: str | None = None, variant: str | None = No
     for g in plans:
         d = data[g.group_id]
         for r in g.runs:
-            stored = cols["data_fingerprint"][row_of[r.run_id]]
-            if d.fingerprint != stored:
+            stored = cols["data_hash"][row_of[r.run_id]]
+            if d.data_hash != stored:
                 where = r.variant.spec.data.path if r.variant.spec.data.kind == "file" else "the generated data"
-                raise ReplayRefused(f"{where}: the data changed since the run (SHA-256 now {d.fingerprint}, "
+                raise ReplayRefused(f"{where}: the data changed since the run (SHA-256 now {d.data_hash}, "
                                     f"recorded {stored}); restore the data the run used")
         if on_group:
             on_group(g)
         result = execute_group(g, d, current, reuse=False, keep_arrays=keep_arrays)
-        fresh, _ = group_tables(result, g, rs.study_hash, rs.headline, key_columns, d.fingerprint)
+        fresh, _ = group_tables(result, g, rs.study_hash, rs.headline, key_columns, d.data_hash)
         fresh = fresh.to_pydict()
         for j, lane in enumerate(result.lanes):
             i = row_of[lane.run_id]
@@ -250,8 +250,8 @@ def _compare(lane, cols, i, fresh: dict, curves, sel: list[int], metric_names) -
             row.max_rel = max(row.max_rel, float(np.nanmax(np.where(eq, 0, rel))) if rel.size else 0.0)
     names = [c for c in dict.fromkeys([*fresh, *cols]) if c not in _NOT_DETERMINED]
     row.cells = [c for c in names if not _same(cols[c][i] if c in cols else None, fresh.get(c))]
-    if lane.param_digest != cols["param_digest"][i]:
-        row.digest = "differs"
+    if lane.param_hash != cols["param_hash"][i]:
+        row.param_hash = "differs"
     if first is not None or row.cells:
         row.verdict = "differs"
         if first is not None:

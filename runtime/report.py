@@ -129,10 +129,10 @@ def render_report(rs: ResultSet, baseline: str | None = None) -> str:
         f"<p>{escape(study.get('description') or '(the spec gives no description)')}</p>",
         f"<p>Headline metric <code>{escape(metric)}</code>; {len(rows)} variants × "
         f"{len(set(runs['seed']))} seeds = "
-        f"{len(runs['run_id'])} runs, {sum(s != 'ok' for s in runs['status'])} diverged.</p></section>",
+        f"{len(runs['run_id'])} runs, {sum(s != 'ok' for s in runs['status'])} non-finite.</p></section>",
         '<section id="summary"><h2>Summary</h2>',
         f'<p class="note">Final {escape(metric)} across seeds: mean, sample sd and 95 % t interval; '
-        "diverged runs are counted and left out (as <code>lesion show</code>).</p>",
+        "non-finite runs are counted and left out (as <code>lesion show</code>).</p>",
         _table(rows, SUMMARY_COLUMNS, set(SUMMARY_COLUMNS[1:-1]),
                row_class=lambda r: "base" if r["variant"] == baseline else ""),
         "</section>",

@@ -21,10 +21,11 @@ from typing import Callable
 import numpy as np
 import pyarrow as pa
 
-from compiler.hashing import canonical_json, lookup, variant_payload
+from compiler.hashing import lookup, study_json, variant_payload
 from compiler.spec import METRICS
 from runtime import __version__, environment, execute, guard, programs
 from runtime.execute import GroupResult
+from runtime.migrate import key_column
 from runtime.plan import Group, plan
 from runtime.store import (SEQUENTIAL, STAGING, ResultSet, ResultSetError, column, open_result_set, refuse_link,
                            result_dir, write_results, writer_lock)
@@ -40,7 +41,7 @@ class RunReport:
     planned: int
     computed: int
     reused: int
-    diverged: int
+    non_finite: int
     warnings: list[str]
     groups: int
     compile_seconds: float
@@ -51,7 +52,7 @@ def study_meta(loaded, env: dict) -> dict:
     return {
         "spec_source": loaded.source,
         "spec_path": str(Path(loaded.path).resolve()) if loaded.path else "",
-        "canonical_json": canonical_json(loaded.spec.model_dump(mode="json")).decode(),
+        "canonical_json": study_json(loaded.spec).decode(),
         "study_hash": loaded.study_hash,
         "version": __version__,
         "environment": env,
@@ -68,7 +69,8 @@ def varied_keys(variants) -> list[str]:
 
 
 def typed_key_columns(variants, keys: list[str]) -> dict[str, tuple[pa.DataType, dict]]:
-    """Each varied key's value in every resolved variant, typed when the values share a type."""
+    """Each varied key's value in every resolved variant, typed when the values share a type, by
+    the key's column name (:func:`runtime.migrate.key_column`)."""
     out = {}
     for key in keys:
         values = {v.hash: lookup(variant_payload(v.spec), key) for v in variants}
@@ -84,7 +86,7 @@ def typed_key_columns(variants, keys: list[str]) -> dict[str, tuple[pa.DataType,
         else:
             typ = pa.string()
             values = {h: (None if x is None else json.dumps(x, sort_keys=True)) for h, x in values.items()}
-        out[key] = (typ, values)
+        out[key_column(key)] = (typ, values)
     return out
 
 
@@ -105,10 +107,10 @@ def datasets_for(groups: list[Group], base_dir: Path, cache: dict | None = None)
 
 
 def group_tables(result: GroupResult, group: Group, study_hash: str, headline: str, key_columns: dict,
-                 data_fingerprint: str) -> tuple[pa.Table, pa.Table]:
+                 data_hash: str) -> tuple[pa.Table, pa.Table]:
     """The runs rows and curves rows of one executed group."""
     env_json = json.dumps(result.environment, sort_keys=True)
-    env_fp = environment.fingerprint(result.environment)
+    env_fp = environment.env_hash(result.environment)
     direction = METRICS[headline]
     by_id = {r.run_id: r for r in group.runs}
     finished = datetime.now(timezone.utc).isoformat(timespec="seconds")
@@ -116,11 +118,11 @@ def group_tables(result: GroupResult, group: Group, study_hash: str, headline: s
     cols: dict[str, list] = {k: [] for k in (
         "study_hash", "variant_hash", "run_id", "variant_label", "variant_index", "changes")}
     cols.update({k: [] for k in key_columns})
-    for k in ("seed", "lane_width", "lane", "group_id", "structure", "status", "diverged_at", "epochs"):
+    for k in ("seed", "lane_width", "lane", "group_id", "program", "status", "non_finite_epoch", "epochs"):
         cols[k] = []
     finals = {f"final_{m}": [] for m in result.metric_names}
     best, best_epoch = [], []
-    tail = {k: [] for k in ("param_digest", "data_fingerprint", "env_fingerprint", "environment",
+    tail = {k: [] for k in ("param_hash", "data_hash", "env_hash", "environment",
                             "compile_seconds", "run_seconds", "warnings", "finished_at")}
     curve_cols: dict[str, list] = {"run_id": [], "variant_label": [], "seed": [], "epoch": []}
     curve_metrics: dict[str, list] = {m: [] for m in result.metric_names}
@@ -140,9 +142,9 @@ def group_tables(result: GroupResult, group: Group, study_hash: str, headline: s
         cols["lane_width"].append(result.lane_width)
         cols["lane"].append(lane.lane)
         cols["group_id"].append(result.group_id)
-        cols["structure"].append(group.structure)
-        cols["status"].append("diverged" if lane.diverged_at is not None else "ok")
-        cols["diverged_at"].append(lane.diverged_at)
+        cols["program"].append(group.structure)
+        cols["status"].append("non_finite" if lane.non_finite_epoch is not None else "ok")
+        cols["non_finite_epoch"].append(lane.non_finite_epoch)
         cols["epochs"].append(epochs)
         for m in result.metric_names:
             finals[f"final_{m}"].append(lane.curves[m][-1])
@@ -154,9 +156,9 @@ def group_tables(result: GroupResult, group: Group, study_hash: str, headline: s
             i = int(np.nanargmax(h) if direction == "max" else np.nanargmin(h))
             best.append(h[i])
             best_epoch.append(i + 1)
-        tail["param_digest"].append(lane.param_digest)
-        tail["data_fingerprint"].append(data_fingerprint)
-        tail["env_fingerprint"].append(env_fp)
+        tail["param_hash"].append(lane.param_hash)
+        tail["data_hash"].append(data_hash)
+        tail["env_hash"].append(env_fp)
         tail["environment"].append(env_json)
         tail["compile_seconds"].append(result.compile_seconds)
         tail["run_seconds"].append(result.run_seconds / n)
@@ -168,7 +170,7 @@ def group_tables(result: GroupResult, group: Group, study_hash: str, headline: s
         curve_cols["epoch"].extend(range(1, epochs + 1))
         for m in result.metric_names:
             curve_metrics[m].append(lane.curves[m])
-    int32 = {"variant_index", "lane_width", "lane", "diverged_at", "epochs"}
+    int32 = {"variant_index", "lane_width", "lane", "non_finite_epoch", "epochs"}
     arrays, names = [], []
     for k, vals in cols.items():
         if k in key_columns:
@@ -221,8 +223,8 @@ def _recorded_widths(stored: ResultSet | None, done: set) -> dict[str, int]:
     if stored is None or not done:
         return {}
     found: dict[str, set] = {}
-    cols = stored.runs.select(["run_id", "structure", "lane_width"]).to_pydict()
-    for rid, structure, width in zip(cols["run_id"], cols["structure"], cols["lane_width"]):
+    cols = stored.runs.select(["run_id", "program", "lane_width"]).to_pydict()
+    for rid, structure, width in zip(cols["run_id"], cols["program"], cols["lane_width"]):
         if rid in done:
             found.setdefault(structure, set()).add(width)
     return {s: next(iter(w)) for s, w in found.items() if len(w) == 1}
@@ -235,7 +237,7 @@ def _refuse_other_width(todo: list[Group], widths: dict[str, int], lanes: int | 
     if clash:
         raise ResultSetError(
             f"{where}: runs stored there were computed at lane width {', '.join(map(str, clash))}; --lanes {lanes} "
-            "would compute the rest of their structure at another width (a run's bits depend on it); "
+            "would compute the rest of their program at another width (a run's bits depend on it); "
             + (f"omit --lanes to keep it, or delete {where} to start the fresh computation over" if fresh else
                f"omit --lanes to keep it, or recompute every run with --fresh --lanes {lanes}"))
 
@@ -249,7 +251,7 @@ def _keep_rule(stored: ResultSet | None, meta: dict, sequential: dict | None, wh
         differ = ", ".join(f"{k} {recorded.get(k)} → {sequential.get(k)}" for k in keys
                            if recorded.get(k) != sequential.get(k))
         raise ResultSetError(f"{where}: its seeds were chosen by another stopping rule ({differ}); give the same "
-                             "--margin/--max-seeds/--round/--axis to continue it, or --out another folder")
+                             "--margin/--max-seeds/--round/--axis to continue it, or --results another folder")
     if sequential is not None or recorded is not None:
         meta[SEQUENTIAL] = sequential or recorded
 
@@ -295,7 +297,7 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
     env = environment.capture()
     # Stored runs are reused when they match the environment that will compute the missing ones
     # (an executor's workers, when it says so), not necessarily this process's.
-    env_fp = environment.fingerprint(getattr(executor, "compute_environment", None) or env)
+    env_fp = environment.env_hash(getattr(executor, "compute_environment", None) or env)
     path = result_dir(out, loaded.spec.study.name, loaded.study_hash)
     target = path / STAGING if fresh else path
     meta = study_meta(loaded, env)
@@ -335,7 +337,7 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
         done = set()
         if stored is not None:
             for rid, fp in zip(stored.runs.column("run_id").to_pylist(),
-                               stored.runs.column("env_fingerprint").to_pylist()):
+                               stored.runs.column("env_hash").to_pylist()):
                 if fp == env_fp:
                     done.add(rid)
         # Structures with reused runs keep the width those were computed at.
@@ -355,7 +357,7 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
             progress("plan", groups=len(todo), runs=sum(len(g.runs) for g in todo), planned=planned,
                      estimate=estimate)
         key_columns = typed_key_columns(loaded.variants, varied_keys(loaded.variants))
-        diverged, warnings = 0, []
+        non_finite, warnings = 0, []
         compile_s = run_s = 0.0
         current = stored
         started = time.perf_counter()
@@ -365,9 +367,9 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
             if estimate is not None and preparation[g.group_id] != "reuse":
                 (compiled if preparation[g.group_id] == "compile" else loaded_s).append(result.compile_seconds)
             runs_t, curves_t = group_tables(result, g, loaded.study_hash, headline, key_columns,
-                                            data[g.group_id].fingerprint)
+                                            data[g.group_id].data_hash)
             current = write_results(target, meta, runs_t, curves_t, previous=current)
-            diverged += sum(1 for lane in result.lanes if lane.diverged_at is not None)
+            non_finite += sum(1 for lane in result.lanes if lane.non_finite_epoch is not None)
             warnings += [f"{lane.run_id}: {w}" for lane in result.lanes for w in lane.warnings]
             compile_s += result.compile_seconds
             run_s += result.run_seconds
@@ -386,7 +388,7 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
             write_results(path, meta, current.runs, current.curves, previous=None)
             shutil.rmtree(target)
         computed = sum(len(g.runs) for g in todo)
-        return RunReport(path, planned, computed, planned - computed, diverged, warnings, len(todo),
+        return RunReport(path, planned, computed, planned - computed, non_finite, warnings, len(todo),
                          compile_s, run_s)
 
 

@@ -11,21 +11,26 @@ from __future__ import annotations
 import numpy as np
 
 from runtime.formats import Fit
+from runtime.migrate import key_of
 from runtime.stats import summarize
 from runtime.store import ResultSet
 
 __all__ = ["summary_rows", "curve_rows", "run_rows", "axis_values", "SUMMARY_COLUMNS", "SUMMARY_FIT", "CURVES_FIT",
            "RUNS_FIT"]
 
-SUMMARY_COLUMNS = ["variant", "ok", "diverged", "mean", "sd", "ci_low", "ci_high",
-                   "val_divergence", "val_divergence_sd", "groups", "seconds", "warnings"]
+# mean, sd, ci_low and ci_high are of the row's metric (named in every row: one or several metrics
+# give the same columns); groups: the groups (runs of one program computed in one call) the
+# variant's runs were computed in; execution_seconds: their execution time, compiling left out.
+SUMMARY_COLUMNS = ["variant", "metric", "ok", "non_finite", "mean", "sd", "ci_low", "ci_high",
+                   "val_divergence_mean", "val_divergence_sd", "groups", "execution_seconds", "warnings"]
 # On a narrow terminal the headline's interval outlives the bookkeeping and the second metric;
-# "ok" out of the study's seeds still tells how many diverged.
+# "ok" out of the study's seeds still tells how many were non-finite; the title names one metric.
 SUMMARY_FIT = Fit(keep=("variant", "ok", "mean", "ci_low", "ci_high"),
-                  drop=("groups", "seconds", "val_divergence_sd", "val_divergence", "diverged"), wrap=("variant",))
+                  drop=("metric", "groups", "execution_seconds", "val_divergence_sd", "val_divergence_mean",
+                        "non_finite"), wrap=("variant",))
 CURVES_FIT = Fit(keep=("variant", "epoch"), wrap=("variant",))
 # The seed is also the run id's "-s<seed>"; the metrics' columns are added to keep by the caller.
-RUNS_FIT = Fit(keep=("run_id", "variant", "status"), drop=("seconds", "seed"), wrap=("variant",))
+RUNS_FIT = Fit(keep=("run_id", "variant", "status"), drop=("execution_seconds", "seed"), wrap=("variant",))
 
 
 def _variants(rs: ResultSet) -> list[tuple[int, str]]:
@@ -46,11 +51,11 @@ def summary_rows(rs: ResultSet, metric: str | None = None) -> list[dict]:
         div = summarize([cols["final_val_divergence"][i] for i in ok]) if "final_val_divergence" in cols else None
         warn = sum(1 for i in idx if cols["warnings"][i])
         rows.append({
-            "variant": label, "ok": len(ok), "diverged": len(idx) - len(ok),
+            "variant": label, "metric": metric, "ok": len(ok), "non_finite": len(idx) - len(ok),
             "mean": head.mean, "sd": head.sd, "ci_low": head.ci_low, "ci_high": head.ci_high,
-            "val_divergence": div.mean if div else None, "val_divergence_sd": div.sd if div else None,
+            "val_divergence_mean": div.mean if div else None, "val_divergence_sd": div.sd if div else None,
             "groups": len({cols["group_id"][i] for i in idx}),
-            "seconds": float(sum(cols["run_seconds"][i] for i in idx)),
+            "execution_seconds": float(sum(cols["run_seconds"][i] for i in idx)),
             "warnings": warn or None,
         })
     return rows
@@ -85,14 +90,15 @@ def run_rows(rs: ResultSet, metrics: list[str]) -> tuple[list[dict], list[str]]:
     cols = rs.runs.to_pydict()
     order = sorted(range(len(cols["run_id"])), key=lambda i: (cols["variant_index"][i], cols["seed"][i]))
     rows = [{"run_id": cols["run_id"][i], "variant": cols["variant_label"][i], "seed": cols["seed"][i],
-             "status": cols["status"][i], "diverged_at": cols["diverged_at"][i],
-             **{m: cols[f"final_{m}"][i] for m in metrics}, "seconds": cols["run_seconds"][i]} for i in order]
-    return rows, ["run_id", "variant", "seed", "status", "diverged_at", *metrics, "seconds"]
+             "status": cols["status"][i], "non_finite_epoch": cols["non_finite_epoch"][i],
+             **{m: cols[f"final_{m}"][i] for m in metrics}, "execution_seconds": cols["run_seconds"][i]} for i in order]
+    return rows, ["run_id", "variant", "seed", "status", "non_finite_epoch", *metrics, "execution_seconds"]
 
 
 def axis_values(rs: ResultSet) -> tuple[list[str], dict[str, dict]]:
-    """The varied keys and, per variant label, each key's value: the result set stores one column
-    per varied key, named by its dotted path (no other column name has a dot)."""
-    keys = [c for c in rs.runs.column_names if "." in c]
-    cols = rs.runs.select(["variant_label", *keys]).to_pydict()
-    return keys, {lab: {k: cols[k][i] for k in keys} for i, lab in enumerate(cols["variant_label"])}
+    """The varied dotted keys and, per variant label, each key's value: the result set stores one
+    column per varied key (:func:`runtime.migrate.key_column`: no other column name has ``__``)."""
+    names = [c for c in rs.runs.column_names if "__" in c]
+    cols = rs.runs.select(["variant_label", *names]).to_pydict()
+    keys = [key_of(c) for c in names]
+    return keys, {lab: {key_of(c): cols[c][i] for c in names} for i, lab in enumerate(cols["variant_label"])}

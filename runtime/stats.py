@@ -1,7 +1,7 @@
 """Statistics behind comparing two arms of a study: summaries, paired and Welch tests, multiplicity.
 
 Contract: pure functions of plain numbers (numpy and scipy only). A metric's values arrive per seed;
-a value that is not finite (a diverged run) is excluded from every estimate and counted, never
+a value that is not finite (a non-finite run) is excluded from every estimate and counted, never
 silently dropped. Differences are always B − A.
 
 - :func:`summarize` — mean, sample standard deviation (ddof = 1) and the Student t interval of
@@ -74,7 +74,7 @@ class _AsDict:
 @dataclass(frozen=True)
 class Summary(_AsDict):
     n: int              # values given
-    n_finite: int       # values used (the rest diverged)
+    n_finite: int       # values used (the rest non-finite)
     mean: float
     sd: float           # sample standard deviation, ddof = 1; NaN when n_finite < 2
     ci_low: float
@@ -87,7 +87,7 @@ class Comparison(_AsDict):
     reason: str         # why this test, over which seeds, what was left out
     n_a: int            # values of A used (paired: the number of pairs)
     n_b: int
-    nonfinite_a: int    # values of A that were not finite (diverged runs)
+    nonfinite_a: int    # values of A that were not finite (non-finite runs)
     nonfinite_b: int
     mean_a: float       # over the values used, so diff == mean_b - mean_a
     mean_b: float

@@ -3,14 +3,16 @@
 Layout (``<out>/<study name>-<first 12 hex of the study hash>/``):
 
 - ``runs.parquet``: one row per run (identity, varied keys, lane facts, status, final and best
-  metrics, parameter digest, timings, environment);
+  metrics, parameter hash, timings, environment);
 - ``curves.parquet``: one row per run per epoch with every per-epoch metric;
 - ``.lock``: held (``flock``) by the one process writing the result set.
 
 Every Parquet file carries schema metadata: the spec's source text and path, its canonical JSON,
 the study hash, lesion's version and the writing process's environment (keys ``lesion.*``), and
-two digests of the values as written (:func:`runs_digest`, :func:`curves_digest`), so a reader
-can tell cheaply whether the tables were edited since (:func:`edits`).
+two hashes of the values as written (:func:`runs_hash`, :func:`curves_hash`), so a reader
+can tell cheaply whether the tables were edited since (:func:`edits`), and the result-set format
+(``lesion.format``, :data:`runtime.migrate.FORMAT`): an older result set is read in today's names
+(:mod:`runtime.migrate`), its files untouched.
 
 Writes are atomic: a new file is written beside the old one, fsynced, renamed over it and the
 folder fsynced, so a crash at any moment leaves the previous complete state. ``runs.parquet`` is
@@ -37,10 +39,12 @@ import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
 from compiler.errors import UserError
+from compiler.vocabulary import respell
+from runtime.migrate import FORMAT, migrate
 
 __all__ = ["column", "ResultSet", "ResultSetError", "open_result_set", "result_dir", "write_results", "writer_lock",
-           "META_KEYS", "DIGEST_KEYS", "SEQUENTIAL", "RUNS", "CURVES", "STAGING", "refuse_link", "runs_digest",
-           "curves_digest", "edits"]
+           "META_KEYS", "HASH_KEYS", "SEQUENTIAL", "RUNS", "CURVES", "STAGING", "refuse_link", "runs_hash",
+           "curves_hash", "edits"]
 
 RUNS = "runs.parquet"
 _TMP = ".parquet-tmp"
@@ -49,10 +53,14 @@ CURVES = "curves.parquet"
 STAGING = ".fresh"
 META_KEYS = ("spec_source", "spec_path", "canonical_json", "study_hash", "version", "environment")
 # Optional on reading: result sets written before lesion recorded them have none.
-DIGEST_KEYS = ("runs_digest", "curves_digest")
+HASH_KEYS = ("runs_hash", "curves_hash")
+# Their names in result-set format 1.
+_FORMAT1_HASH_KEYS = ("runs_digest", "curves_digest")
 # Present only on a result set whose seeds were added by a stopping rule (``lesion run
 # --until-decided``): the rule, the looks and the seeds run (JSON), so show and diff use its inference.
 SEQUENTIAL = "sequential"
+# The result-set format; absent on result sets written before lesion recorded it (format 1).
+FORMAT_KEY = "format"
 
 
 _NUMPY = {pa.int32(): np.int32, pa.int64(): np.int64, pa.float32(): np.float32, pa.float64(): np.float64}
@@ -95,15 +103,23 @@ class ResultSet:
     runs: pa.Table
     curves: pa.Table
     meta: dict
+    # The tables as the files hold them, when an older format was migrated on reading: the stored
+    # hashes are of these.
+    stored: tuple[pa.Table, pa.Table] | None = None
 
     @property
     def study_hash(self) -> str:
         return self.meta["study_hash"]
 
     @property
+    def format(self) -> int:
+        return int(self.meta.get(FORMAT_KEY, 1))
+
+    @property
     def tree(self) -> dict:
-        """The stored study as the nested dict of its canonical JSON (defaults filled in)."""
-        return json.loads(self.meta["canonical_json"])
+        """The stored study as the nested dict of its canonical JSON (defaults filled in), in
+        today's words (the stored JSON is the identity form, :mod:`compiler.vocabulary`)."""
+        return respell(json.loads(self.meta["canonical_json"]))[0]
 
     @property
     def headline(self) -> str:
@@ -136,6 +152,7 @@ def _metadata(meta: dict) -> dict[bytes, bytes]:
         out[f"lesion.{key}".encode()] = text.encode()
     if meta.get(SEQUENTIAL) is not None:
         out[f"lesion.{SEQUENTIAL}".encode()] = json.dumps(meta[SEQUENTIAL], sort_keys=True).encode()
+    out[f"lesion.{FORMAT_KEY}".encode()] = str(FORMAT).encode()
     return out
 
 
@@ -145,7 +162,7 @@ def _feed(h, data: bytes) -> None:
     h.update(data)
 
 
-def _table_digest(table: pa.Table, order: list[str], h) -> str:
+def _table_hash(table: pa.Table, order: list[str], h) -> str:
     """SHA-256 over a table's values, not its file's bytes (Parquet encodings vary): rows sorted by
     ``order`` (row order carries no meaning), columns by name; per column its name, its Arrow
     type, its validity bits and its values: numbers little-endian with every NaN as one NaN;
@@ -191,36 +208,41 @@ def _bits(buf: pa.Buffer, offset: int, n: int) -> np.ndarray:
     return np.unpackbits(np.frombuffer(buf, dtype=np.uint8), bitorder="little")[offset:offset + n].astype(bool)
 
 
-def runs_digest(runs: pa.Table, metadata: dict[bytes, bytes]) -> str:
-    """Digest of the runs table's values and of the ``lesion.*`` metadata it is stored with (the
+def runs_hash(runs: pa.Table, metadata: dict[bytes, bytes]) -> str:
+    """Hash of the runs table's values and of the ``lesion.*`` metadata it is stored with (the
     spec, its path, the environment: what a reader trusts beside the numbers)."""
     h = hashlib.sha256()
     for key in META_KEYS:
         _feed(h, metadata.get(f"lesion.{key}".encode(), b""))
     rule = metadata.get(f"lesion.{SEQUENTIAL}".encode())
-    if rule is not None:   # fed only when present: the digests of other result sets stay as they were
+    if rule is not None:   # fed only when present: the hashes of other result sets stay as they were
         _feed(h, rule)
-    return _table_digest(runs, ["run_id"], h)
+    fmt = metadata.get(f"lesion.{FORMAT_KEY}".encode())
+    if fmt is not None:    # likewise
+        _feed(h, fmt)
+    return _table_hash(runs, ["run_id"], h)
 
 
-def curves_digest(curves: pa.Table) -> str:
-    return _table_digest(curves, ["run_id", "epoch"], hashlib.sha256())
+def curves_hash(curves: pa.Table) -> str:
+    return _table_hash(curves, ["run_id", "epoch"], hashlib.sha256())
 
 
 def edits(rs: "ResultSet") -> list[str] | None:
-    """What no longer matches the digests stored when the result set was written: [] when all
-    does, None when it has no digests (written before lesion recorded them). A digest is a check
+    """What no longer matches the hashes stored when the result set was written: [] when all
+    does, None when it has no hashes (written before lesion recorded them). A hash is a check
     of consistency, not a signature: whoever edits the tables can also recompute it."""
-    stored = rs.runs.schema.metadata or {}
-    runs_d, curves_d = (stored.get(f"lesion.{k}".encode()) for k in DIGEST_KEYS)
+    runs, curves = rs.stored or (rs.runs, rs.curves)
+    stored = runs.schema.metadata or {}
+    runs_d, curves_d = (stored.get(f"lesion.{k}".encode(), stored.get(f"lesion.{old}".encode()))
+                        for k, old in zip(HASH_KEYS, _FORMAT1_HASH_KEYS))
     if runs_d is None or curves_d is None:
         return None
-    if runs_digest(rs.runs, stored).encode() != runs_d:
+    if runs_hash(runs, stored).encode() != runs_d:
         # A deleted run also drops its curves on reading: one finding, not two.
         return [f"{rs.path / RUNS}: edited after lesion wrote it (its values or metadata no longer match "
-                "the digest stored with them)"]
-    if curves_digest(rs.curves).encode() != curves_d:
-        return [f"{rs.path / CURVES}: edited after lesion wrote it (its values no longer match the digest "
+                "the hash stored with them)"]
+    if curves_hash(curves).encode() != curves_d:
+        return [f"{rs.path / CURVES}: edited after lesion wrote it (its values no longer match the hash "
                 f"stored in {RUNS})"]
     return []
 
@@ -243,6 +265,14 @@ def _read_meta(schema: pa.Schema, path: Path) -> dict:
             meta[SEQUENTIAL] = json.loads(rule)
         except json.JSONDecodeError as err:
             raise ResultSetError(f"{path}: the recorded stopping rule is not valid JSON ({err})") from None
+    fmt = raw.get(f"lesion.{FORMAT_KEY}".encode())
+    if fmt is not None:
+        if not fmt.isdigit():
+            raise ResultSetError(f"{path}: the recorded format {fmt.decode(errors='replace')!r} is not a number")
+        if int(fmt) > FORMAT:
+            raise ResultSetError(f"{path}: written in result-set format {int(fmt)} by a newer lesion; this lesion "
+                                 f"reads formats 1 to {FORMAT} (upgrade lesion to read it)")
+        meta[FORMAT_KEY] = int(fmt)
     return meta
 
 
@@ -276,7 +306,23 @@ def open_result_set(path: str | Path) -> ResultSet:
     if "run_id" not in curves.column_names:
         raise ResultSetError(f"{path / CURVES}: column 'run_id' is missing (not a lesion curves table)")
     keep = column([r in ids for r in curves.column("run_id").to_pylist()], pa.bool_())
-    return ResultSet(path, runs, curves.filter(keep), meta)
+    curves = curves.filter(keep)
+    fmt = int(meta.get(FORMAT_KEY, 1))
+    if fmt < FORMAT:
+        new_runs, new_curves = migrate(runs, curves, fmt, lambda: _labels(meta))
+        return ResultSet(path, new_runs, new_curves, meta, stored=(runs, curves))
+    return ResultSet(path, runs, curves, meta)
+
+
+def _labels(meta: dict) -> dict[str, str] | None:
+    """{variant hash: label} as the stored spec derives them today; None when it no longer loads."""
+    from compiler.errors import SpecError
+    from compiler.loader import load_text
+    try:
+        loaded = load_text(meta["spec_source"], meta["spec_path"] or "stored spec")
+    except SpecError:
+        return None
+    return {v.hash: v.label for v in loaded.variants}
 
 
 # Errors of the disk or the folder, not of lesion: reported as a ResultSetError (exit 2).
@@ -350,18 +396,18 @@ def write_results(path: Path, meta: dict, runs: pa.Table, curves: pa.Table, *,
     md = _metadata(meta)
     all_curves = _concat(old_curves, curves)
     all_runs = _concat(old_runs, runs)
-    md[b"lesion.runs_digest"] = runs_digest(all_runs, md).encode()
-    md[b"lesion.curves_digest"] = curves_digest(all_curves).encode()
+    md[b"lesion.runs_hash"] = runs_hash(all_runs, md).encode()
+    md[b"lesion.curves_hash"] = curves_hash(all_curves).encode()
     all_curves = all_curves.replace_schema_metadata(md)
     all_runs = all_runs.replace_schema_metadata(md)
     _atomic_write(all_curves, path / CURVES)
     _atomic_write(all_runs, path / RUNS)
-    return ResultSet(path, all_runs, all_curves, {**meta})
+    return ResultSet(path, all_runs, all_curves, {**meta, FORMAT_KEY: FORMAT})
 
 
 def refuse_link(path: Path) -> None:
     """Refuse a result-set path that is a symbolic link: writing through it would put files
-    outside ``--out``, or overwrite whatever it points to."""
+    outside ``--results``, or overwrite whatever it points to."""
     try:
         st = os.lstat(path)
     except FileNotFoundError:
@@ -370,7 +416,7 @@ def refuse_link(path: Path) -> None:
         raise ResultSetError(f"{path}: cannot inspect ({err.strerror or err})") from None
     if stat.S_ISLNK(st.st_mode):
         raise ResultSetError(f"{path}: is a symbolic link; lesion writes a result set only as a real folder "
-                             "under --out (remove the link or choose another --out)")
+                             "under --results (remove the link or choose another --results)")
 
 
 class writer_lock:
@@ -401,7 +447,7 @@ class writer_lock:
                 raise ResultSetError(f"{lock}: is a symbolic link; refusing to write through it "
                                      "(remove it: lesion creates its own lock file)") from None
             raise ResultSetError(f"{self.path}: cannot create the result set folder or its lock "
-                                 f"({err.strerror or err}); choose a writable --out") from None
+                                 f"({err.strerror or err}); choose a writable --results") from None
         self.fd = fd
         st = os.fstat(fd)
         if not stat.S_ISREG(st.st_mode) or st.st_nlink != 1:

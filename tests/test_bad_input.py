@@ -56,7 +56,7 @@ def test_a_fifo_named_as_the_spec_is_refused_without_waiting_for_a_writer(tmp_pa
     # POSIX open(2): opening a FIFO read-only blocks until a writer opens it; none ever will here.
     fifo = tmp_path / "study.toml"
     os.mkfifo(fifo)
-    args = [command, str(fifo)] + (["--out", str(tmp_path / "results")] if command == "run" else [])
+    args = [command, str(fifo)] + (["--results", str(tmp_path / "results")] if command == "run" else [])
     try:
         out = subprocess.run([sys.executable, "-m", "runtime.cli", *args], cwd=ROOT, capture_output=True,
                              text=True, timeout=60)
@@ -81,9 +81,9 @@ def test_an_unreadable_file(tmp_path):
 @pytest.mark.parametrize("case", ["deeply_nested_arrays", "deep_table_header", "utf16_file", "latin1_file",
                                   "kind_os_system"])
 def test_run_refuses_a_bad_spec_before_importing_jax(case, tmp_path):
-    # `lesion run` loads the spec first: the same located problem, and nothing written under --out.
+    # `lesion run` loads the spec first: the same located problem, and nothing written under --results.
     rel = f"tests/fixtures/bad_specs/{case}.toml"
-    out = _lesion("run", rel, "--out", str(tmp_path / "results"), "--quiet")
+    out = _lesion("run", rel, "--results", str(tmp_path / "results"), "--quiet")
     _refused(out, rel, "")
     assert not (tmp_path / "results").exists()
 
@@ -111,7 +111,7 @@ def test_symlinked_data_leading_out_of_the_spec_folder_is_refused(tmp_path):
     spec = study / "s.toml"
     spec.write_text(_DATA_SPEC.format(path="hives.csv"))
     _refused(_lesion("check", str(spec)), f"{spec}:5", "symbolic link leads out of the spec's folder")
-    out = _lesion("run", str(spec), "--out", str(tmp_path / "results"), "--quiet")
+    out = _lesion("run", str(spec), "--results", str(tmp_path / "results"), "--quiet")
     _refused(out, f"{spec}:5", "symbolic link")
     assert not (tmp_path / "results").exists()
     # a link that stays inside the folder is an ordinary file of the spec's
@@ -126,7 +126,7 @@ def test_symlinked_data_leading_out_of_the_spec_folder_is_refused(tmp_path):
 def test_run_refuses_a_data_mistake_before_creating_the_result_folder(case, tmp_path):
     # Before: the spec passed, `run` failed at the data without file:line and left results/<name>/.lock.
     rel = f"tests/fixtures/bad_specs/{case}.toml"
-    _refused(_lesion("run", rel, "--out", str(tmp_path / "results"), "--quiet"), rel, "")
+    _refused(_lesion("run", rel, "--results", str(tmp_path / "results"), "--quiet"), rel, "")
     assert not (tmp_path / "results").exists()
 
 

@@ -75,9 +75,9 @@ def test_check_json_form():
     assert report["study_hash"] == study_hash(study.spec)
     assert report["result_set"] == f"kiln-drift-{report['study_hash'][:12]}"
     assert report["runs"] == len(report["variants"]) * 4 == 16
-    assert report["variants"][1] == {"label": "divergence.kind=huber", "changes": {"divergence.kind": "huber"},
+    assert report["variants"][1] == {"label": "divergence huber", "changes": {"divergence.kind": "huber"},
                                      "variant_hash": study.variants[1].hash,
-                                     "structure": study.variants[1].structure, "seeds": [11, 12, 13, 14]}
+                                     "program": study.variants[1].structure, "seeds": [11, 12, 13, 14]}
 
 
 def test_check_and_schema_do_not_import_jax():
@@ -107,9 +107,9 @@ def test_labels_with_newlines_or_bidi_controls_are_escaped_in_check(tmp_path):
     # raw, a label could pose as another one or spill over lines.
     spec = tmp_path / "labels.toml"
     spec.write_text('[study]\nname = "labels"\nseeds = 2\n[ablation]\nmode = "list"\n'
-                    '[[ablation.variant]]\nlabel = "fast\\u202eevil"\nset = { "optimizer.learning_rate" = 0.2 }\n'
+                    '[[ablation.variant]]\nlabel = "fast\\u202eevil"\nchanges = { "optimizer.learning_rate" = 0.2 }\n'
                     '[[ablation.variant]]\nlabel = "two\\nlines\\u001b[31m\\u2066"\n'
-                    'set = { "optimizer.learning_rate" = 0.01 }\n')
+                    'changes = { "optimizer.learning_rate" = 0.01 }\n')
     code, out, _ = _run(["check", str(spec)], subprocess_run=True)
     assert code == 0
     assert not {"\u202e", "\u2066", "\x1b"} & set(out)

@@ -75,7 +75,7 @@ _axis = st.fixed_dictionaries({"key": st.one_of(st.sampled_from([x for x in LITE
 _ablation = st.fixed_dictionaries({}, optional={
     "mode": st.one_of(st.sampled_from(["grid", "one_at_a_time", "list"]), _strings),
     "axis": st.lists(_axis, max_size=3),
-    "variant": st.lists(st.fixed_dictionaries({"label": _strings, "set": st.dictionaries(_strings, _values, max_size=3)}),
+    "variant": st.lists(st.fixed_dictionaries({"label": _strings, "changes": st.dictionaries(_strings, _values, max_size=3)}),
                         max_size=3),
     "include_base": _values,
 })

@@ -165,4 +165,4 @@ def test_expansion_problems_come_after_fields_are_valid_and_name_the_variant():
     text = ('[study]\nname = "x"\n[data]\nclasses = 3\n'
             '[ablation]\nmode = "one_at_a_time"\n[[ablation.axis]]\nkey = "divergence.kind"\nvalues = ["bce", "kl"]\n')
     (problem,) = _problems(load_text, text, "s.toml")
-    assert problem.startswith("s.toml:9: ablation.axis[0].values[0]: variant 'divergence.kind=bce' is invalid")
+    assert problem.startswith("s.toml:9: ablation.axis[0].values[0]: variant 'divergence bce' (divergence.kind=bce) is invalid")

@@ -91,8 +91,8 @@ def test_identical_studies_have_no_changes_and_all_variants_pair():
     assert spec_diff(a, b) == []
     pairs, only_a, only_b = match_variants(_variants(PARCELS), _variants(PARCELS), [])
     assert [(p.a["label"], p.b["label"], p.by) for p in pairs] == [
-        ("normalization.kind=none", "normalization.kind=none", "payload"),
-        ("normalization.kind=batch", "normalization.kind=batch", "payload"),
+        ("none", "none", "payload"),
+        ("batch", "batch", "payload"),
     ]
     assert only_a == only_b == []
 
@@ -125,12 +125,11 @@ def test_matching_pairs_variants_that_differ_only_in_the_changed_key():
     pairs, only_a, only_b = match_variants(a, b, [c.key for c in changes])
     # default dropout rate is 0.0, so A's arms are B's dropout-0.0 arms at the new learning rate
     assert [(p.a["label"], p.b["label"], p.by) for p in pairs] == [
-        ("normalization.kind=none", "normalization.kind=none, regularization.dropout.rate=0.0", "payload"),
-        ("normalization.kind=batch", "normalization.kind=batch, regularization.dropout.rate=0.0", "payload"),
+        ("none", "none · 0.0", "payload"),
+        ("batch", "batch · 0.0", "payload"),
     ]
     assert only_a == []
-    assert [v["label"] for v in only_b] == ["normalization.kind=none, regularization.dropout.rate=0.3",
-                                            "normalization.kind=batch, regularization.dropout.rate=0.3"]
+    assert [v["label"] for v in only_b] == ["none · 0.3", "batch · 0.3"]
     # without removing the changed key, nothing pairs by payload (the learning rate differs)
     pairs, only_a, only_b = match_variants(a, b, [])
     assert pairs == [] and len(only_a) == 2 and len(only_b) == 4

@@ -48,7 +48,7 @@ def test_paired_matches_scipy_ttest_rel_over_common_finite_seeds():
     a = dict(reversed(list(ACC_A.items())))   # insertion order must not matter: seeds pair
     b = dict(ACC_B)
     a[8], b[9] = 0.5, 0.9                     # seeds on one side only are left out
-    a[3] = math.nan                           # a diverged run drops its pair
+    a[3] = math.nan                           # a non-finite run drops its pair
     c = compare(a, b)
     seeds = [0, 1, 2, 4, 5, 6, 7]
     xa = [ACC_A[s] for s in seeds]

@@ -86,7 +86,7 @@ def result_set_numbers(path: str, w: dict) -> dict:
 
 
 def lesion(spec: Path, cache: Path, out: Path, fresh: bool, w: dict, extra: tuple[str, ...] = ()) -> dict:
-    cmd = [LESION, "run", str(spec), "--out", str(out), "--quiet", *extra] + (["--fresh"] if fresh else [])
+    cmd = [LESION, "run", str(spec), "--results", str(out), "--quiet", *extra] + (["--fresh"] if fresh else [])
     r = child(cmd, {"LESION_CACHE_DIR": str(cache)})
     r.update(result_set_numbers(r.pop("stdout").strip().splitlines()[-1], w))
     return r
@@ -176,7 +176,7 @@ def big_study_rss(spec: Path, tmp: Path) -> dict:
     assert "seeds = 16" in text
     path = tmp / "small64.toml"
     path.write_text(text)
-    r = child([LESION, "run", str(path), "--out", str(tmp / "out64"), "--quiet"],
+    r = child([LESION, "run", str(path), "--results", str(tmp / "out64"), "--quiet"],
               {"LESION_CACHE_DIR": str(tmp / "cache64")})
     return {"runs": 64, "seconds": r["seconds"], "rss_mib": r["rss_mib"]}
 

@@ -40,14 +40,14 @@ def knobs(v):
     return {k: jnp.float32(x) for k, x in build.knob_vector(v).items()}
 
 
-def _run_fingerprint():
+def _run_bits():
     """Digest of the final parameters and of every metric's bytes for one fixed run."""
     v = variant(normalization={"kind": "batch"}, regularization={"dropout": {"rate": 0.2}},
                 optimizer={"kind": "adam", "learning_rate": 0.01})
     prog, ds = program(v)
     carry, metrics = jax.jit(prog.train)(knobs(v), build.seed_key(5), ds.x, ds.y)
     h = hashlib.sha256(b"".join(np.asarray(metrics[m]).tobytes() for m in prog.metric_names)).hexdigest()
-    return f"{build.param_digest(prog.params(carry))} {h}"
+    return f"{build.param_hash(prog.params(carry))} {h}"
 
 
 # ── contract ────────────────────────────────────────────────────────────────────────────────────
@@ -64,7 +64,7 @@ def test_program_contract(base):
     assert prog.structure == structure_key(v) and prog.epochs == 3
     assert prog.knob_names == tuple(k for k in KNOBS if k in prog.knob_names) and "optimizer.learning_rate" in prog.knob_names
     assert prog.metric_names == ("train_divergence", "train_penalty", "val_divergence", "val_accuracy", "grad_norm",
-                                 "grad_norm_l1", "grad_norm_l2", "weight_norm", "learning_rate")
+                                 "grad_norm_layer1", "grad_norm_layer2", "weight_norm", "learning_rate")
     for name in prog.metric_names:
         assert metrics[name].shape == (3,) and metrics[name].dtype == jnp.float32
         assert np.all(np.isfinite(metrics[name]))
@@ -216,10 +216,10 @@ def test_batch_and_no_normalization_share_dense_weights():
 
 # ── determinism ─────────────────────────────────────────────────────────────────────────────────
 def test_bit_identical_in_one_process_and_across_processes():
-    first = _run_fingerprint()
-    assert _run_fingerprint() == first
+    first = _run_bits()
+    assert _run_bits() == first
     code = (f"import sys; sys.path.insert(0, {str(pathlib.Path(__file__).parent)!r}); "
-            "import test_build; print(test_build._run_fingerprint())")
+            "import test_build; print(test_build._run_bits())")
     out = subprocess.run([sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True, timeout=300)
     assert out.returncode == 0, out.stderr[-2000:]
     assert out.stdout.strip().splitlines()[-1] == first
@@ -228,10 +228,10 @@ def test_bit_identical_in_one_process_and_across_processes():
 def test_param_digest_is_order_free_and_sees_dtype_and_shape():
     tree = {"b": np.zeros(3, np.float32), "a": {"W": np.ones((2, 2), np.float32)}}
     same = {"a": {"W": np.ones((2, 2), np.float32)}, "b": np.zeros(3, np.float32)}
-    assert build.param_digest(tree) == build.param_digest(same)
-    assert build.param_digest(tree) != build.param_digest({**tree, "b": np.zeros(3, np.float64)})
-    assert build.param_digest(tree) != build.param_digest({**tree, "a": {"W": np.ones((4,), np.float32)}})
-    assert len(build.param_digest(tree)) == 64
+    assert build.param_hash(tree) == build.param_hash(same)
+    assert build.param_hash(tree) != build.param_hash({**tree, "b": np.zeros(3, np.float64)})
+    assert build.param_hash(tree) != build.param_hash({**tree, "a": {"W": np.ones((4,), np.float32)}})
+    assert len(build.param_hash(tree)) == 64
 
 
 def test_knob_vector_is_float32_in_knobs_order():
@@ -312,7 +312,7 @@ PROGRESS = {
                                  "momentum": 0.5, "schedule": {"kind": "warmup_cosine", "warmup_epochs": 1}}),
     "scaled-dropout+l2-penalty": dict(regularization={"weight_decay": 0.001, "dropout": {"rate": 0.2, "kind": "scaled"}},
                                       optimizer={"kind": "sgd", "learning_rate": 0.1, "momentum": 0.9}),
-    "dropconnect+decoupled-sgd": dict(regularization={"weight_decay": 0.001, "decoupled": True, "dropout": {"rate": 0.2, "kind": "connect"}},
+    "dropconnect+decoupled-sgd": dict(regularization={"weight_decay": 0.001, "decoupled": True, "dropout": {"rate": 0.2, "kind": "dropconnect"}},
                                       optimizer={"kind": "sgd", "learning_rate": 0.1, "momentum": 0.9}),
     "l2+friedman1+gelu": dict(data={"generator": "friedman1", "features": 5}, divergence={"kind": "l2"},
                               study={"metric": "val_rmse"}, model={"activation": "gelu", "init": "glorot_uniform"},

@@ -30,7 +30,7 @@ def _train(kind: str, zero: bool):
     args = (knobs, build.seed_key(3), ds.x, ds.y)
     draws = str(jax.make_jaxpr(prog.train)(*args)).count("random_bits")
     carry, metrics = jax.jit(prog.train)(*args)
-    return draws, build.param_digest(prog.params(carry)), {m: np.asarray(metrics[m]) for m in prog.metric_names}
+    return draws, build.param_hash(prog.params(carry)), {m: np.asarray(metrics[m]) for m in prog.metric_names}
 
 
 # Srivastava et al. 2014 §4: with retention probability p = 1 (rate 0) every unit is kept and the

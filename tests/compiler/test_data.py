@@ -40,7 +40,7 @@ def test_generators_are_deterministic_typed_and_seeded(generator):
     a = load_data(_synthetic(generator=generator, samples=200, features=6, seed=3), ".")
     b = load_data(_synthetic(generator=generator, samples=200, features=6, seed=3), ".")
     c = load_data(_synthetic(generator=generator, samples=200, features=6, seed=4), ".")
-    assert a.fingerprint == b.fingerprint != c.fingerprint
+    assert a.data_hash == b.data_hash != c.data_hash
     np.testing.assert_array_equal(a.x, b.x)
     assert a.x.dtype == np.float32 and a.x.shape == (200, 6)
     if a.task == "classification":
@@ -106,7 +106,7 @@ def table():
             "label": np.array(["pear", "fig", "apple"] * 4)}
 
 
-def test_csv_parquet_npz_agree_and_fingerprint_the_bytes(tmp_path, table):
+def test_csv_parquet_npz_agree_and_hash_the_bytes(tmp_path, table):
     import pyarrow.csv
     t = pa.table(table)
     pq.write_table(t, tmp_path / "t.parquet")
@@ -114,7 +114,7 @@ def test_csv_parquet_npz_agree_and_fingerprint_the_bytes(tmp_path, table):
     np.savez(tmp_path / "t.npz", a=table["a"], b=table["b"], label=np.unique(table["label"], return_inverse=True)[1])
     loaded = {ext: load_data(_file(f"t.{ext}", target="label"), tmp_path) for ext in ("parquet", "csv", "npz")}
     for ext, d in loaded.items():
-        assert d.fingerprint == hashlib.sha256((tmp_path / f"t.{ext}").read_bytes()).hexdigest()
+        assert d.data_hash == hashlib.sha256((tmp_path / f"t.{ext}").read_bytes()).hexdigest()
         np.testing.assert_allclose(d.x, np.stack([table["a"], table["b"]], 1).astype(np.float32), rtol=1e-6)
         assert d.classes == 3 and d.y.dtype == np.int32
         # labels in sorted order: apple 0, fig 1, pear 2

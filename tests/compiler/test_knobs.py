@@ -39,7 +39,7 @@ BASES = {
         "model": {"hidden": [4]},
         "divergence": {"kind": "huber", "delta": 0.05},
         "normalization": {"kind": "layer", "epsilon": 1e-4},
-        "regularization": {"dropout": {"kind": "connect", "rate": 0.2}},
+        "regularization": {"dropout": {"kind": "dropconnect", "rate": 0.2}},
         "optimizer": {"kind": "adam", "learning_rate": 0.01, "b1": 0.8, "b2": 0.99, "eps": 1e-7,
                       "schedule": {"kind": "cosine", "final_fraction": 0.1}},
         "training": {"epochs": 2, "batch_size": 16},

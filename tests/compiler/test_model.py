@@ -78,7 +78,7 @@ def test_weights_are_paired_across_normalization_and_dropout():
     # Same key and shapes: identical W whatever the normalization (paired comparisons)
     a, _ = _net(norm="none").init(jax.random.key(7), 4)
     b, _ = _net(norm="batch").init(jax.random.key(7), 4)
-    c, _ = model.mlp((6, 5), 3, "relu", "he_normal", normalization.layer(), regularization.connect(0.3)).init(jax.random.key(7), 4)
+    c, _ = model.mlp((6, 5), 3, "relu", "he_normal", normalization.layer(), regularization.dropconnect(0.3)).init(jax.random.key(7), 4)
     for layer in a:
         np.testing.assert_array_equal(a[layer]["W"], b[layer]["W"])
         np.testing.assert_array_equal(a[layer]["W"], c[layer]["W"])

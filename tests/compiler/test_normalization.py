@@ -186,9 +186,9 @@ def test_shared_shapes_dtype_jit_and_both_modes(kind):
 def test_diagnose_names_the_batch_normalized_layer_whose_gradient_collapsed():
     # lesion's own rule: a layer's gradient norm below BN_COLLAPSE_RATIO of the output layer's
     out = np.array([1.0, 1.0, 1.0], np.float32)
-    curves = {"grad_norm_l1": np.array([0.5, 1e-6, 1e-7], np.float32),
-              "grad_norm_l2": np.array([0.5, 0.4, 0.3], np.float32), "grad_norm_l3": out}
+    curves = {"grad_norm_layer1": np.array([0.5, 1e-6, 1e-7], np.float32),
+              "grad_norm_layer2": np.array([0.5, 0.4, 0.3], np.float32), "grad_norm_layer3": out}
     found = normalization.diagnose("batch", 2, curves)
     assert len(found) == 1 and found[0].startswith("batch-normalized layer l1: gradient collapsed from epoch 2 ")
     assert normalization.diagnose("layer", 2, curves) == [] and normalization.diagnose("none", 2, curves) == []
-    assert normalization.diagnose("batch", 2, {**curves, "grad_norm_l1": curves["grad_norm_l2"]}) == []
+    assert normalization.diagnose("batch", 2, {**curves, "grad_norm_layer1": curves["grad_norm_layer2"]}) == []

@@ -79,7 +79,7 @@ def test_dropconnect_masks_weights_per_example():
     rng = np.random.default_rng(2)
     w = jnp.asarray(rng.uniform(1, 2, (3, 400)), jnp.float32)
     x = jnp.asarray(np.tile([0.0, 1.0, 0.0], (64, 1)), jnp.float32)
-    drop = regularization.connect(0.25)
+    drop = regularization.dropconnect(0.25)
     u = np.asarray(drop.dense(jax.random.key(3), x, w, True))
     row = np.asarray(w)[1]
     assert np.all((u == 0) | (u == row))

@@ -62,10 +62,10 @@ mode = "list"
 include_base = true
 [[ablation.variant]]
 label = "stalled"
-set = { "optimizer.learning_rate" = 0.0005 }
+changes = { "optimizer.learning_rate" = 0.0005 }
 [[ablation.variant]]
 label = "light"
-set = { "regularization.dropout.rate" = 0.02 }
+changes = { "regularization.dropout.rate" = 0.02 }
 """
 
 

@@ -45,7 +45,7 @@ def _assert_same_bits(a, b):
     ra, ca = _by_run(a)
     rb, cb = _by_run(b)
     assert ra.column("run_id").to_pylist() == rb.column("run_id").to_pylist()
-    assert ra.column("param_digest").to_pylist() == rb.column("param_digest").to_pylist()
+    assert ra.column("param_hash").to_pylist() == rb.column("param_hash").to_pylist()
     assert ra.column("lane_width").to_pylist() == rb.column("lane_width").to_pylist()
     metrics = [c for c in ca.column_names if c not in ("run_id", "variant_label", "seed", "epoch")]
     assert metrics
@@ -78,10 +78,10 @@ def test_runs_record_the_workers_environment(on_cluster, cluster):
     _, client = cluster
     _, _, there, _ = on_cluster
     workers = client.run(runtime.cluster.worker_environment)
-    recorded = {environment.fingerprint(json.loads(e))
+    recorded = {environment.env_hash(json.loads(e))
                 for e in there.runs.column("environment").to_pylist()}
-    assert recorded == {environment.fingerprint(e) for e in workers.values()}
-    assert set(there.runs.column("env_fingerprint").to_pylist()) == recorded
+    assert recorded == {environment.env_hash(e) for e in workers.values()}
+    assert set(there.runs.column("env_hash").to_pylist()) == recorded
 
 
 def test_resume_on_the_cluster_computes_nothing(on_cluster, cluster):
@@ -165,7 +165,7 @@ def test_cluster_addresses(text, expected):
 @pytest.mark.parametrize("text", ["local", "local:0", "local:two", "nowhere"])
 def test_bad_cluster_address_exits_2_with_one_line(text, tmp_path, tiny_spec):
     out = CliRunner().invoke(app, ["run", str(tiny_spec(tmp_path)), "--cluster", text, "--quiet",
-                                   "--out", str(tmp_path / "r")])
+                                   "--results", str(tmp_path / "r")])
     assert out.exit_code == 2, out.output
     lines = out.stderr.strip().splitlines()
     assert len(lines) == 1 and "local:N" in lines[0] and "tcp://HOST:PORT" in lines[0]
@@ -198,7 +198,7 @@ def test_cli_local_cluster_matches_in_process(tmp_path, tiny_spec, on_cluster):
     _, here, _, _ = on_cluster
     spec = tiny_spec(tmp_path, "spread", seeds=3, epochs=4, rates="[0.03, 0.3]")
     out = CliRunner().invoke(app, ["run", str(spec), "--cluster", "local:2", "--lanes", "2", "--quiet",
-                                   "--out", str(tmp_path / "r")])
+                                   "--results", str(tmp_path / "r")])
     assert out.exit_code == 0, out.output
     path = out.stdout.strip().splitlines()[-1]
     _assert_same_bits(here, open_result_set(path))

@@ -68,8 +68,7 @@ def test_mismatched_studies_give_a_readable_spec_diff(pair, tmp_path, tiny_spec)
     # each A variant finds its weight_decay=0.0 counterpart by configuration; the 0.01 arms are B-only
     assert len(report.rows) == 2 and len(report.only_b) == 2 and report.only_a == []
     assert {r["variant_b"] for r in report.rows} == {
-        "optimizer.learning_rate=0.05, regularization.weight_decay=0.0",
-        "optimizer.learning_rate=0.2, regularization.weight_decay=0.0"}
+        "0.05 · 0.0", "0.2 · 0.0"}
 
 
 def test_different_data_is_shown_and_variants_still_pair(pair, tmp_path, tiny_spec):
@@ -97,8 +96,11 @@ def grid(tmp_path_factory, tiny_spec):
 
 
 def _final(rs, lr, wd, metric="val_accuracy"):
+    from runtime.migrate import key_column
+
     cols = rs.runs.to_pydict()
-    return {s: v for s, a, b, v in zip(cols["seed"], cols[LR], cols[WD], cols[f"final_{metric}"])
+    lrs, wds = cols[key_column(LR)], cols[key_column(WD)]
+    return {s: v for s, a, b, v in zip(cols["seed"], lrs, wds, cols[f"final_{metric}"])
             if a == lr and b == wd}
 
 
@@ -176,6 +178,6 @@ def test_base_names_the_grid_cell_equal_to_the_base_configuration():
 
     # specs/cold-chain.toml's base is batch normalization without dropout: grid cell 3.
     study = load_study(Path(__file__).resolve().parents[2] / "specs" / "cold-chain.toml")
-    assert study.variants[3].label == "normalization.kind=batch, regularization.dropout.rate=0.0"
+    assert study.variants[3].label == "batch · 0.0"
     assert resolve_variant(study, "base") == 3
     assert resolve_variant(study, "batch, dropout.rate=0.0") == 3

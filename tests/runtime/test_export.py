@@ -1,5 +1,5 @@
 """lesion export: the written arrays are the stored network, checked outside lesion's code (plain
-numpy recomputes the README's param_digest and the validation accuracy); refusals write nothing."""
+numpy recomputes the README's param_hash and the validation accuracy); refusals write nothing."""
 
 import hashlib
 
@@ -60,7 +60,7 @@ def _export(path, run, out):
 
 
 def _readme_digest(arrays: dict) -> str:
-    # README "runs.parquet", param_digest: for each array under params/ and state/, in sorted
+    # README "runs.parquet", param_hash: for each array under params/ and state/, in sorted
     # order of its key path written ['params']['l1']['W'], SHA-256 is fed
     # "<key path>|<numpy dtype.str>|<shape as a Python tuple>|" and then the array's raw bytes.
     h = hashlib.sha256()
@@ -99,7 +99,7 @@ def test_exported_arrays_have_the_stored_digest_and_reproduce_the_validation_acc
         arrays = {k: archive[k] for k in archive.files}
     assert str(arrays["lesion/run_id"]) == row.run_id
     assert {"params/l1/W", "params/l1/gamma", "state/l1/mean", "state/l2/var", "params/l3/b"} <= set(arrays)
-    assert _readme_digest(arrays) == row.param_digest
+    assert _readme_digest(arrays) == row.param_hash
     val = arrays["split/validation"]
     assert len(val) == 50 and len(set(val.tolist())) == 50
     accuracy = np.mean(_predict(arrays, x[val]) == label[val])
@@ -126,9 +126,9 @@ def test_a_stored_digest_that_differs_is_refused_and_nothing_written(study):
     copy = tmp / "altered"
     copy.mkdir()
     table = pq.read_table(path / "runs.parquet")
-    digests = table.column("param_digest").to_pylist()
+    digests = table.column("param_hash").to_pylist()
     digests[0] = "0" * 64
-    table = table.set_column(table.column_names.index("param_digest"), "param_digest", pa.array(digests))
+    table = table.set_column(table.column_names.index("param_hash"), "param_hash", pa.array(digests))
     pq.write_table(table, copy / "runs.parquet")
     (copy / "curves.parquet").write_bytes((path / "curves.parquet").read_bytes())
     out = tmp / "refused.npz"
@@ -136,6 +136,6 @@ def test_a_stored_digest_that_differs_is_refused_and_nothing_written(study):
     assert result.exit_code == 2, result.output
     # the progress line, then the refusal as one line
     last = result.stderr.strip().splitlines()[-1]
-    assert "do not match the stored digest" in last and last.endswith("nothing written")
+    assert "do not match the stored hash" in last and last.endswith("nothing written")
     assert "Traceback" not in result.output
     assert not out.exists()

@@ -33,13 +33,13 @@ def _spec(tmp: Path, tiny_spec) -> Path:
 
 
 def _start(spec: Path, out: Path, *extra: str) -> subprocess.Popen:
-    return subprocess.Popen([sys.executable, "-m", "runtime.cli", "run", str(spec), "--out", str(out),
+    return subprocess.Popen([sys.executable, "-m", "runtime.cli", "run", str(spec), "--results", str(out),
                              "--lanes", "1", *extra],
                             cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
 
 
 def _state(folder: Path) -> dict[str, tuple[str, str]]:
-    """run id -> (finished_at, param_digest) of what is stored; asserts the set is whole."""
+    """run id -> (finished_at, param_hash) of what is stored; asserts the set is whole."""
     if not (folder / RUNS).exists():
         # Curves are written before runs: a kill between the two leaves the first group's curves
         # alone, which must still be whole (every run's every epoch) and are then not yet stored.
@@ -52,7 +52,7 @@ def _state(folder: Path) -> dict[str, tuple[str, str]]:
     assert len(ids) == len(set(ids)), "a run stored twice"
     curve_ids = rs.curves.column("run_id").to_pylist()
     assert all(curve_ids.count(r) == EPOCHS for r in ids), "a run without its full curve"
-    return dict(zip(ids, zip(rs.runs.column("finished_at").to_pylist(), rs.runs.column("param_digest").to_pylist())))
+    return dict(zip(ids, zip(rs.runs.column("finished_at").to_pylist(), rs.runs.column("param_hash").to_pylist())))
 
 
 def _writes_seen(folder: Path, last: float) -> tuple[bool, float]:
@@ -159,7 +159,7 @@ def test_ctrl_c_keeps_finished_groups_and_says_how_to_resume(tmp_path, reference
     assert f"interrupted: finished groups are stored in {folder}" in err
     assert "run the same command again" in err
     assert 1 <= len(kept) < RUNS_TOTAL
-    again = subprocess.run([sys.executable, "-m", "runtime.cli", "run", str(spec), "--out", str(out), "--lanes", "1"],
+    again = subprocess.run([sys.executable, "-m", "runtime.cli", "run", str(spec), "--results", str(out), "--lanes", "1"],
                            cwd=ROOT, capture_output=True, text=True, timeout=600)
     assert again.returncode == 0, again.stderr
     assert f"{RUNS_TOTAL} runs: {RUNS_TOTAL - len(kept)} computed, {len(kept)} already stored" in again.stderr
@@ -190,7 +190,7 @@ def test_two_writers_at_once_store_every_run_once(tmp_path, reference):
 def stored(tmp_path, reference):
     """A complete result set (copied from the reference run's numbers by a fresh in-process run)."""
     spec, _ = reference
-    result = CliRunner().invoke(app, ["run", str(spec), "--out", str(tmp_path / "out"), "--lanes", "1", "--quiet"])
+    result = CliRunner().invoke(app, ["run", str(spec), "--results", str(tmp_path / "out"), "--lanes", "1", "--quiet"])
     assert result.exit_code == 0, result.stderr
     folder = Path(result.stdout.strip().splitlines()[-1])
     return spec, folder, {p.name: p.read_bytes() for p in folder.iterdir() if p.is_file()}
@@ -205,7 +205,7 @@ def test_a_full_disk_is_a_clean_error_and_the_previous_set_is_intact(stored, mon
     spec, folder, before = stored
     module, name = where.rsplit(".", 1)
     monkeypatch.setattr(sys.modules[module] if module in sys.modules else __import__(module), name, _enospc)
-    result = CliRunner().invoke(app, ["run", str(spec), "--out", str(folder.parent), "--lanes", "1", "--quiet", "--fresh"])
+    result = CliRunner().invoke(app, ["run", str(spec), "--results", str(folder.parent), "--lanes", "1", "--quiet", "--fresh"])
     monkeypatch.undo()
     assert result.exit_code == 2, (result.exception, result.stderr)
     (line,) = result.stderr.splitlines()
@@ -219,11 +219,11 @@ def test_a_full_disk_is_a_clean_error_and_the_previous_set_is_intact(stored, mon
 def test_an_unwritable_out_folder_is_a_clean_error(reference):
     spec, _ = reference
     # /sys refuses new folders even to root (EPERM), where a chmod would not stop root.
-    out = subprocess.run([sys.executable, "-m", "runtime.cli", "run", str(spec), "--out", "/sys/lesion-results",
+    out = subprocess.run([sys.executable, "-m", "runtime.cli", "run", str(spec), "--results", "/sys/lesion-results",
                           "--quiet"], cwd=ROOT, capture_output=True, text=True, timeout=300)
     assert out.returncode == 2 and "Traceback" not in out.stderr, out.stderr
     (line,) = out.stderr.splitlines()
-    assert line.startswith("/sys/lesion-results/") and "choose a writable --out" in line, line
+    assert line.startswith("/sys/lesion-results/") and "choose a writable --results" in line, line
 
 
 @pytest.mark.skipif(os.geteuid() == 0, reason="root writes into read-only folders")
@@ -231,7 +231,7 @@ def test_a_read_only_result_set_is_a_clean_error(stored):
     spec, folder, before = stored
     folder.chmod(0o555)
     try:
-        result = CliRunner().invoke(app, ["run", str(spec), "--out", str(folder.parent), "--quiet", "--fresh"])
+        result = CliRunner().invoke(app, ["run", str(spec), "--results", str(folder.parent), "--quiet", "--fresh"])
     finally:
         folder.chmod(0o755)
     assert result.exit_code == 2 and "cannot" in result.stderr
@@ -254,7 +254,7 @@ def _at_terminal(spec: Path, out: Path, *extra: str, python: tuple = ()) -> tupl
     if pid == 0:  # the child: pty.fork made the terminal its controlling one
         os.chdir(ROOT)
         signal.signal(signal.SIGINT, signal.SIG_DFL)  # a foreground job, even if pytest runs in the background
-        os.execv(sys.executable, [sys.executable, *python, "-m", "runtime.cli", "run", str(spec), "--out", str(out),
+        os.execv(sys.executable, [sys.executable, *python, "-m", "runtime.cli", "run", str(spec), "--results", str(out),
                                   "--lanes", "1", *extra])
     return pid, fd
 
@@ -357,7 +357,7 @@ def test_ctrl_c_during_fresh_keeps_the_stored_set_and_says_what_happens(tmp_path
     spec, digests = reference
     out = tmp_path / "out"
     folder = out / load_study(spec).result_set
-    first = subprocess.run([sys.executable, "-m", "runtime.cli", "run", str(spec), "--out", str(out), "--lanes", "1",
+    first = subprocess.run([sys.executable, "-m", "runtime.cli", "run", str(spec), "--results", str(out), "--lanes", "1",
                             "--quiet"], cwd=ROOT, capture_output=True, text=True, timeout=600)
     assert first.returncode == 0, first.stderr
     before = _state(folder)

@@ -1,4 +1,4 @@
-"""Studies on data files: the fingerprint guards replay; degenerate inputs raise the BN warning."""
+"""Studies on data files: the data hash guards replay; degenerate inputs raise the BN warning."""
 
 import numpy as np
 import pyarrow as pa
@@ -61,7 +61,7 @@ def test_changed_or_missing_data_file_is_refused_naming_path_and_digests(tmp_pat
     labels = (x[:, 0] > 0).astype(np.int64)
     spec = _study(tmp_path, "sieve", x, labels)
     report = run_study(load_study(spec), tmp_path / "r")
-    recorded = open_result_set(report.path).runs.column("data_fingerprint")[0].as_py()
+    recorded = open_result_set(report.path).runs.column("data_hash")[0].as_py()
     assert replay(report.path).identical
 
     x[0, 0] += 1.0  # one changed cell
@@ -70,7 +70,7 @@ def test_changed_or_missing_data_file_is_refused_naming_path_and_digests(tmp_pat
         replay(report.path)
     message = str(err.value)
     assert "sieve.parquet" in message and recorded in message
-    current = load_data_fingerprint(spec)
+    current = load_data_hash(spec)
     assert current in message and current != recorded
 
     (tmp_path / "sieve.parquet").unlink()
@@ -78,11 +78,11 @@ def test_changed_or_missing_data_file_is_refused_naming_path_and_digests(tmp_pat
     assert res.exit_code == 2 and "data file not found" in res.stderr and "Traceback" not in res.output
 
 
-def load_data_fingerprint(spec) -> str:
+def load_data_hash(spec) -> str:
     from compiler.data import load_data
 
     loaded = load_study(spec)
-    return load_data(loaded.variants[0].spec, spec.parent).fingerprint
+    return load_data(loaded.variants[0].spec, spec.parent).data_hash
 
 
 def test_batch_norm_gradient_collapse_is_warned_in_the_record_and_on_screen(tmp_path):
@@ -94,9 +94,9 @@ def test_batch_norm_gradient_collapse_is_warned_in_the_record_and_on_screen(tmp_
     x = np.full((160, 3), 2.5, dtype=np.float32)
     labels = rng.integers(0, 2, size=160)
     spec = _study(tmp_path, "flat", x, labels, norm="batch")
-    res = CliRunner().invoke(app, ["run", str(spec), "--out", str(tmp_path / "r")])
+    res = CliRunner().invoke(app, ["run", str(spec), "--results", str(tmp_path / "r")])
     assert res.exit_code == 0, res.output
     assert "warning:" in res.stderr and "batch-normalized layer l1: gradient collapsed from epoch" in res.stderr
     runs = open_result_set(res.stdout.strip().splitlines()[-1]).runs
     assert all("layer l1: gradient collapsed" in w for w in runs.column("warnings").to_pylist())
-    assert runs.column("final_grad_norm_l1").to_pylist() == [0.0, 0.0]
+    assert runs.column("final_grad_norm_layer1").to_pylist() == [0.0, 0.0]

@@ -6,9 +6,9 @@ from runtime.formats import Fit, render
 
 LABELS = [f"normalization.kind={k}, regularization.dropout.rate={r}" for k in ("none", "batch", "layer")
           for r in ("0.0", "0.15", "0.3")]
-COLUMNS = ["variant", "ok", "diverged", "mean", "sd", "ci_low", "ci_high", "val_divergence",
+COLUMNS = ["variant", "ok", "non_finite", "mean", "sd", "ci_low", "ci_high", "val_divergence",
            "val_divergence_sd", "groups", "seconds", "warnings"]
-ROWS = [{"variant": lab, "ok": 5, "diverged": 0, "mean": 0.9873, "sd": 0.007226, "ci_low": 0.9784,
+ROWS = [{"variant": lab, "ok": 5, "non_finite": 0, "mean": 0.9873, "sd": 0.007226, "ci_low": 0.9784,
          "ci_high": 0.9963, "val_divergence": 0.08665, "val_divergence_sd": 0.01382, "groups": 1,
          "seconds": 0.2441, "warnings": None} for lab in LABELS]
 FIT = Fit(keep=("variant", "mean"), drop=("groups", "seconds"), wrap=("variant",))

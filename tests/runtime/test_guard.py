@@ -145,7 +145,7 @@ def test_a_study_that_cannot_fit_is_refused_before_compiling(tmp_path, tiny_spec
 def test_lesion_run_refuses_with_one_line_and_exit_2(tmp_path, sections, fragment):
     spec = tmp_path / "big.toml"
     spec.write_text('[study]\nname = "big"\nseeds = 2\n' + sections)
-    out = subprocess.run([sys.executable, "-m", "runtime.cli", "run", str(spec), "--out", str(tmp_path / "r")],
+    out = subprocess.run([sys.executable, "-m", "runtime.cli", "run", str(spec), "--results", str(tmp_path / "r")],
                          cwd=ROOT, capture_output=True, text=True, timeout=120)
     assert out.returncode == 2, out.stderr
     assert "Traceback" not in out.stderr and out.stdout == ""

@@ -74,7 +74,7 @@ def sets(tmp_path_factory, tiny_spec):
     return {
         "grid": _run(grid, tmp / "r"),
         "grid_b": _run(noisy, tmp / "rb"),
-        "diverged": _run(tiny_spec(tmp, "flare", seeds=3, epochs=3, rates="[0.05, 1e5]", extra=GRID_AXIS), tmp / "r"),
+        "non_finite": _run(tiny_spec(tmp, "flare", seeds=3, epochs=3, rates="[0.05, 1e5]", extra=GRID_AXIS), tmp / "r"),
         "single": _run(tiny_spec(tmp, "lone", seeds=1, epochs=3), tmp / "r"),
         "single_grid": _run(tiny_spec(tmp, "lone-grid", seeds=1, epochs=3, extra=GRID_AXIS), tmp / "r"),
         "regression": _run(tmp / "slag-depth.toml", tmp / "r"),
@@ -221,7 +221,7 @@ def test_grid_cells_hold_the_summary_means_on_the_axis_values(sets):
     assert [t.get_text() for t in ax.get_xticklabels()] == ["0", "0.01"]
     means = {r["variant"]: r["mean"] for r in summary_rows(rs)}
     for lr, wd in itertools.product(["0.03", "0.3"], ["0.0", "0.01"]):
-        label = f"optimizer.learning_rate={lr}, regularization.weight_decay={wd}"
+        label = f"{lr} · {wd}"
         [text] = [t for t in ax.texts if t.get_gid() == f"cell:val_accuracy:{label}"]
         assert text.get_text().startswith(f"{means[label]:.3g}")
 
@@ -241,7 +241,7 @@ def test_grid_colour_is_the_gap_to_the_best_in_interval_half_widths_on_a_fixed_s
     assert [p.get_gid() for p in ax.patches if (p.get_gid() or "").startswith("best:")] == [f"best:val_accuracy:{best}"]
     for i, lr in enumerate(["0.03", "0.3"]):
         for j, wd in enumerate(["0.0", "0.01"]):
-            label = f"optimizer.learning_rate={lr}, regularization.weight_decay={wd}"
+            label = f"{lr} · {wd}"
             d = by[label] - by[best]
             if label == best:
                 assert grid[i, j] == 0.0
@@ -290,24 +290,24 @@ def test_diff_intervals_match_a_paired_t_interval_by_scipy(sets):
 
 
 # ── what each picture says it shows ──────────────────────────────────────────────────────────────
-def test_diverged_runs_are_marked_at_their_epoch_and_said(sets):
-    rs = sets["diverged"]
+def test_non_finite_runs_are_marked_at_their_epoch_and_said(sets):
+    rs = sets["non_finite"]
     runs = rs.runs.to_pandas()
-    bad = runs[runs.status == "diverged"]
+    bad = runs[runs.status == "non_finite"]
     assert len(bad) == 6
     fig = P.plot_curves(rs)
-    assert "6 of 12 runs diverged" in _subtitle(fig) and "left out of the means" in _subtitle(fig)
-    marks = _lines(fig, "diverged:")
-    for label, stops in bad.groupby("variant_label").diverged_at:
-        epochs = sorted({int(x) for g, l in marks.items() if g.startswith(f"diverged:{label}:") for x in l.get_xdata()})
+    assert "6 of 12 runs non-finite" in _subtitle(fig) and "left out of the means" in _subtitle(fig)
+    marks = _lines(fig, "non_finite:")
+    for label, stops in bad.groupby("variant_label").non_finite_epoch:
+        epochs = sorted({int(x) for g, l in marks.items() if g.startswith(f"non_finite:{label}:") for x in l.get_xdata()})
         assert epochs == sorted(set(stops.astype(int)))
         # a variant whose runs all diverged draws no mean line
         assert not any(label in g for g in _lines(fig, "mean:"))
     assert len(_lines(fig, "mean:")) == 2 * 3  # the two ok variants, three metrics each
     arms = P.plot_arms(rs)
     ticks = [t.get_text() for t in arms.axes[0].get_yticklabels()]
-    assert sum("all 3 diverged" in t for t in ticks) == 2
-    assert "6 of 12 runs diverged" in _subtitle(arms)
+    assert sum("all 3 non-finite" in t for t in ticks) == 2
+    assert "6 of 12 runs non-finite" in _subtitle(arms)
 
 
 def test_grid_cells_without_an_interval_are_grey_and_say_untested(sets):
@@ -382,7 +382,7 @@ def _overlap(a, b) -> bool:
 
 
 @pytest.mark.parametrize("name,kind", [("grid", "curves"), ("grid", "arms"), ("grid", "grid"),
-                                       ("diverged", "curves"), ("regression", "arms"), ("grid", "diff"),
+                                       ("non_finite", "curves"), ("regression", "arms"), ("grid", "diff"),
                                        ("nine", "curves")])
 def test_text_stays_on_the_canvas_and_legends_stay_off_the_axes(sets, name, kind, tmp_path):
     fig = P.plot_diff(sets["grid"], sets["grid_b"]) if kind == "diff" else P.plot(sets[name], kind)

@@ -28,7 +28,7 @@ def _numbers(path) -> tuple[pa.Table, pa.Table]:
 
 def _assert_same_bits(a, b):
     (runs_a, curves_a), (runs_b, curves_b) = _numbers(a), _numbers(b)
-    assert runs_a.column("param_digest").to_pylist() == runs_b.column("param_digest").to_pylist()
+    assert runs_a.column("param_hash").to_pylist() == runs_b.column("param_hash").to_pylist()
     assert runs_a.equals(runs_b) and curves_a.equals(curves_b)
 
 
@@ -104,7 +104,7 @@ def test_a_second_process_loads_the_stored_programs_with_the_same_bits(tmp_path,
     env = dict(os.environ, LESION_CACHE_DIR=str(tmp_path / "cache"))
     outs = []
     for name in ("a", "b"):
-        done = subprocess.run([sys.executable, "-m", "runtime.cli", "run", str(spec), "--quiet", "--out",
+        done = subprocess.run([sys.executable, "-m", "runtime.cli", "run", str(spec), "--quiet", "--results",
                                str(tmp_path / name)], env=env, capture_output=True, text=True, timeout=300)
         assert done.returncode == 0, done.stderr
         outs.append(done.stdout.strip().splitlines()[-1])
@@ -141,7 +141,7 @@ def test_loading_an_entry_marks_it_used(tmp_path, tiny_spec, store):
 def test_an_unusable_cache_limit_is_a_one_line_error_before_anything_runs(tmp_path, tiny_spec, value):
     spec = tiny_spec(tmp_path, "ember", seeds=2, epochs=2)
     env = dict(os.environ, LESION_CACHE_DIR=str(tmp_path / "cache"), LESION_CACHE_MAX_MB=value)
-    done = subprocess.run([sys.executable, "-m", "runtime.cli", "run", str(spec), "--out", str(tmp_path / "r")],
+    done = subprocess.run([sys.executable, "-m", "runtime.cli", "run", str(spec), "--results", str(tmp_path / "r")],
                           env=env, capture_output=True, text=True, timeout=300)
     assert done.returncode == 2 and "Traceback" not in done.stderr
     [line] = done.stderr.strip().splitlines()

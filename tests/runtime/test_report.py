@@ -46,7 +46,7 @@ mode = "list"
 
 [[ablation.variant]]
 label = "<img src=x onerror=window.__pwned=1>"
-set = { "optimizer.learning_rate" = 0.3 }
+changes = { "optimizer.learning_rate" = 0.3 }
 '''
 LABEL = "<img src=x onerror=window.__pwned=1>"
 

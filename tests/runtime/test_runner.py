@@ -22,17 +22,17 @@ def tiny_run(tmp_path_factory, tiny_spec):
 
 def test_result_set_has_every_run_and_epoch(tiny_run):
     loaded, report, rs = tiny_run
-    assert report.planned == report.computed == 6 and report.diverged == 0
+    assert report.planned == report.computed == 6 and report.non_finite == 0
     assert rs.runs.num_rows == 6
     assert rs.curves.num_rows == 6 * 3
     assert sorted(set(rs.runs.column("run_id").to_pylist())) == sorted(
         f"{v.hash[:16]}-s{s}" for v in loaded.variants for s in loaded.seeds)
     for col in ("study_hash", "variant_hash", "variant_label", "optimizer.learning_rate", "seed",
-                "lane_width", "group_id", "status", "diverged_at", "final_val_accuracy",
-                "best_val_accuracy", "param_digest", "compile_seconds", "run_seconds"):
+                "lane_width", "group_id", "status", "non_finite_epoch", "final_val_accuracy",
+                "best_val_accuracy", "param_hash", "compile_seconds", "run_seconds"):
         assert col in rs.runs.column_names, col
     assert set(rs.runs.column("status").to_pylist()) == {"ok"}
-    assert rs.runs.column("optimizer.learning_rate").to_pylist().count(0.3) == 3
+    assert rs.runs.column("optimizer__learning_rate").to_pylist().count(0.3) == 3
 
 
 def test_hashes_equal_check_and_metadata_is_complete(tiny_run):
@@ -91,13 +91,13 @@ def test_runs_of_other_lesion_sources_are_recomputed_and_replay_names_the_change
     from runtime.replay import replay
     loaded = load_study(tiny_spec(tmp_path, "kiln", seeds=2, epochs=2))
     first = run_study(loaded, tmp_path / "r")
-    old = environment.source_digest()
-    monkeypatch.setattr(environment, "source_digest", lambda: "f" * 16)
+    old = environment.source_hash()
+    monkeypatch.setattr(environment, "source_hash", lambda: "f" * 16)
     again = run_study(loaded, tmp_path / "r")
     assert again.computed == first.planned and again.reused == 0
-    assert set(open_result_set(again.path).runs.column("env_fingerprint").to_pylist()) == {
-        environment.fingerprint(environment.capture())}
-    monkeypatch.setattr(environment, "source_digest", lambda: old)
+    assert set(open_result_set(again.path).runs.column("env_hash").to_pylist()) == {
+        environment.env_hash(environment.capture())}
+    monkeypatch.setattr(environment, "source_hash", lambda: old)
     report = replay(again.path)
     assert f"lesion_sources: {'f' * 16} → {old}" in report.environment_changes
     assert report.identical  # the same code in fact: the bits agree, and the change is named
@@ -116,7 +116,7 @@ def test_a_run_in_a_wide_group_equals_it_alone_at_the_same_width(tmp_path, tiny_
     rid = rs_one.runs.column("run_id")[0].as_py()
     big_row = rs_big.runs.to_pandas().set_index("run_id").loc[rid]
     one_row = rs_one.runs.to_pandas().set_index("run_id").loc[rid]
-    assert big_row.param_digest == one_row.param_digest
+    assert big_row.param_hash == one_row.param_hash
     cb = rs_big.curves.to_pandas().query("run_id == @rid").drop(columns=["variant_label"]).reset_index(drop=True)
     co = rs_one.curves.to_pandas().query("run_id == @rid").drop(columns=["variant_label"]).reset_index(drop=True)
     np.testing.assert_array_equal(cb.to_numpy(), co.to_numpy())
@@ -126,11 +126,11 @@ def test_a_divergent_arm_is_marked_and_the_others_finish(tmp_path, tiny_spec):
     loaded = load_study(tiny_spec(tmp_path, "boom", seeds=2, epochs=4, rates="[0.05, 1e5]"))
     report = run_study(loaded, tmp_path / "r")
     rs = open_result_set(report.path).runs.to_pandas()
-    bad = rs[rs["optimizer.learning_rate"] == 1e5]
-    good = rs[rs["optimizer.learning_rate"] == 0.05]
-    assert (bad.status == "diverged").all() and bad.diverged_at.between(1, 4).all()
+    bad = rs[rs["optimizer__learning_rate"] == 1e5]
+    good = rs[rs["optimizer__learning_rate"] == 0.05]
+    assert (bad.status == "non_finite").all() and bad.non_finite_epoch.between(1, 4).all()
     assert (good.status == "ok").all() and good.final_val_accuracy.notna().all()
-    assert report.diverged == 2
+    assert report.non_finite == 2
 
 
 class _KilledAfter:
@@ -148,7 +148,7 @@ class _KilledAfter:
 
 def _digests(path) -> dict:
     runs = open_result_set(path).runs
-    return dict(zip(runs.column("run_id").to_pylist(), zip(runs.column("param_digest").to_pylist(),
+    return dict(zip(runs.column("run_id").to_pylist(), zip(runs.column("param_hash").to_pylist(),
                                                             runs.column("lane_width").to_pylist())))
 
 

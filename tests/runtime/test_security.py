@@ -1,6 +1,6 @@
 """What a spec can make lesion do: pick entries of closed registries, read a table beside it,
-write under ``--out``. Never run code, import by name, unpickle, read outside the spec's folder or
-write outside ``--out``.
+write under ``--results``. Never run code, import by name, unpickle, read outside the spec's folder or
+write outside ``--results``.
 
 The data path rule (compiler/spec.py, FileData): a path is resolved relative to the spec file's
 folder and may not leave it (absolute paths and ``..`` climbing out are refused at check time);
@@ -135,7 +135,7 @@ def test_a_pickled_npz_is_refused_and_never_unpickled(tmp_path):
     assert not marker.exists()
     spec_path = tmp_path / "evil.toml"
     spec_path.write_text(BASE + '[data]\nkind = "file"\npath = "evil.npz"\n[training]\nbatch_size = 4\n')
-    out = subprocess.run([sys.executable, "-m", "runtime.cli", "run", str(spec_path), "--out", str(tmp_path / "r"),
+    out = subprocess.run([sys.executable, "-m", "runtime.cli", "run", str(spec_path), "--results", str(tmp_path / "r"),
                           "--quiet"], cwd=ROOT, capture_output=True, text=True, timeout=300)
     assert out.returncode == 2 and "Traceback" not in out.stderr, out.stderr
     (line,) = out.stderr.splitlines()
@@ -172,7 +172,7 @@ def file_run(tmp_path_factory):
                          + '[data]\nkind = "file"\npath = "t.parquet"\n[model]\nhidden = [4]\n'
                          + '[training]\nepochs = 1\nbatch_size = 8\n')
     before = {p for p in tmp.rglob("*")}
-    out = subprocess.run([sys.executable, "-m", "runtime.cli", "run", str(spec_path), "--out", str(tmp / "out"),
+    out = subprocess.run([sys.executable, "-m", "runtime.cli", "run", str(spec_path), "--results", str(tmp / "out"),
                           "--quiet"], cwd=elsewhere, capture_output=True, text=True, timeout=300)
     assert out.returncode == 0, out.stderr
     return home, elsewhere, tmp, before, Path(out.stdout.strip().splitlines()[-1])
@@ -180,8 +180,8 @@ def file_run(tmp_path_factory):
 
 def test_a_relative_data_path_resolves_against_the_spec_folder_not_the_cwd(file_run):
     home, elsewhere, _, _, result = file_run
-    fingerprints = set(pq.read_table(result / "runs.parquet").column("data_fingerprint").to_pylist())
-    assert fingerprints == {hashlib.sha256((home / "t.parquet").read_bytes()).hexdigest()}
+    hashes = set(pq.read_table(result / "runs.parquet").column("data_hash").to_pylist())
+    assert hashes == {hashlib.sha256((home / "t.parquet").read_bytes()).hexdigest()}
 
 
 def test_a_run_writes_only_under_out(file_run):

@@ -41,7 +41,7 @@ def test_column_equals_pyarrow_array(values, typ):
 def test_running_a_study_imports_no_pandas(tmp_path, tiny_spec):
     spec = tiny_spec(tmp_path, "quiet", seeds=2, epochs=2)
     code = ("import sys; from runtime.cli import main; sys.argv = ['lesion', 'run', sys.argv[1], '--quiet', "
-            "'--out', sys.argv[2]]\ntry:\n    main()\nexcept SystemExit as e:\n    assert not e.code, e.code\n"
+            "'--results', sys.argv[2]]\ntry:\n    main()\nexcept SystemExit as e:\n    assert not e.code, e.code\n"
             "assert 'pandas' not in sys.modules, 'pandas was imported'")
     done = subprocess.run([sys.executable, "-c", code, str(spec), str(tmp_path / "r")], capture_output=True,
                           text=True, timeout=300)

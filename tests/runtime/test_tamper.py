@@ -80,15 +80,15 @@ def _metadata(key: bytes, edit):
 # name: (edit of runs.parquet, the row it edits, what replay must say: the differing cell it names
 # for that run, "refused", "missing" for that run, or "edited" when every cell still reproduces)
 TAMPER = {
-    "status_flipped": (lambda t: _edit_runs(t, "status", _first(lambda s: "diverged")), 0, "status"),
+    "status_flipped": (lambda t: _edit_runs(t, "status", _first(lambda s: "non_finite")), 0, "status"),
     "row_duplicated": (lambda t: pa.concat_tables([t, t.slice(0, 1)]), 0, "refused"),
     "row_deleted": (lambda t: t.slice(1), 0, "missing"),
     "best_cell_changed": (lambda t: _edit_runs(t, "best_val_accuracy", _first(lambda x: x - 0.25)), 0,
                           "best_val_accuracy"),
     "lane_width_changed": (lambda t: _edit_runs(t, "lane_width", lambda v: v[:1] + [v[1] + 1] + v[2:]), 1,
                            "lane_width"),
-    "varied_key_changed": (lambda t: _edit_runs(t, "optimizer.learning_rate", _first(lambda x: 0.5)), 0,
-                           "optimizer.learning_rate"),
+    "varied_key_changed": (lambda t: _edit_runs(t, "optimizer__learning_rate", _first(lambda x: 0.5)), 0,
+                           "optimizer__learning_rate"),
     "changes_json_changed": (lambda t: _edit_runs(t, "changes", _first(
         lambda s: json.dumps({"optimizer.learning_rate": 0.5}))), 0, "changes"),
     "epochs_changed": (lambda t: _edit_runs(t, "epochs", _first(lambda e: e + 1)), 0, "epochs"),
@@ -149,15 +149,15 @@ def test_interrupted_result_set_says_it_is_incomplete(studies):
     shown = _cli("show", partial)
     assert shown.exit_code == 0
     # lanes=1 computes the study's runs in order (variant, then seed): two of six stored
-    assert ("warning: incomplete: 2 of 6 runs stored; missing: optimizer.learning_rate=0.03 (seed 2); "
-            "optimizer.learning_rate=0.3 (seeds 0, 1, 2)") in shown.stderr, shown.stderr
+    assert ("warning: incomplete: 2 of 6 runs stored; missing: 0.03 (seed 2); "
+            "0.3 (seeds 0, 1, 2)") in shown.stderr, shown.stderr
     assert "edited" not in shown.stderr
 
     compared = _cli("diff", full, partial, "--format", "json")
     assert "warning: B: incomplete: 2 of 6 runs stored" in compared.stderr, compared.stderr
     doc = json.loads(compared.stdout)
     assert any(f.startswith("warning: B: incomplete") for f in doc["findings"])
-    absent = [r for r in doc["rows"] if r["variant_b"] == "optimizer.learning_rate=0.3"]
+    absent = [r for r in doc["rows"] if r["variant_b"] == "0.3"]
     assert absent and "B stores no run of this variant" in absent[0]["reason"]
     assert all("run more seeds" not in r["reason"] for r in absent)
 
@@ -185,13 +185,14 @@ def test_result_set_written_before_digests_is_read_with_a_note(studies, tmp_path
     shutil.copytree(full, copy, ignore=shutil.ignore_patterns(".lock"))
     for name in ("runs.parquet", "curves.parquet"):
         table = pq.read_table(copy / name)
-        md = {k: v for k, v in table.schema.metadata.items() if not k.endswith(b"_digest")}
+        md = {k: v for k, v in table.schema.metadata.items()
+              if k not in (b"lesion.runs_hash", b"lesion.curves_hash")}
         pq.write_table(table.replace_schema_metadata(md), copy / name)
     shown = _cli("show", copy)
-    assert shown.exit_code == 0 and shown.stderr.startswith("note: no consistency digest stored"), shown.stderr
+    assert shown.exit_code == 0 and shown.stderr.startswith("note: no consistency hash stored"), shown.stderr
     assert "warning" not in shown.stderr
     replayed = _cli("replay", copy)
-    assert replayed.exit_code == 0 and "note: no consistency digest stored" in replayed.stdout, replayed.output
+    assert replayed.exit_code == 0 and "note: no consistency hash stored" in replayed.stdout, replayed.output
 
 
 def _documented_digest(table: pa.Table, order: list[str], prefix: list[bytes]) -> str:
@@ -232,9 +233,9 @@ def test_digests_follow_the_documented_encoding_and_survive_a_rewrite(studies, t
     runs, curves = pq.read_table(full / "runs.parquet"), pq.read_table(full / "curves.parquet")
     md = runs.schema.metadata
     keys = ("spec_source", "spec_path", "canonical_json", "study_hash", "version", "environment")
-    assert md[b"lesion.runs_digest"].decode() == _documented_digest(
-        runs, ["run_id"], [md[f"lesion.{k}".encode()] for k in keys])
-    assert md[b"lesion.curves_digest"].decode() == _documented_digest(curves, ["run_id", "epoch"], [])
+    assert md[b"lesion.runs_hash"].decode() == _documented_digest(
+        runs, ["run_id"], [md[f"lesion.{k}".encode()] for k in (*keys, "format")])
+    assert md[b"lesion.curves_hash"].decode() == _documented_digest(curves, ["run_id", "epoch"], [])
     # Other compression, row groups and row order change the file's bytes, not its values.
     copy = tmp_path / full.name
     shutil.copytree(full, copy, ignore=shutil.ignore_patterns(".lock"))

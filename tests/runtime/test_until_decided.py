@@ -27,7 +27,7 @@ def _decisions(seq):
 
 def _bits(path):
     runs = pq.read_table(path / "runs.parquet").to_pydict()
-    return dict(zip(runs["run_id"], zip(runs["param_digest"], runs["lane_width"])))
+    return dict(zip(runs["run_id"], zip(runs["param_hash"], runs["lane_width"])))
 
 
 @pytest.fixture(scope="module")
@@ -104,7 +104,7 @@ def test_show_and_diff_use_the_stopping_rule(uninterrupted):
     (["--until-decided", "--margin", "0.01", "--axis", "optimizer.kind"], "not an axis"),
 ])
 def test_bad_options_are_one_line_errors(tmp_path, decided_spec, args, message):
-    res = cli.invoke(app, ["run", str(decided_spec(tmp_path, "bad")), "--out", str(tmp_path / "o"), *args])
+    res = cli.invoke(app, ["run", str(decided_spec(tmp_path, "bad")), "--results", str(tmp_path / "o"), *args])
     assert res.exit_code == 2, res.output
     assert message in res.stderr and "Traceback" not in res.stderr
     assert not (tmp_path / "o").exists()   # nothing was created
@@ -112,7 +112,7 @@ def test_bad_options_are_one_line_errors(tmp_path, decided_spec, args, message):
 
 def test_another_rule_on_the_same_result_set_is_refused(uninterrupted):
     loaded, reports, _, path = uninterrupted
-    res = cli.invoke(app, ["run", loaded.path, "--out", str(path.parent), "--until-decided", "--margin", "0.02",
+    res = cli.invoke(app, ["run", loaded.path, "--results", str(path.parent), "--until-decided", "--margin", "0.02",
                            "--max-seeds", "12", "--round", "3"])
     assert res.exit_code == 2 and "another stopping rule" in res.stderr and "margin 0.01 → 0.02" in res.stderr
 

@@ -60,7 +60,7 @@ key = "optimizer.learning_rate"
 values = [0.01, 0.1]
 """
 
-# One group of the study in a fresh process: its parameter digests and the pool size recorded.
+# One group of the study in a fresh process: its parameter hashes and the pool size recorded.
 _PROBE = """
 import json, os, sys
 os.sched_setaffinity(0, json.loads(sys.argv[3]))
@@ -77,7 +77,7 @@ group = plan(study.variants, study.spec.study.seed_list, lanes=2)[0]
 data = datasets_for([group], Path(sys.argv[1]).parent)
 env = environment.capture()
 result = execute_group(group, data[group.group_id], env)
-print(json.dumps({"digests": [lane.param_digest for lane in result.lanes],
+print(json.dumps({"digests": [lane.param_hash for lane in result.lanes],
                   "xla_cpu_threads": env["xla_cpu_threads"]}))
 """
 
@@ -132,7 +132,7 @@ def _assert_same_bits(a, b):
     ra, rb = a.runs.sort_by("run_id"), b.runs.sort_by("run_id")
     ca = a.curves.sort_by([("run_id", "ascending"), ("epoch", "ascending")])
     cb = b.curves.sort_by([("run_id", "ascending"), ("epoch", "ascending")])
-    for column in ("run_id", "param_digest", "lane_width"):
+    for column in ("run_id", "param_hash", "lane_width"):
         assert ra.column(column).to_pylist() == rb.column(column).to_pylist(), column
     metrics = [c for c in ca.column_names if c not in ("run_id", "variant_label", "seed", "epoch")]
     assert metrics
