@@ -27,8 +27,8 @@ def test_result_set_has_every_run_and_epoch(tiny_run):
     assert rs.curves.num_rows == 6 * 3
     assert sorted(set(rs.runs.column("run_id").to_pylist())) == sorted(
         f"{v.hash[:16]}-s{s}" for v in loaded.variants for s in loaded.seeds)
-    for col in ("study_hash", "variant_hash", "variant_label", "optimizer.learning_rate", "seed",
-                "lane_width", "group_id", "status", "non_finite_epoch", "final_val_accuracy",
+    for col in ("study_hash", "variant_hash", "variant_label", "optimizer__learning_rate", "seed",
+                "lane_width", "group_id", "program", "status", "non_finite_epoch", "final_val_accuracy",
                 "best_val_accuracy", "param_hash", "compile_seconds", "run_seconds"):
         assert col in rs.runs.column_names, col
     assert set(rs.runs.column("status").to_pylist()) == {"ok"}
