@@ -128,3 +128,13 @@ def test_the_variant_limit_is_raised_or_lowered_by_its_environment_knob(monkeypa
     assert "makes 6 variants, above the limit of 5" in _error(_axes(2, 3))
     monkeypatch.setenv("LESION_MAX_VARIANTS", "lots")
     assert "LESION_MAX_VARIANTS='lots': expected a positive whole number" in _error(_axes(2, 3))
+
+
+def test_an_axis_name_labels_its_values_and_two_axes_may_not_share_one():
+    vs = _variants('[ablation]\nmode = "one_at_a_time"\n'
+                   '[[ablation.axis]]\nkey = "optimizer.learning_rate"\nname = "lr"\nvalues = [0.01]\n'
+                   '[[ablation.axis]]\nkey = "regularization.dropout.rate"\nvalues = [0.2]\n')
+    assert [v.label for v in vs] == ["base", "lr 0.01", "dropout.rate 0.2"]
+    message = _error('[[ablation.axis]]\nkey = "optimizer.learning_rate"\nname = "a"\nvalues = [0.01]\n'
+                     '[[ablation.axis]]\nkey = "training.epochs"\nname = "a"\nvalues = [2]\n')
+    assert "axis names must be distinct (repeated: ['a'])" in message

@@ -334,9 +334,9 @@ def test_curves_of_a_large_grid_are_small_multiples_one_panel_per_level(sets):
         means = [l for l in ax.get_lines() if (l.get_gid() or "").startswith("mean:")]
         labels = {l.get_gid().split(":", 2)[2] for l in means}
         assert len(labels) == 3  # one line per weight decay, not all nine
-        assert len({lab.split(",")[0] for lab in labels}) == 1  # a single learning rate per panel
+        assert len({lab.split(" · ")[0] for lab in labels}) == 1  # a single learning rate per panel
         for line in means:
-            decay = line.get_gid().split("weight_decay=")[1]
+            decay = line.get_gid().split(" · ")[1]   # the label: learning rate · weight decay
             # the same level of the other axis keeps its colour in every panel
             assert colour_of_decay.setdefault(decay, line.get_color()) == line.get_color()
     assert len(set(colour_of_decay.values())) == 3
@@ -401,11 +401,16 @@ def test_text_stays_on_the_canvas_and_legends_stay_off_the_axes(sets, name, kind
 
 
 def test_labels_drop_what_every_key_shares():
+    from compiler.labels import axis_names, short_key
+
     # our own convention: the shortest unique suffix, a component's kind shown as the component
     keys = ["normalization.kind", "regularization.dropout.rate", "optimizer.learning_rate",
             "regularization.weight_decay"]
-    assert [P._short_key(k, keys) for k in keys] == ["normalization", "dropout.rate", "learning_rate", "weight_decay"]
-    assert P._short_key("optimizer.momentum", ["optimizer.momentum", "normalization.momentum"]) == "optimizer.momentum"
+    assert [short_key(k, keys) for k in keys] == ["normalization", "dropout.rate", "learning_rate", "weight_decay"]
+    assert short_key("optimizer.momentum", ["optimizer.momentum", "normalization.momentum"]) == "optimizer.momentum"
+    # a name the spec gives an axis wins
+    assert axis_names([("optimizer.learning_rate", "lr"), ("normalization.kind", None)]) == {
+        "optimizer.learning_rate": "lr", "normalization.kind": "normalization"}
 
 
 # ── colours ──────────────────────────────────────────────────────────────────────────────────────
