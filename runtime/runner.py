@@ -349,7 +349,8 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
         if executor is None:
             preparation = execute.preparation(todo, data, env)
             calibration = guard.Calibration.load(_timing_path())
-            estimate = guard.estimate(todo, data, preparation=preparation, calibration=calibration)
+            estimate = guard.estimate(todo, data, preparation=preparation, calibration=calibration,
+                                      workers=workers)
         planned = sum(len(g.runs) for g in groups)
         if progress:
             progress("plan", groups=len(todo), runs=sum(len(g.runs) for g in todo), planned=planned,
@@ -359,7 +360,7 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
         compile_s = run_s = 0.0
         current = stored
         started = time.perf_counter()
-        compiled, loaded_s = [], []
+        compiled, loaded_s, busy = [], [], {}
         check()
         for g, result in (executor or LocalWorkers(workers, checkpoint=checkpoint)).run(todo, data, env, progress):
             if estimate is not None and preparation[g.group_id] != "reuse":
@@ -371,12 +372,15 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
             warnings += [f"{lane.run_id}: {w}" for lane in result.lanes for w in lane.warnings]
             compile_s += result.compile_seconds
             run_s += result.run_seconds
+            busy[g.group_id] = result.compile_seconds + result.run_seconds
             if progress:
                 progress("stored", group=g, result=result)
             check()
         if estimate is not None and todo:
             # What this invocation measured calibrates the next estimate on this machine.
-            rest = time.perf_counter() - started - compile_s - run_s
+            # Groups that computed side by side overlap: what is left besides them is the
+            # elapsed time less the busiest worker's.
+            rest = time.perf_counter() - started - guard.schedule([busy[g.group_id] for g in todo], workers)
             modelled = sum(guard.model_seconds(g, data[g.group_id]) for g in todo)
             calibration.updated(compiled=compiled, loaded=loaded_s, executed=(run_s, modelled),
                                 other=(rest, len(todo))).save(_timing_path())
