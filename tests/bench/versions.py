@@ -9,8 +9,9 @@ its ``compiler/`` and ``runtime/`` are copied to a temporary folder. For every r
 revision in turn (interleaved, so a busy machine's slow phases spread over all of them) runs in
 its own process with one XLA thread: the first compile group of ``SPEC`` (default: the realistic
 workload) with ``training.epochs`` set to ``--epochs``, executed twice, the second (warm) timed.
-It prints the median milliseconds per epoch of each revision, its ratio to the first, the
-compile seconds, and whether each revision's runs have the first one's bits (parameter digests
+It prints the median CPU milliseconds per epoch of each revision (the process's CPU time over
+the warm execution: with one XLA thread it moves far less with the machine's load than wall
+time does), its ratio to the first, the median wall milliseconds, the compile seconds, and whether each revision's runs have the first one's bits (parameter digests
 and every metric curve, bitwise; the metrics that differ are named with their largest relative
 difference).
 """
@@ -48,8 +49,10 @@ group = plan(study.variants, study.spec.study.seed_list)[0]
 data = datasets_for([group], spec.parent)[group.group_id]
 env = environment.capture()
 first = execute_group(group, data, env)
+cpu = time.process_time()
 r = execute_group(group, data, env)
-print(json.dumps({"compile": first.compile_seconds, "run": r.run_seconds,
+cpu = time.process_time() - cpu
+print(json.dumps({"compile": first.compile_seconds, "run": r.run_seconds, "cpu": cpu,
                   "epochs": len(next(iter(r.lanes[0].curves.values()))),
                   "digests": [lane.param_digest for lane in r.lanes],
                   "curves": [{m: c.tolist() for m, c in lane.curves.items()} for lane in r.lanes]}))
@@ -112,14 +115,17 @@ def main() -> None:
                     raise SystemExit(f"{args.revs[i]} failed:\n{proc.stderr[-3000:]}")
                 r = json.loads(proc.stdout.strip().splitlines()[-1])
                 out[i].append(r)
-                print(f"[{rep + 1}/{args.repeats}] {args.revs[i]:12s} {1e3 * r['run'] / r['epochs']:8.1f} ms per epoch"
+                print(f"[{rep + 1}/{args.repeats}] {args.revs[i]:12s} {1e3 * r['cpu'] / r['epochs']:8.1f} CPU ms per epoch"
+                      f" {1e3 * r['run'] / r['epochs']:8.1f} wall"
                       f"  load {os.getloadavg()[0]:.1f}", file=sys.stderr)
-        base = statistics.median(r["run"] / r["epochs"] for r in out[0])
+        base = statistics.median(r["cpu"] / r["epochs"] for r in out[0])
         print(f"{args.spec.name}, first group, {args.epochs} epochs, medians of {args.repeats} interleaved repeats")
         for rev, rs in zip(args.revs, out):
-            ms = statistics.median(r["run"] / r["epochs"] for r in rs)
+            ms = statistics.median(r["cpu"] / r["epochs"] for r in rs)
+            wall = statistics.median(r["run"] / r["epochs"] for r in rs)
             comp = statistics.median(r["compile"] for r in rs)
-            print(f"  {rev:12s} {1e3 * ms:8.1f} ms per epoch  {base / ms:5.2f}× the first  compile {comp:5.2f} s  "
+            print(f"  {rev:12s} {1e3 * ms:7.1f} CPU ms per epoch  {base / ms:5.2f}× the first  (wall {1e3 * wall:7.1f} ms)"
+                  f"  compile {comp:5.2f} s  "
                   + compare(out[0][0], rs[0]))
     finally:
         shutil.rmtree(tmp, ignore_errors=True)
