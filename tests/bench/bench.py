@@ -103,8 +103,13 @@ def baseline(script: str, spec: Path) -> dict:
 
 
 def export_tree(rev: str, into: Path) -> Path:
-    """``compiler/`` and ``runtime/`` of git revision ``rev`` in folder ``into``."""
+    """``compiler/`` and ``runtime/`` of git revision ``rev`` (``.``: the working tree) in folder
+    ``into``."""
     into.mkdir(parents=True)
+    if rev == ".":
+        for d in ("compiler", "runtime"):
+            shutil.copytree(ROOT / d, into / d, ignore=shutil.ignore_patterns("__pycache__"))
+        return into
     tar = subprocess.run(["git", "archive", rev, "compiler", "runtime"], cwd=ROOT, check=True,
                          capture_output=True).stdout
     subprocess.run(["tar", "-x", "-C", str(into)], input=tar, check=True)

@@ -32,7 +32,8 @@ from pathlib import Path
 import numpy as np
 
 HERE = Path(__file__).resolve().parent
-ROOT = HERE.parents[1]
+sys.path.insert(0, str(HERE))
+from bench import export_tree  # noqa: E402
 
 CHILD = r"""
 import json, sys, time
@@ -61,18 +62,6 @@ print(json.dumps({"compile": first.compile_seconds, "run": r.run_seconds, "cpu":
                   "digests": [lane.param_digest for lane in r.lanes],
                   "curves": [{m: c.tolist() for m, c in lane.curves.items()} for lane in r.lanes]}))
 """
-
-
-def export(rev: str, into: Path) -> Path:
-    into.mkdir(parents=True)
-    if rev == ".":
-        for d in ("compiler", "runtime"):
-            shutil.copytree(ROOT / d, into / d, ignore=shutil.ignore_patterns("__pycache__"))
-    else:
-        tar = subprocess.run(["git", "archive", rev, "compiler", "runtime"], cwd=ROOT, check=True,
-                             capture_output=True).stdout
-        subprocess.run(["tar", "-x", "-C", str(into)], input=tar, check=True)
-    return into
 
 
 def compare(base: dict, other: dict) -> str:
@@ -108,7 +97,7 @@ def main() -> None:
         lines = [f"epochs = {args.epochs}" if line.startswith("epochs = ") else line for line in text.splitlines()]
         spec = tmp / args.spec.name
         spec.write_text("\n".join(lines) + "\n")
-        trees = [export(rev, tmp / f"rev{i}") for i, rev in enumerate(args.revs)]
+        trees = [export_tree(rev, tmp / f"rev{i}") for i, rev in enumerate(args.revs)]
         out: list[list[dict]] = [[] for _ in trees]
         for rep in range(args.repeats):
             for i, tree in enumerate(trees):
