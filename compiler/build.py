@@ -216,8 +216,6 @@ def compile_structure(variants: Sequence[Spec], dataset: Dataset) -> Program:
     widths = list(variant.model.widths)
     names = model.layer_names(len(widths) + 1)
     fit_scale = variant.data.standardize
-    # A weight decay of 0 in every lane adds 0·W to each gradient: the L2 term is left out.
-    no_penalty = decoupled or "regularization.weight_decay" in zero
     no_dropout_masks = ("regularization.dropout.rate" in zero
                         and variant.regularization.dropout.kind in ("inverted", "scaled"))
 
@@ -302,9 +300,8 @@ def compile_structure(variants: Sequence[Spec], dataset: Dataset) -> Program:
 
             def objective(params):
                 z, new_state = p.network.apply(params, state, x, jax.random.fold_in(epoch_dropout, s), mask, True)
-                per_example = p.divergence.per_example(z, y)
-                div = jnp.sum(mask * per_example) / jnp.sum(mask) if padded > n_train else jnp.mean(per_example)
-                penalty = jnp.float32(0.0) if no_penalty else regularization.l2_penalty(params, weights, p.weight_decay)
+                div = jnp.sum(mask * p.divergence.per_example(z, y)) / jnp.sum(mask)
+                penalty = jnp.float32(0.0) if decoupled else regularization.l2_penalty(params, weights, p.weight_decay)
                 return div + penalty, (div, penalty, new_state)
 
             (value, (div, penalty, new_state)), grads = jax.value_and_grad(objective, has_aux=True)(params)
