@@ -137,7 +137,7 @@ class Estimate:
     workers: int = 1       # processes the groups are handed out to
 
     def describe(self) -> str:
-        side = f" with {self.workers} worker processes" if self.workers > 1 else ""
+        side = f" on {self.workers} workers" if self.workers > 1 else ""
         return f"about {_size(self.peak_bytes)} of memory and {_duration(self.seconds)}{side}"
 
 
