@@ -170,7 +170,7 @@ def test_knobs_are_traced_one_trace_for_all_values():
                 regularization={"weight_decay": 0.01, "dropout": {"rate": 0.3}})
     assert structure_key(a) == structure_key(b)
     # Built for both: a program built for a alone leaves out the work a's zero knobs make the
-    # identity (the L2 term, the dropout masks), and packing b's lanes for it is refused.
+    # identity (the dropout masks), and packing b's lanes for it is refused.
     ds = load_data(a, pathlib.Path("."))
     prog = build.compile_structure([a, b], ds)
     traces = []

@@ -44,33 +44,3 @@ def test_zero_dropout_rate_without_masks_is_bit_identical(kind):
     for name, values in metrics.items():
         assert values.tobytes() == metrics_zero[name].tobytes(), name
 
-
-def _decayed(weight_decay: float):
-    raw = {"study": {"name": "z"}, "data": {"generator": "blobs", "samples": 96, "features": 3, "classes": 3},
-           "model": {"hidden": [6, 6]}, "regularization": {"weight_decay": weight_decay},
-           "optimizer": {"kind": "sgd", "learning_rate": 0.1, "momentum": 0.9},
-           "training": {"epochs": 2, "batch_size": 16}}
-    return expand(Spec.model_validate(raw))[0].spec
-
-
-def test_zero_weight_decay_without_the_l2_term_is_bit_identical():
-    # λ = 0: the penalty λ/2·‖W‖² is 0 and its gradient λW adds 0 to each weight's gradient
-    # (common practice: L2 regularization with λ = 0 is plain training), so a program built for
-    # λ = 0 alone leaves the term out; trained by it or by a program that keeps the term (built
-    # beside a λ = 0.01 variant), the λ = 0 run has the same bits.
-    v = _decayed(0.0)
-    ds = load_data(v, pathlib.Path("."))
-    knobs = {k: jnp.float32(x) for k, x in build.knob_vector(v).items()}
-    out = []
-    for variants in ([v], [v, _decayed(0.01)]):
-        prog = build.compile_structure(variants, ds)
-        assert ("regularization.weight_decay" in prog.zero_knobs) == (len(variants) == 1)
-        args = (knobs, build.seed_key(3), ds.x, ds.y)
-        squares = str(jax.make_jaxpr(prog.train)(*args)).count("square")
-        carry, metrics = jax.jit(prog.train)(*args)
-        out.append((squares, build.param_digest(prog.params(carry)), {m: np.asarray(metrics[m]) for m in prog.metric_names}))
-    (left_out, digest, metrics), (kept, digest_kept, metrics_kept) = out
-    assert left_out < kept  # the squares of the L2 term really are left out
-    assert digest == digest_kept
-    for name, values in metrics.items():
-        assert values.tobytes() == metrics_kept[name].tobytes(), name
