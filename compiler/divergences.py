@@ -84,17 +84,4 @@ def huber(delta=1.0) -> Divergence:
     return Divergence(per_example)
 
 
-def pseudo_huber(delta=1.0) -> Divergence:
-    """Pseudo-Huber loss with scale δ and an identity output, summed over the targets:
-    ``δ²(√(1 + (a/δ)²) − 1)`` with ``a = z − d`` (Charbonnier et al. 1994; Hartley & Zisserman
-    2003, §A6.8): ``½a²`` for small errors, slope δ for large ones, smooth everywhere."""
-
-    def per_example(z, d):
-        a = (z - d) / delta
-        return jnp.sum(jnp.square(delta) * (jnp.sqrt(1.0 + jnp.square(a)) - 1.0), axis=-1)
-
-    return Divergence(per_example)
-
-
-REGISTRY: dict[str, Callable[..., Divergence]] = {"l2": l2, "kl": kl, "bce": bce, "huber": huber,
-                                                  "pseudo_huber": pseudo_huber}
+REGISTRY: dict[str, Callable[..., Divergence]] = {"l2": l2, "kl": kl, "bce": bce, "huber": huber}

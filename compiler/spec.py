@@ -364,17 +364,7 @@ class Huber(DivergenceSection):
     task: ClassVar = "regression"
 
 
-class PseudoHuber(DivergenceSection):
-    """Identity output, pseudo-Huber loss with scale ``delta`` (regression)."""
-    kind: Literal["pseudo_huber"]
-    """Identity output, pseudo-Huber loss."""
-    delta: Positive = 1.0
-    """Error scale at which the loss turns from quadratic to linear."""
-    knobs: ClassVar[tuple[str, ...]] = ("delta",)
-    task: ClassVar = "regression"
-
-
-Divergence = Annotated[Union[L2, KL, BCE, Huber, PseudoHuber], Field(discriminator="kind")]
+Divergence = Annotated[Union[L2, KL, BCE, Huber], Field(discriminator="kind")]
 
 
 def _divergences_for(task: str, classes: int | None) -> str:

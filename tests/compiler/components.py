@@ -56,9 +56,6 @@ ROWS: list[Row] = [
     Row("divergence", {"kind": "kl", "label_smoothing": 0.1}),
     Row("divergence", {"kind": "bce"}),
     Row("divergence", {"kind": "huber", "delta": 0.05}),
-    # δ²(√(1 + (a/δ)²) − 1), a = z − d (Hartley & Zisserman 2003, §A6.8; from memory)
-    Row("divergence", {"kind": "pseudo_huber", "delta": 0.5},
-        reference=lambda z, d, delta: np.sum(delta**2 * (np.sqrt(1 + ((z - d) / delta) ** 2) - 1), axis=-1)),
     Row("normalization", {"kind": "batch", "momentum": 0.8, "epsilon": 1e-3}),
     Row("normalization", {"kind": "layer", "epsilon": 1e-4}),
     Row("normalization", {"kind": "none"}),
