@@ -92,18 +92,7 @@ def layer(epsilon=1e-5) -> Normalizer:
     return Normalizer(lambda width: (_affine_params(width), {}), apply, True)
 
 
-def rms(epsilon=1e-5) -> Normalizer:
-    """RMS normalization (Zhang & Sennrich 2019, eq. 4), per example over the ``H`` units:
-    ``y = g ⊙ a/√(Σ a_j²/H + ε) + b``; no centring, so a preceding bias is kept."""
-
-    def apply(params, state, x, mask, train):
-        ms = jnp.mean(jnp.square(x), axis=-1, keepdims=True)
-        return params["gamma"] * x / jnp.sqrt(ms + epsilon) + params["beta"], state
-
-    return Normalizer(lambda width: (_affine_params(width), {}), apply, True)
-
-
-REGISTRY: dict[str, Callable[..., Normalizer]] = {"none": none, "batch": batch, "layer": layer, "rms": rms}
+REGISTRY: dict[str, Callable[..., Normalizer]] = {"none": none, "batch": batch, "layer": layer}
 
 
 def diagnose(kind: str, hidden: int, curves: dict[str, np.ndarray]) -> list[str]:

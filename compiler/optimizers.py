@@ -64,14 +64,8 @@ def rmsprop(learning_rate, decay=0.9, eps=1e-8, momentum=0.0, decoupled=None) ->
                        optax.scale_by_learning_rate(learning_rate), optax.trace(decay=momentum))
 
 
-def adagrad(learning_rate, eps=1e-7, decoupled=None) -> optax.GradientTransformation:
-    """Adagrad (Duchi, Hazan & Singer 2011): ``G ← G + g²``, step ``−η g/√(G + ε)``, in optax's
-    ``scale_by_rss`` form (accumulator starting at 0.1, its default)."""
-    return optax.chain(optax.scale_by_rss(eps=eps), *_decay(decoupled), optax.scale_by_learning_rate(learning_rate))
-
-
 REGISTRY: dict[str, Callable[..., optax.GradientTransformation]] = {
-    "sgd": sgd, "adam": adam, "adamw": adamw, "rmsprop": rmsprop, "adagrad": adagrad}
+    "sgd": sgd, "adam": adam, "adamw": adamw, "rmsprop": rmsprop}
 
 
 def constant(learning_rate, steps_per_epoch, total_steps):

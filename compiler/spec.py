@@ -410,16 +410,7 @@ class LayerNorm(Strict):
     knobs: ClassVar[tuple[str, ...]] = ("epsilon",)
 
 
-class RMSNorm(Strict):
-    """Zhang & Sennrich 2019."""
-    kind: Literal["rms"]
-    """Root-mean-square layer normalization."""
-    epsilon: Positive = 1e-5
-    """Added to the mean square before the square root."""
-    knobs: ClassVar[tuple[str, ...]] = ("epsilon",)
-
-
-Normalization = Annotated[Union[NoNorm, BatchNorm, LayerNorm, RMSNorm], Field(discriminator="kind")]
+Normalization = Annotated[Union[NoNorm, BatchNorm, LayerNorm], Field(discriminator="kind")]
 
 
 # ── regularization ──────────────────────────────────────────────────────────────────────────────
@@ -555,21 +546,7 @@ class RMSProp(Strict):
     knobs: ClassVar[tuple[str, ...]] = ("learning_rate", "decay", "eps", "momentum")
 
 
-class Adagrad(Strict):
-    """Duchi, Hazan & Singer 2011."""
-
-    kind: Literal["adagrad"]
-    """Adagrad."""
-    learning_rate: LearningRate = 0.1
-    """Base learning rate."""
-    eps: Positive = 1e-7
-    """Added to the denominator for numerical stability."""
-    schedule: Schedule = Constant(kind="constant")
-    """Learning-rate schedule, selected by kind."""
-    knobs: ClassVar[tuple[str, ...]] = ("learning_rate", "eps")
-
-
-Optimizer = Annotated[Union[SGD, Adam, AdamW, RMSProp, Adagrad], Field(discriminator="kind")]
+Optimizer = Annotated[Union[SGD, Adam, AdamW, RMSProp], Field(discriminator="kind")]
 
 
 # ── training ────────────────────────────────────────────────────────────────────────────────────
