@@ -378,7 +378,7 @@ def _divergences_for(task: str, classes: int | None) -> str:
             fits.append(kind)
         elif classes is None or classes == member.classes:
             others.append(f"{kind} for {member.classes} classes")
-    named = fits + others
+    named = fits + others or ["another divergence"]
     return ", ".join(named[:-1]) + " or " + named[-1] if len(named) > 1 else named[0]
 
 
