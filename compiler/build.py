@@ -205,28 +205,24 @@ def compile_structure(variants: Sequence[Spec], dataset: Dataset) -> Program:
     n, features = dataset.x.shape
     classification = dataset.task == "classification"
     n_train = train_size(n, variant.data.validation)
-    targets = None if classification else dataset.y.shape[1]
     epochs = variant.training.epochs
     batch_size = variant.training.batch_size
-    drop_last = variant.training.drop_last
-    steps = n_train // batch_size if drop_last else -(-n_train // batch_size)
+    steps = variant.training.steps(n_train)
     padded = steps * batch_size
     decoupled = variant.regularization.decoupled
     opt = variant.optimizer
     widths = list(variant.model.widths)
     names = model.layer_names(len(widths) + 1)
     fit_scale = variant.data.standardize
-    no_dropout_masks = ("regularization.dropout.rate" in zero
-                        and variant.regularization.dropout.kind in ("inverted", "scaled"))
-
     def parts(knobs) -> _Parts:
         divergence = _component(divergences.REGISTRY, variant.divergence, "divergence.", knobs)
         normalizer = _component(normalization.REGISTRY, variant.normalization, "normalization.", knobs)
         dropout = _component(regularization.REGISTRY, variant.regularization.dropout, "regularization.dropout.", knobs)
-        if no_dropout_masks:
+        if "regularization.dropout.rate" in zero and not dropout.masks_weights:
             dropout = dropout._replace(activation=lambda key, h, train: h)
-        out_width = divergence.width(dataset.classes, targets)
-        network = _component(model.FAMILIES, variant.model, "model.", knobs, hidden=widths, out_width=out_width,
+        out_width = variant.divergence.outputs(dataset.classes, dataset.targets)
+        networks = {kind: family.network for kind, family in model.FAMILIES.items()}
+        network = _component(networks, variant.model, "model.", knobs, hidden=widths, out_width=out_width,
                              normalizer=normalizer, dropout=dropout)
         schedule = _component(optimizers.SCHEDULES, opt.schedule, "optimizer.schedule.", knobs,
                               learning_rate=knobs["optimizer.learning_rate"], steps_per_epoch=steps,

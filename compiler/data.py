@@ -52,6 +52,11 @@ class Dataset(NamedTuple):
     classes: int | None
     fingerprint: str
 
+    @property
+    def targets(self) -> int | None:
+        """Target columns of a regression set; None for class labels."""
+        return self.y.shape[1] if self.task == "regression" else None
+
 
 # ── generators ──────────────────────────────────────────────────────────────────────────────────
 # Each takes (rng, samples, features, classes, noise) and returns (x float64, y). Features beyond
@@ -412,8 +417,9 @@ def _load_file(variant: Spec, base_dir: pathlib.Path):
             raise DataError(f"{path}: target column '{data.target}' has {len(labels)} class(es); "
                             "classification needs at least 2")
         classes = len(labels)
-        if variant.divergence.kind == "bce" and classes != 2:
-            raise DataError(f"{path}: divergence 'bce' is binary but the target has {classes} classes; use 'kl'")
+        problem = variant.divergence.class_problem(classes, f"the target has {classes} classes")
+        if problem:
+            raise DataError(f"{path}: divergence {problem}")
         return x, y.reshape(-1), classes, _file_digest(path)
     y = _numeric(path, data.target, target)
     return x, y.reshape(n, -1), None, _file_digest(path)

@@ -13,6 +13,7 @@ from __future__ import annotations
 import math
 import posixpath
 import re
+import typing
 from typing import Annotated, ClassVar, Literal, Union
 
 from pydantic import (BaseModel, ConfigDict, Discriminator, Field, SerializerFunctionWrapHandler, Tag, field_validator,
@@ -20,11 +21,11 @@ from pydantic import (BaseModel, ConfigDict, Discriminator, Field, SerializerFun
 
 __all__ = [
     "Strict", "Study", "SyntheticData", "FileData", "Data", "NeuronBudget", "Model",
-    "L2", "KL", "BCE", "Huber", "Divergence", "NoNorm", "BatchNorm", "LayerNorm", "Normalization",
+    "DivergenceSection", "L2", "KL", "BCE", "Huber", "Divergence", "NoNorm", "BatchNorm", "LayerNorm", "Normalization",
     "Dropout", "Regularization", "Constant", "Exponential", "Cosine", "WarmupCosine", "Schedule",
     "SGD", "Adam", "AdamW", "RMSProp", "Optimizer", "Training", "Axis", "ListedVariant",
     "Ablation", "Spec", "METRICS", "CLASSIFICATION_GENERATORS",
-    "task_of", "classes_of",
+    "task_of", "classes_of", "section_problems", "train_size",
 ]
 
 # Per-epoch metrics a study may use as its headline, with the direction that counts as better.
@@ -64,6 +65,22 @@ class Strict(BaseModel):
     # every other field is structure, passed to its component as a Python value.
     knobs: ClassVar[tuple[str, ...]] = ()
 
+    def problems(self, spec: "Spec") -> list[tuple[str, str]]:
+        """This section's own rules against the rest of ``spec``: (key below the section,
+        message) pairs. ``Spec`` only collects them, so a rule lives with the component it is
+        about and a new component brings its own."""
+        return []
+
+
+def section_problems(section: Strict, spec: "Spec", prefix: str = "") -> list[tuple[str, str]]:
+    """The problems of ``section`` and of every section nested in it, keys made whole."""
+    out = [(prefix + key, message) for key, message in section.problems(spec)]
+    for name in type(section).model_fields:
+        value = getattr(section, name)
+        if isinstance(value, Strict):
+            out += section_problems(value, spec, f"{prefix}{name}.")
+    return out
+
 
 # ── study ───────────────────────────────────────────────────────────────────────────────────────
 class Study(Strict):
@@ -100,6 +117,14 @@ class Study(Strict):
     @property
     def seed_list(self) -> list[int]:
         return list(range(self.seeds)) if isinstance(self.seeds, int) else list(self.seeds)
+
+    def problems(self, spec):
+        task = task_of(spec.data)
+        allowed = CLASSIFICATION_METRICS if task == "classification" else REGRESSION_METRICS
+        if self.metric in allowed:
+            return []
+        return [("metric", f"{self.metric!r} does not exist for a {task} task "
+                           f"(expected one of {', '.join(sorted(allowed))})")]
 
 
 # ── data ────────────────────────────────────────────────────────────────────────────────────────
@@ -140,6 +165,21 @@ class SyntheticData(Strict):
             raise ValueError("\n".join(problems))
         return self
 
+    @property
+    def training_rows(self) -> tuple[int, str] | None:
+        """Rows of the training split and how they come about, when known from the spec alone
+        (a file's rows are counted where it is read, in ``compiler.data``)."""
+        n_train = train_size(self.samples, self.validation)
+        if n_train < 1 or n_train == self.samples:
+            return None
+        return n_train, f"{self.samples} × (1 − {self.validation})"
+
+    def problems(self, spec):
+        if self.training_rows is None:
+            return [("validation", f"{self.validation} leaves no rows on one side of the split of "
+                                   f"{self.samples} samples")]
+        return []
+
 
 class FileData(Strict):
     """A table on disk (Parquet, CSV or NPZ). ``path`` is relative to the spec file's folder and
@@ -173,6 +213,8 @@ class FileData(Strict):
             raise ValueError(f"data path {v!r} leaves the spec's folder; paths are relative to the spec file "
                              "and stay inside its folder (copy the file there)")
         return v
+
+    training_rows: ClassVar[None] = None
 
     @model_validator(mode="after")
     def _target_apart(self):
@@ -254,37 +296,90 @@ class Model(Strict):
 
 
 # ── divergence ──────────────────────────────────────────────────────────────────────────────────
-class L2(Strict):
+class DivergenceSection(Strict):
+    """What every divergence declares about itself, so that the spec check, the data loader, the
+    resource guard and the compiler ask it instead of knowing kinds: the task its targets belong
+    to, the number of classes it is defined for (None: any) and its output width."""
+
+    task: ClassVar[Literal["classification", "regression"]]
+    classes: ClassVar[int | None] = None
+
+    def outputs(self, classes: int | None, targets: int | None) -> int:
+        """Output units the network needs for ``classes`` classes or ``targets`` target columns."""
+        return classes if self.task == "classification" else targets
+
+    def class_problem(self, classes: int, found: str) -> str | None:
+        """Why ``classes`` classes (``found`` says where they were counted) do not suit it."""
+        if self.classes is None or classes == self.classes:
+            return None
+        what = "binary" if self.classes == 2 else f"defined for {self.classes} classes"
+        return f"{self.kind!r} is {what} but {found}; use {_divergences_for('classification', classes)}"
+
+    def problems(self, spec):
+        task = task_of(spec.data)
+        if task != self.task:
+            needs = "class targets" if self.task == "classification" else "real-valued targets"
+            return [("kind", f"{self.kind!r} needs {needs} but the data is a {task} task; "
+                             f"use {_divergences_for(task, classes_of(spec.data))}")]
+        classes = classes_of(spec.data)
+        problem = None if classes is None else self.class_problem(classes, f"data.classes = {classes}")
+        return [] if problem is None else [("kind", problem)]
+
+
+class L2(DivergenceSection):
     """Identity output, half squared error (regression)."""
     kind: Literal["l2"]
     """Identity output, half squared error."""
+    task: ClassVar = "regression"
 
 
-class KL(Strict):
+class KL(DivergenceSection):
     """Softmax output, KL(d || y) to the (optionally smoothed) target distribution."""
     kind: Literal["kl"]
     """Softmax output, KL divergence to the target distribution."""
     label_smoothing: Rate = 0.0
     """Share of the target probability spread evenly over all classes."""
     knobs: ClassVar[tuple[str, ...]] = ("label_smoothing",)
+    task: ClassVar = "classification"
 
 
-class BCE(Strict):
+class BCE(DivergenceSection):
     """Sigmoid output, binary cross-entropy (two classes)."""
     kind: Literal["bce"]
     """Sigmoid output, binary cross-entropy."""
+    task: ClassVar = "classification"
+    classes: ClassVar = 2
+
+    def outputs(self, classes, targets):
+        return 1
 
 
-class Huber(Strict):
+class Huber(DivergenceSection):
     """Identity output, Huber loss with threshold ``delta`` (regression)."""
     kind: Literal["huber"]
     """Identity output, Huber loss."""
     delta: Positive = 1.0
     """Error at which the loss turns from quadratic to linear."""
     knobs: ClassVar[tuple[str, ...]] = ("delta",)
+    task: ClassVar = "regression"
 
 
 Divergence = Annotated[Union[L2, KL, BCE, Huber], Field(discriminator="kind")]
+
+
+def _divergences_for(task: str, classes: int | None) -> str:
+    """The divergences to suggest for a task with ``classes`` classes (None: not known yet)."""
+    fits, others = [], []
+    for member in typing.get_args(typing.get_args(Divergence)[0]):
+        if member.task != task:
+            continue
+        kind = repr(typing.get_args(member.model_fields["kind"].annotation)[0])
+        if member.classes is None:
+            fits.append(kind)
+        elif classes is None or classes == member.classes:
+            others.append(f"{kind} for {member.classes} classes")
+    named = fits + others or ["another divergence"]
+    return ", ".join(named[:-1]) + " or " + named[-1] if len(named) > 1 else named[0]
 
 
 # ── normalization ───────────────────────────────────────────────────────────────────────────────
@@ -377,6 +472,11 @@ class WarmupCosine(Strict):
     """Learning rate at the end, as a fraction of the base rate."""
     knobs: ClassVar[tuple[str, ...]] = ("final_fraction",)
 
+    def problems(self, spec):
+        if self.warmup_epochs < spec.training.epochs:
+            return []
+        return [("warmup_epochs", f"{self.warmup_epochs} must be below training.epochs = {spec.training.epochs}")]
+
 
 Schedule = Annotated[Union[Constant, Exponential, Cosine, WarmupCosine], Field(discriminator="kind")]
 LearningRate = Annotated[float, Field(gt=0.0, le=1e6, allow_inf_nan=False)]
@@ -421,6 +521,12 @@ class AdamW(Adam):
     kind: Literal["adamw"]
     """Adam with decoupled weight decay."""
 
+    def problems(self, spec):
+        if spec.regularization.decoupled:
+            return []
+        return [("kind", "'adamw' applies weight decay decoupled from the gradient; set regularization.decoupled = "
+                         "true (λ is regularization.weight_decay) or use 'adam'")]
+
 
 class RMSProp(Strict):
     """Gradient scaled by a running mean of its square."""
@@ -453,6 +559,17 @@ class Training(Strict):
     """Rows per optimization step."""
     drop_last: bool = True
     """Drop the last, incomplete batch of each epoch."""
+
+    def steps(self, n_train: int) -> int:
+        """Optimization steps per epoch over ``n_train`` training rows."""
+        return n_train // self.batch_size if self.drop_last else -(-n_train // self.batch_size)
+
+    def problems(self, spec):
+        rows = spec.data.training_rows
+        if rows is not None and self.batch_size > rows[0]:
+            return [("batch_size", f"{self.batch_size} exceeds the {rows[0]} training samples ({rows[1]}); "
+                                   f"use at most {rows[0]}")]
+        return []
 
 
 # ── ablation ────────────────────────────────────────────────────────────────────────────────────
@@ -575,43 +692,10 @@ class Spec(Strict):
 
     @model_validator(mode="after")
     def _coherent(self):
-        # Cross-section rules. Each problem names the key to change; problems.pydantic_problems
-        # reads the "@key: message" lines back into separate, located problems.
-        problems: list[tuple[str, str]] = []
-        task = task_of(self.data)
-        kind = self.divergence.kind
-        if task == "regression" and kind in ("kl", "bce"):
-            problems.append(("divergence.kind", f"{kind!r} needs class targets but the data is a regression task; "
-                                                "use 'l2' or 'huber'"))
-        if task == "classification" and kind in ("l2", "huber"):
-            problems.append(("divergence.kind", f"{kind!r} needs real-valued targets but the data is a classification "
-                                                "task; use 'kl' (or 'bce' for two classes)"))
-        n_classes = classes_of(self.data)
-        if kind == "bce" and n_classes is not None and n_classes != 2:
-            problems.append(("divergence.kind", f"'bce' is binary but data.classes = {n_classes}; "
-                                                "use 'kl' or set data.classes = 2"))
-        metric = self.study.metric
-        allowed = CLASSIFICATION_METRICS if task == "classification" else REGRESSION_METRICS
-        if metric not in allowed:
-            problems.append(("study.metric", f"{metric!r} does not exist for a {task} task "
-                                             f"(expected one of {', '.join(sorted(allowed))})"))
-        if self.optimizer.kind == "adamw" and not self.regularization.decoupled:
-            problems.append(("optimizer.kind", "'adamw' applies weight decay decoupled from the gradient; "
-                                               "set regularization.decoupled = true (λ is regularization.weight_decay) "
-                                               "or use 'adam'"))
-        if isinstance(self.data, SyntheticData):
-            n_train = train_size(self.data.samples, self.data.validation)
-            if n_train < 1 or n_train == self.data.samples:
-                problems.append(("data.validation", f"{self.data.validation} leaves no rows on one side of the "
-                                                    f"split of {self.data.samples} samples"))
-            elif self.training.batch_size > n_train:
-                problems.append(("training.batch_size", f"{self.training.batch_size} exceeds the {n_train} training "
-                                                        f"samples ({self.data.samples} × (1 − {self.data.validation})); "
-                                                        f"use at most {n_train}"))
-        sched = self.optimizer.schedule
-        if isinstance(sched, WarmupCosine) and sched.warmup_epochs >= self.training.epochs:
-            problems.append(("optimizer.schedule.warmup_epochs", f"{sched.warmup_epochs} must be below "
-                                                                 f"training.epochs = {self.training.epochs}"))
+        # Cross-section rules live with the sections they are about (``Strict.problems``); each
+        # names the key to change, and problems.pydantic_problems reads the "@key: message" lines
+        # back into separate, located problems.
+        problems = section_problems(self, self)
         if problems:
             raise ValueError("\n".join(f"@{key}: {msg}" for key, msg in problems))
         return self

@@ -20,8 +20,9 @@ Memory model (float32 everywhere; a run's state is its lane's share of a vmapped
 
 - data: the host arrays and one device copy per (structure, data set), since compiled programs
   keep theirs for the whole invocation;
-- per lane: :func:`runtime.plan.lane_bytes` (parameters, gradients, up to three optimizer slots,
-  one batch of activations) plus what grows with the data: the split indices, the epoch's
+- per lane (:func:`per_lane_bytes`): from the network family's declared cost
+  (``compiler.model.FAMILIES``: parameters, activations per example, weight masks), parameters,
+  gradients, up to three optimizer slots and one batch of activations, plus what grows with the data: the split indices, the epoch's
   shuffled order, the larger of the gathered training rows (standardization is fitted on them)
   and the validation split's forward pass, and the per-step metrics of one epoch;
 - × :data:`XLA_SLACK` for temporaries XLA allocates beside the live values, plus
@@ -48,6 +49,7 @@ from __future__ import annotations
 
 import dataclasses
 import json
+import math
 import os
 import tempfile
 from dataclasses import dataclass
@@ -55,7 +57,7 @@ from pathlib import Path
 
 from compiler.errors import UserError
 from compiler.spec import train_size
-from runtime.plan import Group, lane_bytes
+from runtime.plan import Group
 
 __all__ = ["Estimate", "ResourceError", "Calibration", "estimate", "schedule", "model_seconds", "lane_budget", "check",
            "check_data", "available_bytes", "memory_budget", "total_bytes", "data_room", "XLA_SLACK", "RUNTIME_BYTES",
@@ -141,37 +143,45 @@ class Estimate:
         return f"about {_size(self.peak_bytes)} of memory and {_duration(self.seconds)}{side}"
 
 
-def _outputs(variant, dataset) -> int:
-    if dataset.task == "regression":
-        return dataset.y.shape[1]
-    return 1 if variant.spec.divergence.kind == "bce" else dataset.classes
-
-
 def _shape(group: Group, dataset):
-    v = group.runs[0].variant
-    n, features = dataset.x.shape
-    widths = [features, *v.spec.model.widths, _outputs(v, dataset)]
-    n_train = train_size(n, v.spec.data.validation)
-    batch = v.spec.training.batch_size
-    steps = n_train // batch if v.spec.training.drop_last else -(-n_train // batch)
-    return v, n, n_train, widths, steps
+    """The group's spec, its network's declared :class:`compiler.model.Cost`, rows in all and in
+    training, and optimization steps per epoch: the network, its divergence and its training
+    section each say their own part."""
+    # Imported here, not at the top: `lesion check` reads this module (``data_room``) and must
+    # not load jax.
+    from compiler import model, regularization
+
+    spec = group.runs[0].variant.spec
+    fields = {name: getattr(spec.model, name) for name in type(spec.model).model_fields if name != "kind"}
+    cost = model.FAMILIES[spec.model.kind].cost(
+        **{**fields, "hidden": spec.model.widths}, in_shape=dataset.x.shape[1:],
+        out_width=spec.divergence.outputs(dataset.classes, dataset.targets),
+        dropout=regularization.REGISTRY[spec.regularization.dropout.kind]())
+    n = dataset.x.shape[0]
+    n_train = train_size(n, spec.data.validation)
+    return spec, cost, n, n_train, spec.training.steps(n_train)
 
 
 def per_lane_bytes(group: Group, dataset) -> int:
-    v, n, n_train, widths, steps = _shape(group, dataset)
-    n_val, features = n - n_train, widths[0]
-    grows = (n + n_train + max(n_train * features, n_val * (features + 2 * sum(widths)))
-             + steps * (len(widths) + 6))
-    return lane_bytes(v, features, widths[-1]) + 4 * grows
+    """Parameters with gradients and up to three optimizer slots, one batch of activations kept
+    for the backward pass (and the weight masks it draws), plus what grows with the data: the
+    split indices, the epoch's order, the larger of the gathered training rows and the validation
+    split's forward pass, and one epoch of per-step metrics; float32, with a factor of 4 on the
+    activations for XLA's copies of them."""
+    spec, cost, n, n_train, steps = _shape(group, dataset)
+    n_val, features = n - n_train, math.prod(dataset.x.shape[1:])
+    batch = spec.training.batch_size
+    lane = 5 * cost.parameters + 4 * batch * cost.activations + batch * cost.masks
+    grows = (n + n_train + max(n_train * features, n_val * (features + 2 * cost.activations))
+             + steps * (cost.layers + 7))
+    return 4 * (lane + grows)
 
 
 def model_seconds(group: Group, dataset) -> float:
     """Uncalibrated execution seconds of a group."""
-    v, n, n_train, widths, steps = _shape(group, dataset)
-    macs = sum(a * b for a, b in zip(widths[:-1], widths[1:]))
-    flops = group.lane_width * (6 * macs * n_train + 2 * macs * (n - n_train))
-    epochs = v.spec.training.epochs
-    return epochs * (flops / FLOPS_PER_SECOND + steps * STEP_SECONDS)
+    spec, cost, n, n_train, steps = _shape(group, dataset)
+    flops = group.lane_width * (6 * cost.macs * n_train + 2 * cost.macs * (n - n_train))
+    return spec.training.epochs * (flops / FLOPS_PER_SECOND + steps * STEP_SECONDS)
 
 
 def schedule(costs: list[float], workers: int) -> float:
