@@ -67,8 +67,8 @@ from compiler.data import Dataset
 from compiler.hashing import knobs_of, structure_key
 from compiler.spec import MACRO_F1, RECALL, Spec, Strict, class_metrics, train_size
 
-__all__ = ["Program", "Carry", "compile_structure", "class_scores", "zero_knobs", "fit_standardization", "knob_vector", "seed_key",
-           "param_digest", "permutation",
+__all__ = ["Program", "Carry", "compile_structure", "class_scores", "zero_knobs", "fit_standardization", "knob_vector",
+           "seed_key", "param_digest", "permutation",
            "SPLIT", "INIT", "SHUFFLE", "DROPOUT"]
 
 # Purpose tags of the random streams; fixed forever, since they decide every run's bits.

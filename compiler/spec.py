@@ -24,7 +24,8 @@ __all__ = [
     "Dropout", "Regularization", "Constant", "Exponential", "Cosine", "WarmupCosine", "Schedule",
     "SGD", "Adam", "AdamW", "RMSProp", "Optimizer", "Training", "Axis", "ListedVariant",
     "Ablation", "Spec", "METRICS", "PER_CLASS_METRICS", "RECALL", "MACRO_F1", "CLASSIFICATION_GENERATORS",
-    "task_of", "classes_of", "class_of_metric", "direction", "known_metrics", "class_metrics", "metrics_of", "metric_problem", "spelled_metrics",
+    "task_of", "classes_of", "class_of_metric", "direction", "known_metrics", "class_metrics", "metrics_of",
+    "metric_problem", "spelled_metrics",
 ]
 
 # The metric names, in one place. A classifier's evaluation computes, from the predictions its
@@ -105,7 +106,8 @@ def metric_problem(metric: str, task: str, classes: int | None, classes_from: st
     per_class = class_of_metric(metric)
     allowed = CLASSIFICATION_METRICS if task == "classification" else REGRESSION_METRICS
     if metric not in allowed and not (per_class and task == "classification"):
-        return f"{metric!r} does not exist for a {task} task (expected one of {spelled_metrics(metrics_of(task, classes))})"
+        expected = spelled_metrics(metrics_of(task, classes))
+        return f"{metric!r} does not exist for a {task} task (expected one of {expected})"
     if per_class and classes is not None and per_class[1] >= classes:
         prefix = per_class[0]
         return (f"{metric!r} names class {per_class[1]} but there are {classes} classes (0 … {classes - 1}: "
