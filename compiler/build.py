@@ -19,10 +19,13 @@ epoch: shuffle, every step in ``lax.scan``, then the validation split in inferen
 ``train`` is ``init`` then a scan over ``epochs``. Metrics per epoch (``Program.metric_names``):
 ``train_divergence`` and ``train_penalty`` (``λ/2‖W‖²``, 0 when decay is decoupled) averaged
 over the epoch's steps; ``val_divergence`` and ``val_accuracy`` or ``val_rmse`` (target units)
-on the validation split in inference mode; ``grad_norm`` and ``grad_norm_l<i>`` (L2 norm of the
+on the validation split in inference mode, for a classifier also ``val_macro_f1`` and
+``val_recall_<k>`` per class from the same predictions (:func:`class_scores`; the names come from
+``compiler.spec.class_metrics``); ``grad_norm`` and ``grad_norm_l<i>`` (L2 norm of the
 objective's gradient, all of it or one layer's, averaged over steps); ``weight_norm`` (L2 norm of
 the weight matrices at the end of the epoch); ``learning_rate`` at the epoch's last step.
-``evaluate`` returns ``divergence`` and ``accuracy`` or ``rmse``.
+``evaluate`` returns ``divergence`` and ``accuracy`` (with ``macro_f1`` and ``recall_<k>``) or
+``rmse``.
 
 Components are built from their spec sections by their family's registry under the section's
 ``kind``, with every field of the section as an argument of the same name: knobs as the traced
@@ -62,10 +65,10 @@ import optax
 from compiler import divergences, model, normalization, optimizers, regularization
 from compiler.data import Dataset
 from compiler.hashing import knobs_of, structure_key
-from compiler.spec import Spec, Strict, train_size
+from compiler.spec import MACRO_F1, RECALL, Spec, Strict, class_metrics, train_size
 
-__all__ = ["Program", "Carry", "compile_structure", "zero_knobs", "fit_standardization", "knob_vector", "seed_key",
-           "param_digest", "permutation",
+__all__ = ["Program", "Carry", "compile_structure", "class_scores", "zero_knobs", "fit_standardization", "knob_vector",
+           "seed_key", "param_digest", "permutation",
            "SPLIT", "INIT", "SHUFFLE", "DROPOUT"]
 
 # Purpose tags of the random streams; fixed forever, since they decide every run's bits.
@@ -186,6 +189,33 @@ def fit_standardization(x_train: jax.Array) -> tuple[jax.Array, jax.Array]:
     return mean, jnp.where(constant, 1.0, jnp.sqrt(var))
 
 
+def class_scores(predicted: jax.Array, y: jax.Array, classes: int) -> dict[str, jax.Array]:
+    """Recall of each class and the macro-averaged F1 score of class predictions (int ``[n]``)
+    against labels (int ``[n]``, ``0 … classes − 1``), as float32 scalars named by
+    ``compiler.spec.RECALL`` + k and ``compiler.spec.MACRO_F1``.
+
+    With per-class counts ``tp`` (predicted k and labelled k), ``support`` (labelled k) and
+    ``chosen`` (predicted k): recall_k = tp / support, F1_k = 2 tp / (support + chosen) (the
+    harmonic mean of precision and recall written without either, as scikit-learn computes it).
+    Macro F1 is the unweighted mean of F1_k over the classes that occur in the labels or the
+    predictions: scikit-learn's ``f1_score(average="macro")`` with ``labels`` left out. A class
+    absent from the labels has recall 0 (scikit-learn's ``zero_division`` default, "warn", which
+    returns 0); a class in neither is left out of the mean, so the macro F1 never divides by 0.
+    The counts are int32 scatter-adds (exact, in any order); every value is finite, so these
+    metrics never mark an epoch unhealthy."""
+    ones = jnp.ones_like(y, dtype=jnp.int32)
+    count = lambda index, weight: jnp.zeros((classes,), jnp.int32).at[index].add(weight)
+    support, chosen = count(y, ones), count(predicted, ones)
+    tp = count(y, (predicted == y).astype(jnp.int32))
+    ratio = lambda num, den: jnp.where(den > 0, num.astype(jnp.float32) / jnp.maximum(den, 1).astype(jnp.float32),
+                                       jnp.float32(0.0))
+    recall = ratio(tp, support)
+    f1 = ratio(2 * tp, support + chosen)
+    present = (support + chosen) > 0
+    macro = jnp.sum(jnp.where(present, f1, 0.0)) / jnp.sum(present).astype(jnp.float32)
+    return {MACRO_F1: macro, **{f"{RECALL}{k}": recall[k] for k in range(classes)}}
+
+
 def zero_knobs(variants: Sequence[Spec]) -> frozenset[str]:
     """The knobs that are 0 in every one of ``variants`` (lanes padded with copies of a real run
     add no other value): work they make the identity can be left out of their program."""
@@ -263,17 +293,21 @@ def compile_structure(variants: Sequence[Spec], dataset: Dataset) -> Program:
                      jax.random.fold_in(key, DROPOUT), jnp.bool_(False), jnp.int32(-1))
 
     def scores(p, params, state, x, y):
-        """Inference-mode divergence and accuracy/RMSE on standardized inputs."""
+        """Inference-mode divergence and accuracy/RMSE on standardized inputs; for a classifier
+        also the per-class recall and macro F1 of the same predictions (:func:`class_scores`)."""
         # Inference draws no dropout masks, so any key will do.
         z, _ = p.network.apply(params, state, x, seed_key(0), None, False)
         out = {"divergence": jnp.mean(p.divergence.per_example(z, y))}
         if not classification:
             out["rmse"] = jnp.sqrt(jnp.mean(jnp.square(z - y)))
-        elif z.shape[-1] == 1:
+            return out
+        if z.shape[-1] == 1:
             out["accuracy"] = jnp.mean(((z[:, 0] > 0) == (y == 1)).astype(jnp.float32))
+            predicted = (z[:, 0] > 0).astype(jnp.int32)
         else:
             out["accuracy"] = jnp.mean((jnp.argmax(z, axis=-1) == y).astype(jnp.float32))
-        return out
+            predicted = jnp.argmax(z, axis=-1).astype(jnp.int32)
+        return {**out, **class_scores(predicted, y, dataset.classes)}
 
     def epoch(carry: Carry, knobs, data_x, data_y):
         p = parts(knobs)
@@ -343,7 +377,8 @@ def compile_structure(variants: Sequence[Spec], dataset: Dataset) -> Program:
                       jnp.asarray(y))
 
     metric_names = ("train_divergence", "train_penalty", "val_divergence",
-                    "val_accuracy" if classification else "val_rmse", "grad_norm",
+                    *(("val_accuracy", *class_metrics(dataset.classes)) if classification else ("val_rmse",)),
+                    "grad_norm",
                     *(f"grad_norm_{name}" for name in names), "weight_norm", "learning_rate")
     return Program(structure, knob_names, zero, metric_names, epochs, init, epoch, train, evaluate,
                    lambda carry: {"params": carry.params, "state": carry.state},

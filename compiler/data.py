@@ -34,7 +34,7 @@ import numpy as np
 
 from compiler.errors import Problem, SpecError, UserError, dotted
 from compiler.locate import line_of
-from compiler.spec import FileData, Spec, classes_of, task_of, train_size
+from compiler.spec import FileData, Spec, classes_of, metric_problem, task_of, train_size
 
 __all__ = ["Dataset", "DataError", "load_data", "FileInfo", "Column", "inspect_file", "load_bytes", "file_problems",
            "check_files", "locate", "GENERATORS", "rings", "spirals", "blobs", "friedman1",
@@ -420,6 +420,11 @@ def _load_file(variant: Spec, base_dir: pathlib.Path):
         problem = variant.divergence.class_problem(classes, f"the target has {classes} classes")
         if problem:
             raise DataError(f"{path}: divergence {problem}")
+        # A per-class metric's class count is known only now (the spec's check had no labels).
+        wrong = metric_problem(variant.study.metric, "classification", classes,
+                               f"the labels of target column '{data.target}' in sorted order")
+        if wrong:
+            raise DataError(f"{path}: study.metric: {wrong}")
         return x, y.reshape(-1), classes, _file_digest(path)
     y = _numeric(path, data.target, target)
     return x, y.reshape(n, -1), None, _file_digest(path)

@@ -24,19 +24,97 @@ __all__ = [
     "DivergenceSection", "L2", "KL", "BCE", "Huber", "Divergence", "NoNorm", "BatchNorm", "LayerNorm", "Normalization",
     "Dropout", "Regularization", "Constant", "Exponential", "Cosine", "WarmupCosine", "Schedule",
     "SGD", "Adam", "AdamW", "RMSProp", "Optimizer", "Training", "Axis", "ListedVariant",
-    "Ablation", "Spec", "METRICS", "CLASSIFICATION_GENERATORS",
-    "task_of", "classes_of", "section_problems", "train_size",
+    "Ablation", "Spec", "METRICS", "PER_CLASS_METRICS", "RECALL", "MACRO_F1", "CLASSIFICATION_GENERATORS",
+    "task_of", "classes_of", "section_problems", "train_size", "class_of_metric", "direction", "known_metrics",
+    "class_metrics", "metrics_of", "metric_problem", "spelled_metrics",
 ]
+
+# The metric names, in one place. A classifier's evaluation computes, from the predictions its
+# accuracy counts, the recall of each class k (RECALL + "<k>") and the F1 score averaged over
+# classes (MACRO_F1); they are named here without the split, whose prefix ("val_") the evaluating
+# code adds.
+RECALL, MACRO_F1 = "recall_", "macro_f1"
 
 # Per-epoch metrics a study may use as its headline, with the direction that counts as better.
 METRICS: dict[str, Literal["max", "min"]] = {
     "val_accuracy": "max",
+    f"val_{MACRO_F1}": "max",
     "val_divergence": "min",
     "val_rmse": "min",
     "train_divergence": "min",
 }
-CLASSIFICATION_METRICS = {"val_accuracy", "val_divergence", "train_divergence"}
+# Metrics with one column per class: the prefix, then the class index k (0 … classes − 1).
+PER_CLASS_METRICS: dict[str, Literal["max", "min"]] = {f"val_{RECALL}": "max"}
+CLASSIFICATION_METRICS = {"val_accuracy", "val_divergence", "train_divergence", f"val_{MACRO_F1}"}
 REGRESSION_METRICS = {"val_rmse", "val_divergence", "train_divergence"}
+
+
+def class_of_metric(name: str) -> tuple[str, int] | None:
+    """(prefix, class index) of a per-class metric name such as ``val_recall_2``; None otherwise.
+    The index is written as Python prints it (no sign, no leading zero), so each class has one
+    name."""
+    for prefix in PER_CLASS_METRICS:
+        k = name[len(prefix):]
+        if name.startswith(prefix) and k.isascii() and k.isdigit() and str(int(k)) == k:
+            return prefix, int(k)
+    return None
+
+
+def direction(metric: str) -> Literal["max", "min"] | None:
+    """The direction that counts as better for a metric name; None for a name that is no metric."""
+    if metric in METRICS:
+        return METRICS[metric]
+    per_class = class_of_metric(metric)
+    return PER_CLASS_METRICS[per_class[0]] if per_class else None
+
+
+def known_metrics() -> list[str]:
+    """Every metric name, a per-class one as ``<prefix><k>`` (k a class index)."""
+    return [*METRICS, *(f"{prefix}<k>" for prefix in PER_CLASS_METRICS)]
+
+
+def class_metrics(classes: int) -> tuple[str, ...]:
+    """The metrics a classifier of ``classes`` classes computes beyond accuracy, in stored order."""
+    return (f"val_{MACRO_F1}", *(f"{prefix}{k}" for prefix in PER_CLASS_METRICS for k in range(classes)))
+
+
+def metrics_of(task: str, classes: int | None) -> list[str]:
+    """The headline metrics a study of ``task`` may use; per-class ones spelled out for
+    ``classes`` classes, or as ``<prefix><k>`` while the class count is unknown (a data file's
+    is known once it is read)."""
+    if task == "regression":
+        return [m for m in METRICS if m in REGRESSION_METRICS]
+    fixed = [m for m in METRICS if m in CLASSIFICATION_METRICS]
+    if classes is None:
+        return fixed + [f"{prefix}<k>" for prefix in PER_CLASS_METRICS]
+    return fixed + [m for m in class_metrics(classes) if m not in fixed]
+
+
+def spelled_metrics(names: list[str]) -> str:
+    """Metric names as text, more than three per-class ones of a prefix as "first … last"."""
+    for prefix in PER_CLASS_METRICS:
+        mine = [i for i, n in enumerate(names) if (c := class_of_metric(n)) and c[0] == prefix]
+        if len(mine) > 3:
+            ks = sorted(class_of_metric(names[i])[1] for i in mine)
+            names = [f"{prefix}{ks[0]} … {prefix}{ks[-1]}" if i == mine[0] else n for i, n in enumerate(names)
+                     if i == mine[0] or i not in mine]
+    return ", ".join(names)
+
+
+def metric_problem(metric: str, task: str, classes: int | None, classes_from: str = "data.classes") -> str | None:
+    """Why ``metric`` is not one of a study's metrics, with the ones it has; None when it is.
+    ``classes_from`` says where the class count comes from."""
+    per_class = class_of_metric(metric)
+    allowed = CLASSIFICATION_METRICS if task == "classification" else REGRESSION_METRICS
+    if metric not in allowed and not (per_class and task == "classification"):
+        expected = spelled_metrics(metrics_of(task, classes))
+        return f"{metric!r} does not exist for a {task} task (expected one of {expected})"
+    if per_class and classes is not None and per_class[1] >= classes:
+        prefix = per_class[0]
+        return (f"{metric!r} names class {per_class[1]} but there are {classes} classes (0 … {classes - 1}: "
+                f"{classes_from}); use {prefix}0 … {prefix}{classes - 1}")
+    return None
+
 
 CLASSIFICATION_GENERATORS = ("rings", "spirals", "blobs")
 
@@ -93,7 +171,7 @@ class Study(Strict):
     seeds: Union[Annotated[int, Field(ge=1, le=10_000)], Annotated[list[Annotated[int, Field(ge=0, lt=2**31)]], Field(min_length=1, max_length=10_000)]] = 3
     """A count n (seeds 0 … n−1) or a list of distinct seeds; every variant runs once per seed."""
     metric: str = "val_accuracy"
-    """Headline metric, summarized by `lesion show` and compared by `lesion diff`."""
+    """Headline metric, summarized by `lesion show` and compared by `lesion diff`; a classifier's also val_macro_f1 and val_recall_<k> (recall of class k)."""
     # Left out of the study's JSON while unset: a new optional key dumped as null would change the
     # hash of every existing spec, and with it the folder its results are stored in.
     margin: Annotated[Union[Positive, None], Field(exclude_if=lambda v: v is None)] = None
@@ -110,8 +188,8 @@ class Study(Strict):
     @field_validator("metric")
     @classmethod
     def _known_metric(cls, v):
-        if v not in METRICS:
-            raise ValueError(f"unknown metric {v!r} (expected one of {', '.join(METRICS)})")
+        if direction(v) is None:
+            raise ValueError(f"unknown metric {v!r} (expected one of {', '.join(known_metrics())}; <k> a class index)")
         return v
 
     @property
@@ -119,12 +197,9 @@ class Study(Strict):
         return list(range(self.seeds)) if isinstance(self.seeds, int) else list(self.seeds)
 
     def problems(self, spec):
-        task = task_of(spec.data)
-        allowed = CLASSIFICATION_METRICS if task == "classification" else REGRESSION_METRICS
-        if self.metric in allowed:
-            return []
-        return [("metric", f"{self.metric!r} does not exist for a {task} task "
-                           f"(expected one of {', '.join(sorted(allowed))})")]
+        classes = classes_of(spec.data)
+        wrong = metric_problem(self.metric, task_of(spec.data), classes, f"data.classes = {classes}")
+        return [] if wrong is None else [("metric", wrong)]
 
 
 # ── data ────────────────────────────────────────────────────────────────────────────────────────

@@ -151,6 +151,15 @@ def _load_runnable(spec: Path):
     return study
 
 
+def _study_metrics(study) -> list[str]:
+    """The metrics every variant of the study stores, which --metric and study.metric accept (a
+    variant may change the class count)."""
+    from compiler.spec import classes_of, metrics_of, task_of
+
+    each = [metrics_of(task_of(v.spec.data), classes_of(v.spec.data)) for v in study.variants]
+    return [m for m in each[0] if all(m in other for other in each[1:])]
+
+
 def _check_report(study) -> dict:
     return {
         "spec": study.path,
@@ -160,6 +169,8 @@ def _check_report(study) -> dict:
         "seeds": study.seeds,
         "structures": len({v.structure for v in study.variants}),
         "runs": study.runs,
+        "metric": study.spec.study.metric,
+        "metrics": _study_metrics(study),
         "variants": [
             {"label": v.label, "changes": v.changes, "variant_hash": v.hash, "structure": v.structure,
              "seeds": study.seeds}
@@ -170,12 +181,14 @@ def _check_report(study) -> dict:
 
 def _print_check_table(study, wide: bool) -> None:
     from compiler.labels import label_parts
+    from compiler.spec import spelled_metrics
     from runtime.formats import Fit, render
 
     structures = sorted({v.structure for v in study.variants}, key=[v.structure for v in study.variants].index)
     typer.echo(f"study       {study.spec.study.name}")
     typer.echo(f"study hash  {study.study_hash}")
     typer.echo(f"result set  {study.result_set}")
+    _echo_fitted(f"metrics     {spelled_metrics(_study_metrics(study))} (headline: {study.spec.study.metric})", wide)
     typer.echo(f"{len(study.variants)} variants × {len(study.seeds)} seeds = {study.runs} runs, "
                f"compiled as {len(structures)} program{'s' if len(structures) != 1 else ''}")
     seeds = _seeds_text(study.seeds)

@@ -36,7 +36,7 @@ from compiler.expand import expand
 from compiler.labels import BASE_LABEL, format_value, label_parts
 from compiler.hashing import variant_payload
 from compiler.loader import load_text
-from compiler.spec import METRICS
+from compiler.spec import direction, known_metrics
 from runtime.sequential import Procedure, Row, Rule
 from runtime.specdiff import Change, canonical_leaf, match_variants, spec_diff
 from runtime.stats import (POWER, Comparison, adjust, compare, decide, detectable_difference, family_alpha,
@@ -147,8 +147,9 @@ def _values(rs: ResultSet, cols: dict, variant_hash: str, metric: str) -> dict[i
 def _metrics(rs: ResultSet, metrics: list[str] | None) -> list[str]:
     metrics = metrics or [rs.headline]
     for m in metrics:
-        if m not in METRICS:
-            raise ResultSetError(f"--metric {m!r}: no known direction (expected one of {', '.join(METRICS)})")
+        if direction(m) is None:
+            raise ResultSetError(f"--metric {m!r}: no known direction (expected one of {', '.join(known_metrics())}; "
+                                 "<k> a class index)")
     return metrics
 
 
@@ -177,7 +178,7 @@ def _judge(question: str, items: list[tuple[dict, tuple[dict, dict]]], correctio
     for (start, arms), c, p_adj in zip(items, comps, adjusted):
         margin = margins.get(start["metric"])
         lo, hi = interval(c, level)
-        rows.append(_row(question, start, c, arms, level, (lo, hi), decide(lo, hi, METRICS[start["metric"]], margin),
+        rows.append(_row(question, start, c, arms, level, (lo, hi), decide(lo, hi, direction(start["metric"]), margin),
                          p_adj, margin, power))
     paired = [c.n_a for c in comps if c.test == "paired"]
     if paired and 2 / 2 ** min(paired) > level:
@@ -192,7 +193,7 @@ def _row(question: str, start: dict, c: Comparison, arms: tuple, level: float, c
     """One comparison's row: its estimate, the interval at ``level`` its verdict was read off, planning."""
     start = _shown(start)
     # the probability of improvement is P(B better than A): for a metric to minimise, B − A < 0
-    flip = METRICS[start["metric"]] == "min"
+    flip = direction(start["metric"]) == "min"
     imp = [1 - x for x in (c.improvement, c.improvement_high, c.improvement_low)] if flip else \
         [c.improvement, c.improvement_low, c.improvement_high]
     return {
@@ -318,7 +319,7 @@ def sequential_design(rs: ResultSet, rule: Rule, first: list[int], *, axis: str 
                 continue
             c = compare({s: v for s, v in a.items() if s in keep}, {s: v for s, v in b.items() if s in keep})
             judged[key] = (question, start, c, (a, b))
-            rows.append(Row(key, size, c.diff, c.se, c.df, METRICS[start["metric"]], start["uses"]))
+            rows.append(Row(key, size, c.diff, c.se, c.df, direction(start["metric"]), start["uses"]))
         p.look(rows)
         if p.done:
             return Sequential(p, judged, {})

@@ -58,7 +58,7 @@ from matplotlib.transforms import blended_transform_factory  # noqa: E402
 
 from compiler.errors import UserError  # noqa: E402
 from compiler.labels import BASE_LABEL, format_value, label_parts, variant_label  # noqa: E402
-from compiler.spec import METRICS  # noqa: E402
+from compiler.spec import direction  # noqa: E402
 from runtime.show import curve_rows, summary_rows  # noqa: E402
 from runtime.stats import summarize  # noqa: E402
 from runtime.store import ResultSet  # noqa: E402
@@ -144,7 +144,7 @@ def _title(rs: ResultSet, what: str) -> str:
 
 
 def _direction_text(metric: str) -> str:
-    d = METRICS.get(metric)
+    d = direction(metric)
     return "higher is better" if d == "max" else "lower is better" if d == "min" else "no preferred direction"
 
 
@@ -359,7 +359,7 @@ def _baseline(rs: ResultSet, baseline: str | None, labels: list[str]) -> str | N
 
 def _order(rows: list[dict], metric: str) -> list[str]:
     """Best first in the metric's direction; variants without an ok run last."""
-    sign = 1.0 if METRICS.get(metric, "max") == "max" else -1.0
+    sign = -1.0 if direction(metric) == "min" else 1.0
     return [r["variant"] for r in sorted(rows, key=lambda r: (not math.isfinite(r["mean"]),
                                                              -sign * r["mean"] if math.isfinite(r["mean"]) else 0))]
 
@@ -503,7 +503,7 @@ def plot_grid(rs: ResultSet, metrics: list[str] | None = None) -> Figure:
         table = {r["variant"]: r for r in summary_rows(rs, m)}
         means = {label: table[label]["mean"] for label in cell_of}
         finite = [label for label in cell_of if math.isfinite(means[label])]
-        sign = 1.0 if METRICS.get(m, "max") == "max" else -1.0
+        sign = -1.0 if direction(m) == "min" else 1.0
         best = max(finite, key=lambda label: sign * means[label]) if finite else None
         gaps = _gaps_to_best(rs, m, best) if best else {}
         grid = np.full((ny, nx), np.nan)

@@ -18,7 +18,7 @@ import json
 import math
 from html import escape
 
-from compiler.spec import METRICS
+from compiler.spec import direction
 from runtime.formats import fmt_number
 from runtime.store import ResultSet
 
@@ -109,7 +109,7 @@ def render_report(rs: ResultSet, baseline: str | None = None) -> str:
     runs = rs.runs.to_pydict()
     environment = rs.meta["environment"]
     where = escape(str(rs.path))
-    sign = 1.0 if METRICS.get(metric, "max") == "max" else -1.0
+    sign = -1.0 if direction(metric) == "min" else 1.0
     best = max((r for r in rows if math.isfinite(r["mean"])), key=lambda r: sign * r["mean"], default=None)
     best_run = next((rid for rid, label, status in zip(runs["run_id"], runs["variant_label"], runs["status"])
                      if best and label == best["variant"] and status == "ok"), runs["run_id"][0])

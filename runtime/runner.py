@@ -22,7 +22,7 @@ import numpy as np
 import pyarrow as pa
 
 from compiler.hashing import canonical_json, lookup, variant_payload
-from compiler.spec import METRICS
+from compiler.spec import direction as metric_direction
 from runtime import __version__, environment, execute, guard, programs
 from runtime.execute import GroupResult
 from runtime.plan import Group, plan
@@ -109,7 +109,7 @@ def group_tables(result: GroupResult, group: Group, study_hash: str, headline: s
     """The runs rows and curves rows of one executed group."""
     env_json = json.dumps(result.environment, sort_keys=True)
     env_fp = environment.fingerprint(result.environment)
-    direction = METRICS[headline]
+    direction = metric_direction(headline)
     by_id = {r.run_id: r for r in group.runs}
     finished = datetime.now(timezone.utc).isoformat(timespec="seconds")
     n = len(result.lanes)

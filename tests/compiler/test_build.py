@@ -63,7 +63,8 @@ def test_program_contract(base):
     v, prog, ds, carry, metrics = base
     assert prog.structure == structure_key(v) and prog.epochs == 3
     assert prog.knob_names == tuple(k for k in KNOBS if k in prog.knob_names) and "optimizer.learning_rate" in prog.knob_names
-    assert prog.metric_names == ("train_divergence", "train_penalty", "val_divergence", "val_accuracy", "grad_norm",
+    assert prog.metric_names == ("train_divergence", "train_penalty", "val_divergence", "val_accuracy", "val_macro_f1",
+                                 "val_recall_0", "val_recall_1", "val_recall_2", "grad_norm",
                                  "grad_norm_l1", "grad_norm_l2", "weight_norm", "learning_rate")
     for name in prog.metric_names:
         assert metrics[name].shape == (3,) and metrics[name].dtype == jnp.float32
