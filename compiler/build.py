@@ -24,6 +24,13 @@ objective's gradient, all of it or one layer's, averaged over steps); ``weight_n
 the weight matrices at the end of the epoch); ``learning_rate`` at the epoch's last step.
 ``evaluate`` returns ``divergence`` and ``accuracy`` or ``rmse``.
 
+With ``data.test``, the split's permutation gives its last rows to a test split
+(:func:`compiler.spec.split_sizes`), which neither training nor standardization sees. ``epoch``
+then also returns ``Program.test_names`` (``test_divergence`` and ``test_accuracy`` or
+``test_rmse``, inference mode, NaN with the epoch's other metrics when it is discarded); they are
+left out of the health check, so test rows decide nothing about a run, and the runtime keeps them
+only at the epoch the study judges its runs at (never as a curve).
+
 Components are built from their spec sections by their family's registry under the section's
 ``kind``, with every field of the section as an argument of the same name: knobs as the traced
 values, the other fields as Python values (what a knob-free section field changes, such as
@@ -62,7 +69,7 @@ import optax
 from compiler import divergences, model, normalization, optimizers, regularization
 from compiler.data import Dataset
 from compiler.hashing import knobs_of, structure_key
-from compiler.spec import Spec, Strict, train_size
+from compiler.spec import Spec, Strict, split_sizes
 
 __all__ = ["Program", "Carry", "compile_structure", "zero_knobs", "fit_standardization", "knob_vector", "seed_key",
            "param_digest", "permutation",
@@ -77,6 +84,7 @@ class Program(NamedTuple):
     knob_names: tuple[str, ...]
     zero_knobs: frozenset[str]
     metric_names: tuple[str, ...]
+    test_names: tuple[str, ...]
     epochs: int
     init: Callable
     epoch: Callable
@@ -95,6 +103,7 @@ class Carry(NamedTuple):
     epoch: jax.Array      # int32, index of the next epoch
     train_idx: jax.Array  # int32 [n_train]
     val_idx: jax.Array    # int32 [n_val]
+    test_idx: jax.Array   # int32 [n_test], empty without data.test
     x_mean: jax.Array
     x_scale: jax.Array
     shuffle_key: jax.Array
@@ -204,7 +213,7 @@ def compile_structure(variants: Sequence[Spec], dataset: Dataset) -> Program:
     zero = zero_knobs(variants)
     n, features = dataset.x.shape
     classification = dataset.task == "classification"
-    n_train = train_size(n, variant.data.validation)
+    n_train, n_val, n_test = split_sizes(n, variant.data.validation, variant.data.test)
     targets = None if classification else dataset.y.shape[1]
     epochs = variant.training.epochs
     batch_size = variant.training.batch_size
@@ -257,12 +266,14 @@ def compile_structure(variants: Sequence[Spec], dataset: Dataset) -> Program:
         p = parts(knobs)
         data_x = jnp.asarray(data_x)
         order = permutation(jax.random.fold_in(key, SPLIT), n)
-        train_idx, val_idx = order[:n_train], order[n_train:]
+        # The test rows come last in the split's permutation: without a test split the training and
+        # validation rows are what they always were.
+        train_idx, val_idx, test_idx = order[:n_train], order[n_train:n_train + n_val], order[n_train + n_val:]
         mean, scale = fit_standardization(data_x[train_idx]) if fit_scale else \
             (jnp.zeros((features,), jnp.float32), jnp.ones((features,), jnp.float32))
         params, state = p.network.init(jax.random.fold_in(key, INIT), features)
         return Carry(params, state, p.tx.init(params), dict(knobs), jnp.int32(0),
-                     train_idx.astype(jnp.int32), val_idx.astype(jnp.int32), mean,
+                     train_idx.astype(jnp.int32), val_idx.astype(jnp.int32), test_idx.astype(jnp.int32), mean,
                      scale, jax.random.fold_in(key, SHUFFLE),
                      jax.random.fold_in(key, DROPOUT), jnp.bool_(False), jnp.int32(-1))
 
@@ -323,6 +334,11 @@ def compile_structure(variants: Sequence[Spec], dataset: Dataset) -> Program:
         metrics.update({f"val_{k}": v for k, v in val.items()})
         metrics["weight_norm"] = _global_norm([w for w, m in zip(jax.tree.leaves(params), jax.tree.leaves(weights)) if m])
         metrics["learning_rate"] = jnp.asarray(p.schedule(e * steps + steps - 1), jnp.float32)
+        # Test scores stay out of the health check: a test row can never decide a run's status.
+        tested = {}
+        if n_test:
+            test_x = standardize(carry, data_x[carry.test_idx])
+            tested = {f"test_{k}": v for k, v in scores(p, params, state, test_x, data_y[carry.test_idx]).items()}
         # Health is judged once per epoch, not per step (one select over the parameters per
         # epoch instead of one per step): an epoch in which the objective, a gradient, a
         # parameter, a running statistic or a metric (finite but huge weights can overflow the
@@ -333,7 +349,8 @@ def compile_structure(variants: Sequence[Spec], dataset: Dataset) -> Program:
         keep = lambda new, old: jax.tree.map(lambda a, b: jnp.where(diverged, b, a), new, old)
         params, state, opt_state = (keep(params, carry.params), keep(state, carry.state),
                                     keep(opt_state, carry.opt_state))
-        metrics = {name: jnp.where(diverged, jnp.nan, metrics[name]).astype(jnp.float32) for name in metric_names}
+        metrics = {name: jnp.where(diverged, jnp.nan, {**metrics, **tested}[name]).astype(jnp.float32)
+                   for name in metric_names + test_names}
         diverged_at = jnp.where(diverged & ~carry.diverged, e, carry.diverged_at)
         return carry._replace(params=params, state=state, opt_state=opt_state, epoch=e + 1,
                               diverged=diverged, diverged_at=diverged_at), metrics
@@ -349,6 +366,7 @@ def compile_structure(variants: Sequence[Spec], dataset: Dataset) -> Program:
     metric_names = ("train_divergence", "train_penalty", "val_divergence",
                     "val_accuracy" if classification else "val_rmse", "grad_norm",
                     *(f"grad_norm_{name}" for name in names), "weight_norm", "learning_rate")
-    return Program(structure, knob_names, zero, metric_names, epochs, init, epoch, train, evaluate,
+    test_names = ("test_divergence", "test_accuracy" if classification else "test_rmse") if n_test else ()
+    return Program(structure, knob_names, zero, metric_names, test_names, epochs, init, epoch, train, evaluate,
                    lambda carry: {"params": carry.params, "state": carry.state},
                    lambda carry: (carry.diverged, carry.diverged_at), pack)

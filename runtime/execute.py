@@ -36,6 +36,8 @@ class LaneResult:
     run_id: str
     lane: int
     curves: dict[str, np.ndarray]       # metric -> float32[epochs]
+    # test metric -> float32[epochs]: only the epoch the study judges runs at is ever stored
+    tests: dict[str, np.ndarray]
     diverged_at: int | None             # 1-based epoch, None when the run stayed finite
     param_digest: str
     warnings: list[str] = field(default_factory=list)
@@ -49,6 +51,7 @@ class GroupResult:
     group_id: str
     lane_width: int
     metric_names: tuple[str, ...]
+    test_names: tuple[str, ...]
     lanes: list[LaneResult]
     compile_seconds: float
     run_seconds: float
@@ -162,19 +165,21 @@ def execute_group(group: Group, dataset, environment: dict,
     run_seconds = time.perf_counter() - t0
 
     names = program.metric_names
-    stacked = {m: np.stack([np.asarray(ep[m], dtype=np.float32) for ep in per_epoch]) for m in names}
+    stacked = {m: np.stack([np.asarray(ep[m], dtype=np.float32) for ep in per_epoch])
+               for m in names + program.test_names}
     results = []
     for i, run in enumerate(group.runs):
         curves = {m: stacked[m][:, i] for m in names}
         lane_params = jax.tree.map(lambda a: a[i], params)
         results.append(LaneResult(
-            run_id=run.run_id, lane=i, curves=curves,
+            run_id=run.run_id, lane=i, curves=curves, tests={m: stacked[m][:, i] for m in program.test_names},
             diverged_at=int(at[i]) + 1 if bool(diverged[i]) else None,
             param_digest=param_digest(lane_params),
             warnings=diagnose(run.variant.spec.normalization.kind, len(run.variant.spec.model.widths), curves),
             arrays=_lane_arrays(lane_params, carry, i) if keep_arrays else None,
         ))
-    return GroupResult(group.group_id, group.lane_width, names, results, compile_seconds, run_seconds, environment)
+    return GroupResult(group.group_id, group.lane_width, names, program.test_names, results, compile_seconds,
+                       run_seconds, environment)
 
 
 def _lane_arrays(lane_params, carry, i) -> dict[str, np.ndarray]:
@@ -184,6 +189,8 @@ def _lane_arrays(lane_params, carry, i) -> dict[str, np.ndarray]:
            for path, leaf in jax.tree_util.tree_flatten_with_path(lane_params)[0]}
     out["input/mean"], out["input/scale"] = np.asarray(carry.x_mean[i]), np.asarray(carry.x_scale[i])
     out["split/validation"] = np.asarray(carry.val_idx[i])
+    if carry.test_idx.shape[-1]:
+        out["split/test"] = np.asarray(carry.test_idx[i])
     return out
 
 

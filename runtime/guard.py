@@ -144,7 +144,7 @@ def _shape(group: Group, dataset):
     v = group.runs[0].variant
     n, features = dataset.x.shape
     widths = [features, *v.spec.model.widths, _outputs(v, dataset)]
-    n_train = train_size(n, v.spec.data.validation)
+    n_train = train_size(n, v.spec.data.validation, v.spec.data.test)
     batch = v.spec.training.batch_size
     steps = n_train // batch if v.spec.training.drop_last else -(-n_train // batch)
     return v, n, n_train, widths, steps

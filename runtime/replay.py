@@ -194,7 +194,8 @@ def replay(path: str | Path, *, run: str | None = None, variant: str | None = No
         if on_group:
             on_group(g)
         result = execute_group(g, d, current, reuse=False, keep_arrays=keep_arrays)
-        fresh, _ = group_tables(result, g, rs.study_hash, rs.headline, key_columns, d.fingerprint)
+        fresh, _ = group_tables(result, g, rs.study_hash, rs.headline, key_columns, d.fingerprint,
+                                loaded.spec.selection)
         fresh = fresh.to_pydict()
         for j, lane in enumerate(result.lanes):
             i = row_of[lane.run_id]
