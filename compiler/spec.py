@@ -537,11 +537,11 @@ class TunedKnob(Strict):
 
     @property
     def grid(self) -> list[float]:
-        """The values tried; a range's values rounded to 12 significant digits so labels stay readable."""
+        """The values tried; a range's values rounded to 4 significant digits (labels stay short; the rounded values are the ones run)."""
         if self.values is not None:
             return list(self.values)
         ratio = self.high / self.low
-        return [float(f"{self.low * ratio ** (i / (self.points - 1)):.12g}") for i in range(self.points)]
+        return [float(f"{self.low * ratio ** (i / (self.points - 1)):.4g}") for i in range(self.points)]
 
 
 class Tuning(Strict):
