@@ -54,6 +54,7 @@ from matplotlib.colors import LinearSegmentedColormap  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
 from matplotlib.lines import Line2D  # noqa: E402
 from matplotlib.patches import Rectangle  # noqa: E402
+from matplotlib.ticker import FuncFormatter  # noqa: E402
 from matplotlib.transforms import blended_transform_factory  # noqa: E402
 
 from compiler.errors import UserError  # noqa: E402
@@ -629,6 +630,7 @@ def plot_budget(rs: ResultSet) -> Figure:
                 gid=f"budget:{arm}")
         ax.fill_between(n, mean - sd, mean + sd, color=colour, alpha=0.15, linewidth=0)
     ax.set_xscale("log")
+    ax.xaxis.set_major_formatter(FuncFormatter(lambda x, _: f"{x:g}"))
     ax.set_xlabel("runs tried (settings × seeds drawn with replacement)")
     ax.set_ylabel(f"expected best {metric}")
     ax.grid(True, alpha=0.25, linewidth=0.6)
@@ -636,8 +638,8 @@ def plot_budget(rs: ResultSet) -> Figure:
         ax.spines[side].set_visible(False)
     ax.legend(fontsize=8.5, frameon=False)
     _suptitle(fig, _title(rs, "expected best validation score vs tuning budget"),
-              f"{metric} ({_direction_text(metric)}) at the judged epoch; band: ± one sd of the best of n draws "
-              "(Dodge et al. 2019); arms whose curves cross trade places as the budget grows")
+              f"{metric} ({_direction_text(metric)}) at the judged epoch; band: ± one sd of the best of n "
+              "draws (Dodge et al. 2019)")
     return fig
 
 
