@@ -178,6 +178,13 @@ def _print_check_table(study, wide: bool) -> None:
     typer.echo(f"result set  {study.result_set}")
     typer.echo(f"{len(study.variants)} variants × {len(study.seeds)} seeds = {study.runs} runs, "
                f"compiled as {len(structures)} program{'s' if len(structures) != 1 else ''}")
+    tune = study.spec.ablation.tune if study.spec.ablation is not None else None
+    if tune is not None:
+        from compiler.expand import arms
+
+        metric, epoch = study.spec.selection
+        typer.echo(f"tuned: {len(arms(study.variants))} arms × {len(tune.settings)} settings; "
+                   f"picked per seed on {metric} ({epoch} epoch)")
     seeds = _seeds_text(study.seeds)
     rows = []
     for v in study.variants:

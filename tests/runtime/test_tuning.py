@@ -288,3 +288,37 @@ def test_perturbing_test_rows_changes_no_selection(tmp_path):
         assert c_cols[m] == s_cols[m]
     # the perturbation did reach the test scores, so the check above could have failed
     assert c_cols["test_divergence"] != s_cols["test_divergence"]
+
+
+def test_budget_table_and_picture_agree(shared, tmp_path):
+    from runtime.plot import DPI, PlotError, plot, save_figure
+    from runtime.tuning import budget_rows
+
+    rows, metric = budget_rows(shared, study_of(shared))
+    assert metric == "val_accuracy" and {r["trials"] for r in rows} == {16}      # 2 rates × 8 seeds per arm
+    fig = plot(shared, "budget")
+    drawn = {line.get_gid(): line.get_ydata() for line in fig.axes[0].get_lines() if line.get_gid()}
+    for arm in ("momentum", "plain"):
+        assert list(drawn[f"budget:{arm}"]) == [r["expected"] for r in rows if r["arm"] == arm]
+    png = save_figure(fig, tmp_path / "budget.png")
+    assert png.stat().st_size > 0 and fig.get_size_inches()[0] * DPI > 0
+    with pytest.raises(PlotError):
+        plot(shared, "budget", metrics=["val_accuracy"])
+
+
+def test_report_of_a_tuned_study(shared):
+    from runtime.report import default_baseline, render_report
+
+    assert default_baseline(shared) == "momentum"            # the first arm, not a tuned variant
+    page = render_report(shared)
+    assert "arms tuned inside" in page and "budget:momentum" in page and "budget:plain" in page
+
+
+def test_until_decided_refuses_a_tuned_study(shared, tmp_path):
+    from runtime.runner import run_until_decided
+    from runtime.sequential import Rule
+    from runtime.store import ResultSetError
+
+    loaded = study_of(shared)
+    with pytest.raises(ResultSetError, match="tuned study compares arms"):
+        run_until_decided(loaded, tmp_path, Rule(margin=0.05, max_seeds=16, round=4, alpha=0.05))
