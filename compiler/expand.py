@@ -163,7 +163,7 @@ def _tuned(spec: Spec, arm_list: list[Variant]) -> list[Variant]:
             continue
         lacking = [arm.label for arm in arm_list if knob.key not in knobs_of(arm.spec)]
         if lacking:
-            known = sorted(set.intersection(*(set(knobs_of(a.spec)) for a in arm_list)))
+            known = sorted(set.intersection(*(set(knobs_of(a.spec)) for a in arm_list)) - varied)
             problems.append(Problem(where, f"{knob.key!r} is not a knob of {_some(lacking)}: only knobs (values the "
                                            "compiled program takes as inputs, so tuning adds lanes, not programs) "
                                            f"can be tuned; knobs of every arm: {', '.join(known)}"))
