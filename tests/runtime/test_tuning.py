@@ -322,3 +322,29 @@ def test_until_decided_refuses_a_tuned_study(shared, tmp_path):
     loaded = study_of(shared)
     with pytest.raises(ResultSetError, match="tuned study compares arms"):
         run_until_decided(loaded, tmp_path, Rule(margin=0.05, max_seeds=16, round=4, alpha=0.05))
+
+
+def test_test_rows_are_apart_and_standardization_ignores_them():
+    from compiler.build import compile_structure, seed_key
+    from compiler.data import load_data
+
+    text = BASE.format(samples=200, validation=0.25, test=0.2)
+    held, plain = (load_text(t, "t.toml").variants[0].spec
+                   for t in (text, BASE.format(samples=200, validation=0.25, test=0)))
+    ds = load_data(held, Path("."))
+    carries = {}
+    for name, spec in (("held", held), ("plain", plain)):
+        prog = compile_structure([spec], ds)
+        knobs = {k: v[0] for k, v in prog.pack([spec]).items()}
+        carries[name] = prog.init(knobs, seed_key(5), ds.x, ds.y)
+        assert prog.test_names == (("test_divergence", "test_accuracy") if name == "held" else ())
+    c, p = carries["held"], carries["plain"]
+    train, val, test = (np.asarray(a).tolist() for a in (c.train_idx, c.val_idx, c.test_idx))
+    assert (len(train), len(val), len(test)) == (110, 50, 40)       # 200 − 50 − 40
+    assert sorted(train + val + test) == list(range(200))
+    # one permutation of the seed's split key, cut in three instead of two
+    assert train + val + test == np.asarray(p.train_idx).tolist() + np.asarray(p.val_idx).tolist()
+    assert np.asarray(p.test_idx).shape == (0,)
+    # fitted on the 110 training rows only (population sd: numpy's default ddof = 0)
+    np.testing.assert_allclose(np.asarray(c.x_mean), ds.x[train].mean(axis=0), rtol=1e-5, atol=1e-6)
+    np.testing.assert_allclose(np.asarray(c.x_scale), ds.x[train].std(axis=0), rtol=1e-5, atol=1e-6)
