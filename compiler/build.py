@@ -25,11 +25,10 @@ the weight matrices at the end of the epoch); ``learning_rate`` at the epoch's l
 ``evaluate`` returns ``divergence`` and ``accuracy`` or ``rmse``.
 
 With ``data.test``, the split's permutation gives its last rows to a test split
-(:func:`compiler.spec.split_sizes`), which neither training nor standardization sees. ``epoch``
-then also returns ``Program.test_names`` (``test_divergence`` and ``test_accuracy`` or
-``test_rmse``, inference mode, NaN with the epoch's other metrics when it is discarded); they are
-left out of the health check, so test rows decide nothing about a run, and the runtime keeps them
-only at the epoch the study judges its runs at (never as a curve).
+(:func:`compiler.spec.split_sizes`), which neither training nor standardization sees, nor any
+epoch: ``test(carry, data_x, data_y)`` scores them (``Program.test_names``: ``test_divergence``
+and ``test_accuracy`` or ``test_rmse``, inference mode) for the weights of a carry, once, after
+training (the runtime passes the weights of the epoch the study judges its runs at).
 
 Components are built from their spec sections by their family's registry under the section's
 ``kind``, with every field of the section as an argument of the same name: knobs as the traced
@@ -93,6 +92,7 @@ class Program(NamedTuple):
     params: Callable
     status: Callable
     pack: Callable
+    test: Callable        # carry, data → test scores of the carry's weights (with data.test)
 
 
 class Carry(NamedTuple):
@@ -334,11 +334,6 @@ def compile_structure(variants: Sequence[Spec], dataset: Dataset) -> Program:
         metrics.update({f"val_{k}": v for k, v in val.items()})
         metrics["weight_norm"] = _global_norm([w for w, m in zip(jax.tree.leaves(params), jax.tree.leaves(weights)) if m])
         metrics["learning_rate"] = jnp.asarray(p.schedule(e * steps + steps - 1), jnp.float32)
-        # Test scores stay out of the health check: a test row can never decide a run's status.
-        tested = {}
-        if n_test:
-            test_x = standardize(carry, data_x[carry.test_idx])
-            tested = {f"test_{k}": v for k, v in scores(p, params, state, test_x, data_y[carry.test_idx]).items()}
         # Health is judged once per epoch, not per step (one select over the parameters per
         # epoch instead of one per step): an epoch in which the objective, a gradient, a
         # parameter, a running statistic or a metric (finite but huge weights can overflow the
@@ -349,8 +344,7 @@ def compile_structure(variants: Sequence[Spec], dataset: Dataset) -> Program:
         keep = lambda new, old: jax.tree.map(lambda a, b: jnp.where(diverged, b, a), new, old)
         params, state, opt_state = (keep(params, carry.params), keep(state, carry.state),
                                     keep(opt_state, carry.opt_state))
-        metrics = {name: jnp.where(diverged, jnp.nan, {**metrics, **tested}[name]).astype(jnp.float32)
-                   for name in metric_names + test_names}
+        metrics = {name: jnp.where(diverged, jnp.nan, metrics[name]).astype(jnp.float32) for name in metric_names}
         diverged_at = jnp.where(diverged & ~carry.diverged, e, carry.diverged_at)
         return carry._replace(params=params, state=state, opt_state=opt_state, epoch=e + 1,
                               diverged=diverged, diverged_at=diverged_at), metrics
@@ -363,10 +357,14 @@ def compile_structure(variants: Sequence[Spec], dataset: Dataset) -> Program:
         return scores(parts(carry.knobs), carry.params, carry.state, standardize(carry, jnp.asarray(x)),
                       jnp.asarray(y))
 
+    def test(carry: Carry, data_x, data_y):
+        idx = carry.test_idx
+        return {f"test_{k}": v for k, v in evaluate(carry, jnp.asarray(data_x)[idx], jnp.asarray(data_y)[idx]).items()}
+
     metric_names = ("train_divergence", "train_penalty", "val_divergence",
                     "val_accuracy" if classification else "val_rmse", "grad_norm",
                     *(f"grad_norm_{name}" for name in names), "weight_norm", "learning_rate")
     test_names = ("test_divergence", "test_accuracy" if classification else "test_rmse") if n_test else ()
     return Program(structure, knob_names, zero, metric_names, test_names, epochs, init, epoch, train, evaluate,
                    lambda carry: {"params": carry.params, "state": carry.state},
-                   lambda carry: (carry.diverged, carry.diverged_at), pack)
+                   lambda carry: (carry.diverged, carry.diverged_at), pack, test)

@@ -57,6 +57,9 @@ class Variant:
     # tuned knobs' values; None and {} otherwise.
     arm: "Variant | None" = field(default=None, compare=False)
     setting: dict[str, float] = field(default_factory=dict)
+    # (metric, "last" | "best"): the epoch a run is judged and its test split scored at
+    # (compiler.spec.Spec.selection); the metric only matters for "best".
+    judge: tuple[str, str] = ("", "last")
 
 
 # ── axis keys ───────────────────────────────────────────────────────────────────────────────────
@@ -189,7 +192,8 @@ def _tuned(spec: Spec, arm_list: list[Variant]) -> list[Variant]:
                     problems.append(Problem(at, f"variant '{label}' is invalid: {dotted(p.loc)}: {p.message}"))
                 continue
             vhash, structure = identity(resolved, memo)
-            out.append(Variant(len(out), label, {**arm.changes, **setting}, resolved, vhash, structure, arm, setting))
+            out.append(Variant(len(out), label, {**arm.changes, **setting}, resolved, vhash, structure, arm, setting,
+                               spec.selection))
     if problems:
         raise SpecError(problems[:20])
     return out

@@ -194,8 +194,7 @@ def replay(path: str | Path, *, run: str | None = None, variant: str | None = No
         if on_group:
             on_group(g)
         result = execute_group(g, d, current, reuse=False, keep_arrays=keep_arrays)
-        fresh, _ = group_tables(result, g, rs.study_hash, rs.headline, key_columns, d.fingerprint,
-                                loaded.spec.selection)
+        fresh, _ = group_tables(result, g, rs.study_hash, rs.headline, key_columns, d.fingerprint)
         fresh = fresh.to_pydict()
         for j, lane in enumerate(result.lanes):
             i = row_of[lane.run_id]

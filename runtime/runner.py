@@ -105,10 +105,9 @@ def datasets_for(groups: list[Group], base_dir: Path, cache: dict | None = None)
 
 
 def group_tables(result: GroupResult, group: Group, study_hash: str, headline: str, key_columns: dict,
-                 data_fingerprint: str, selection: tuple[str, str]) -> tuple[pa.Table, pa.Table]:
-    """The runs rows and curves rows of one executed group. With a test split, ``test_epoch`` and
-    the ``test_<metric>`` values there: the last epoch, or the best of ``selection``'s metric
-    (``compiler.spec.Spec.selection``)."""
+                 data_fingerprint: str) -> tuple[pa.Table, pa.Table]:
+    """The runs rows and curves rows of one executed group; with a test split, ``test_epoch`` and
+    the ``test_<metric>`` scores there (``execute.LaneResult``)."""
     env_json = json.dumps(result.environment, sort_keys=True)
     env_fp = environment.fingerprint(result.environment)
     direction = METRICS[headline]
@@ -158,10 +157,9 @@ def group_tables(result: GroupResult, group: Group, study_hash: str, headline: s
             best.append(h[i])
             best_epoch.append(i + 1)
         if result.test_names:
-            at = _judged_epoch(lane.curves, *selection)
-            tested["test_epoch"].append(at)
+            tested["test_epoch"].append(lane.test_epoch)
             for m in result.test_names:
-                tested[m].append(np.float32("nan") if at is None else lane.tests[m][at - 1])
+                tested[m].append(lane.tests[m])
         tail["param_digest"].append(lane.param_digest)
         tail["data_fingerprint"].append(data_fingerprint)
         tail["env_fingerprint"].append(env_fp)
@@ -209,17 +207,6 @@ def group_tables(result: GroupResult, group: Group, study_hash: str, headline: s
         c_arrays.append(column(np.concatenate(parts), pa.float32()))
         c_names.append(m)
     return runs, pa.Table.from_arrays(c_arrays, names=c_names)
-
-
-def _judged_epoch(curves: dict, metric: str, epoch: str) -> int | None:
-    """The 1-based epoch a run is judged at: its last, or the first with the best value of
-    ``metric`` (validation data only; None when no epoch has a finite value)."""
-    if epoch == "last":
-        return len(next(iter(curves.values())))
-    values = curves[metric]
-    if not np.isfinite(values).any():
-        return None
-    return int(np.nanargmax(values) if METRICS[metric] == "max" else np.nanargmin(values)) + 1
 
 
 def _stored(path: Path) -> ResultSet | None:
@@ -388,7 +375,7 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
             if estimate is not None and preparation[g.group_id] != "reuse":
                 (compiled if preparation[g.group_id] == "compile" else loaded_s).append(result.compile_seconds)
             runs_t, curves_t = group_tables(result, g, loaded.study_hash, headline, key_columns,
-                                            data[g.group_id].fingerprint, spec.selection)
+                                            data[g.group_id].fingerprint)
             current = write_results(target, meta, runs_t, curves_t, previous=current)
             diverged += sum(1 for lane in result.lanes if lane.diverged_at is not None)
             warnings += [f"{lane.run_id}: {w}" for lane in result.lanes for w in lane.warnings]

@@ -288,6 +288,13 @@ def test_perturbing_test_rows_changes_no_selection(tmp_path):
         assert c_cols[m] == s_cols[m]
     # the perturbation did reach the test scores, so the check above could have failed
     assert c_cols["test_divergence"] != s_cols["test_divergence"]
+    # epoch = "best": scored with the weights of each run's first epoch of best val_accuracy (not
+    # always the last, so this tells the two apart)
+    assert min(c_cols["test_epoch"]) < 6
+    curves = results[0].curves.to_pydict()
+    for rid, at in zip(c_cols["run_id"], c_cols["test_epoch"]):
+        acc = [a for r, a in zip(curves["run_id"], curves["val_accuracy"]) if r == rid]
+        assert at == int(np.argmax(acc)) + 1
 
 
 def test_budget_table_and_picture_agree(shared, tmp_path):
