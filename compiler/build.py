@@ -359,7 +359,8 @@ def compile_structure(variants: Sequence[Spec], dataset: Dataset) -> Program:
 
     def test(carry: Carry, data_x, data_y):
         idx = carry.test_idx
-        return {f"test_{k}": v for k, v in evaluate(carry, jnp.asarray(data_x)[idx], jnp.asarray(data_y)[idx]).items()}
+        scored = evaluate(carry, jnp.asarray(data_x)[idx], jnp.asarray(data_y)[idx])
+        return {f"test_{k}": v for k, v in scored.items()}
 
     metric_names = ("train_divergence", "train_penalty", "val_divergence",
                     "val_accuracy" if classification else "val_rmse", "grad_norm",

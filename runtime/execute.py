@@ -10,8 +10,9 @@ Python; the data stays on the device across epochs and only the per-epoch metric
 The program (:func:`compiler.build.compile_structure` of the group's variants) packs the lanes'
 knobs itself and decides which work its zero knobs let it leave out; programs compile with XLA's
 default options. With a test split, each lane's test rows are scored once, after the last epoch,
-with the weights of the epoch the study judges it at (``_Judge``). With the compile cache on, a structure's executables are loaded from and stored
-in :mod:`runtime.programs`; replay always compiles afresh.
+with the weights of the epoch the study judges it at (``_Judge``). With the compile cache on, a
+structure's executables are loaded from and stored in :mod:`runtime.programs`; replay always
+compiles afresh.
 """
 
 from __future__ import annotations

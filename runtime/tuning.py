@@ -31,8 +31,8 @@ from compiler.spec import METRICS
 from runtime.stats import summarize
 from runtime.store import ResultSet, ResultSetError
 
-__all__ = ["Pick", "ArmPicks", "study_of", "tuned", "arm_picks", "test_metric", "expected_best", "budget_rows", "arm_rows",
-           "ARM_COLUMNS", "BUDGET_COLUMNS"]
+__all__ = ["Pick", "ArmPicks", "study_of", "tuned", "arm_picks", "test_metric", "expected_best", "budget_rows",
+           "arm_rows", "ARM_COLUMNS", "BUDGET_COLUMNS"]
 
 ARM_COLUMNS = ["arm", "picked", "mean", "sd", "ci_low", "ci_high", "settings"]
 BUDGET_COLUMNS = ["arm", "budget", "expected", "sd", "trials"]
