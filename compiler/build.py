@@ -27,6 +27,12 @@ the weight matrices at the end of the epoch); ``learning_rate`` at the epoch's l
 ``evaluate`` returns ``divergence`` and ``accuracy`` (with ``macro_f1`` and ``recall_<k>``) or
 ``rmse``.
 
+With ``data.test``, the split's permutation gives its last rows to a test split
+(:func:`compiler.spec.split_sizes`), which neither training nor standardization sees, nor any
+epoch: ``test(carry, data_x, data_y)`` scores them (``Program.test_names``: ``test_divergence``
+and ``test_accuracy`` or ``test_rmse``, inference mode) for the weights of a carry, once, after
+training (the runtime passes the weights of the epoch the study judges its runs at).
+
 Components are built from their spec sections by their family's registry under the section's
 ``kind``, with every field of the section as an argument of the same name: knobs as the traced
 values, the other fields as Python values (what a knob-free section field changes, such as
@@ -65,7 +71,7 @@ import optax
 from compiler import divergences, model, normalization, optimizers, regularization
 from compiler.data import Dataset
 from compiler.hashing import knobs_of, structure_key
-from compiler.spec import MACRO_F1, RECALL, Spec, Strict, class_metrics, train_size
+from compiler.spec import MACRO_F1, RECALL, Spec, Strict, class_metrics, split_sizes
 
 __all__ = ["Program", "Carry", "compile_structure", "class_scores", "zero_knobs", "fit_standardization", "knob_vector",
            "seed_key", "param_digest", "permutation",
@@ -80,6 +86,7 @@ class Program(NamedTuple):
     knob_names: tuple[str, ...]
     zero_knobs: frozenset[str]
     metric_names: tuple[str, ...]
+    test_names: tuple[str, ...]
     epochs: int
     init: Callable
     epoch: Callable
@@ -88,6 +95,7 @@ class Program(NamedTuple):
     params: Callable
     status: Callable
     pack: Callable
+    test: Callable        # carry, data → test scores of the carry's weights (with data.test)
 
 
 class Carry(NamedTuple):
@@ -98,6 +106,7 @@ class Carry(NamedTuple):
     epoch: jax.Array      # int32, index of the next epoch
     train_idx: jax.Array  # int32 [n_train]
     val_idx: jax.Array    # int32 [n_val]
+    test_idx: jax.Array   # int32 [n_test], empty without data.test
     x_mean: jax.Array
     x_scale: jax.Array
     shuffle_key: jax.Array
@@ -234,7 +243,7 @@ def compile_structure(variants: Sequence[Spec], dataset: Dataset) -> Program:
     zero = zero_knobs(variants)
     n, features = dataset.x.shape
     classification = dataset.task == "classification"
-    n_train = train_size(n, variant.data.validation)
+    n_train, n_val, n_test = split_sizes(n, variant.data.validation, variant.data.test)
     epochs = variant.training.epochs
     batch_size = variant.training.batch_size
     steps = variant.training.steps(n_train)
@@ -283,12 +292,14 @@ def compile_structure(variants: Sequence[Spec], dataset: Dataset) -> Program:
         p = parts(knobs)
         data_x = jnp.asarray(data_x)
         order = permutation(jax.random.fold_in(key, SPLIT), n)
-        train_idx, val_idx = order[:n_train], order[n_train:]
+        # The test rows come last in the split's permutation: without a test split the training and
+        # validation rows are what they always were.
+        train_idx, val_idx, test_idx = order[:n_train], order[n_train:n_train + n_val], order[n_train + n_val:]
         mean, scale = fit_standardization(data_x[train_idx]) if fit_scale else \
             (jnp.zeros((features,), jnp.float32), jnp.ones((features,), jnp.float32))
         params, state = p.network.init(jax.random.fold_in(key, INIT), features)
         return Carry(params, state, p.tx.init(params), dict(knobs), jnp.int32(0),
-                     train_idx.astype(jnp.int32), val_idx.astype(jnp.int32), mean,
+                     train_idx.astype(jnp.int32), val_idx.astype(jnp.int32), test_idx.astype(jnp.int32), mean,
                      scale, jax.random.fold_in(key, SHUFFLE),
                      jax.random.fold_in(key, DROPOUT), jnp.bool_(False), jnp.int32(-1))
 
@@ -376,10 +387,16 @@ def compile_structure(variants: Sequence[Spec], dataset: Dataset) -> Program:
         return scores(parts(carry.knobs), carry.params, carry.state, standardize(carry, jnp.asarray(x)),
                       jnp.asarray(y))
 
+    def test(carry: Carry, data_x, data_y):
+        idx = carry.test_idx
+        scored = evaluate(carry, jnp.asarray(data_x)[idx], jnp.asarray(data_y)[idx])
+        return {f"test_{k}": v for k, v in scored.items()}
+
     metric_names = ("train_divergence", "train_penalty", "val_divergence",
                     *(("val_accuracy", *class_metrics(dataset.classes)) if classification else ("val_rmse",)),
                     "grad_norm",
                     *(f"grad_norm_{name}" for name in names), "weight_norm", "learning_rate")
-    return Program(structure, knob_names, zero, metric_names, epochs, init, epoch, train, evaluate,
+    test_names = tuple(f"test_{m.removeprefix('val_')}" for m in metric_names if m.startswith("val_")) if n_test else ()
+    return Program(structure, knob_names, zero, metric_names, test_names, epochs, init, epoch, train, evaluate,
                    lambda carry: {"params": carry.params, "state": carry.state},
-                   lambda carry: (carry.diverged, carry.diverged_at), pack)
+                   lambda carry: (carry.diverged, carry.diverged_at), pack, test)

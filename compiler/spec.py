@@ -24,9 +24,10 @@ __all__ = [
     "DivergenceSection", "L2", "KL", "BCE", "Huber", "Divergence", "NoNorm", "BatchNorm", "LayerNorm", "Normalization",
     "Dropout", "Regularization", "Constant", "Exponential", "Cosine", "WarmupCosine", "Schedule",
     "SGD", "Adam", "AdamW", "RMSProp", "Optimizer", "Training", "Axis", "ListedVariant",
-    "Ablation", "Spec", "METRICS", "PER_CLASS_METRICS", "RECALL", "MACRO_F1", "CLASSIFICATION_GENERATORS",
-    "task_of", "classes_of", "section_problems", "train_size", "class_of_metric", "direction", "known_metrics",
-    "class_metrics", "metrics_of", "metric_problem", "spelled_metrics",
+    "TunedKnob", "Tuning", "Ablation", "Spec", "METRICS", "PER_CLASS_METRICS", "RECALL", "MACRO_F1",
+    "CLASSIFICATION_GENERATORS", "task_of", "classes_of", "section_problems", "train_size", "split_sizes",
+    "class_of_metric", "direction", "known_metrics", "class_metrics", "metrics_of", "metric_problem",
+    "spelled_metrics",
 ]
 
 # The metric names, in one place. A classifier's evaluation computes, from the predictions its
@@ -125,6 +126,8 @@ Fraction = Annotated[float, Field(ge=0.0, le=1.0, allow_inf_nan=False)]
 # data.standardize came after study hashes were fixed: at its default (true) it is left out of
 # every dump, hence of the canonical JSON, so specs written before it keep their study hash.
 Standardize = Annotated[bool, Field(exclude_if=lambda v: v is True)]
+# data.test too: at 0 (no test split) it is left out of every dump, so older hashes hold.
+TestShare = Annotated[float, Field(ge=0.0, lt=1.0, allow_inf_nan=False, exclude_if=lambda v: v == 0)]
 # Large enough for any real study on one machine, small enough that a typo cannot ask for
 # terabytes before the resource estimate even runs.
 MAX_SAMPLES = 50_000_000
@@ -223,6 +226,8 @@ class SyntheticData(Strict):
     """Share of the rows held out for validation."""
     seed: Annotated[int, Field(ge=0, lt=2**31)] = 0
     """Seed of the data set itself; the split comes from each run's seed."""
+    test: TestShare = 0.0
+    """Share of the rows held out for testing, apart from training and validation (0: no test split); test scores are stored once per run and never used for a choice."""
     standardize: Standardize = True
     """Standardize the inputs per run on its training rows (mean 0, sd 1; targets never); false feeds them as they are."""
 
@@ -244,16 +249,14 @@ class SyntheticData(Strict):
     def training_rows(self) -> tuple[int, str] | None:
         """Rows of the training split and how they come about, when known from the spec alone
         (a file's rows are counted where it is read, in ``compiler.data``)."""
-        n_train = train_size(self.samples, self.validation)
-        if n_train < 1 or n_train == self.samples:
+        if self.problems(None):
             return None
-        return n_train, f"{self.samples} × (1 − {self.validation})"
+        share = f"1 − {self.validation}" + (f" − {self.test}" if self.test else "")
+        return train_size(self.samples, self.validation, self.test), f"{self.samples} × ({share})"
 
     def problems(self, spec):
-        if self.training_rows is None:
-            return [("validation", f"{self.validation} leaves no rows on one side of the split of "
-                                   f"{self.samples} samples")]
-        return []
+        return [(key.removeprefix("data."), message)
+                for key, message in split_problems(self.samples, self.validation, self.test, f"{self.samples} samples")]
 
 
 class FileData(Strict):
@@ -274,6 +277,8 @@ class FileData(Strict):
     """classification: integer class labels; regression: real-valued target."""
     validation: Annotated[float, Field(gt=0.0, lt=1.0, allow_inf_nan=False)] = 0.25
     """Share of the rows held out for validation."""
+    test: TestShare = 0.0
+    """Share of the rows held out for testing, apart from training and validation (0: no test split); test scores are stored once per run and never used for a choice."""
     standardize: Standardize = True
     """Standardize the inputs per run on its training rows (mean 0, sd 1; targets never); false feeds them as they are."""
 
@@ -691,6 +696,73 @@ class ListedVariant(Strict):
         return v
 
 
+class TunedKnob(Strict):
+    """One knob tuned inside every arm: its listed values, or ``points`` values spaced evenly on a
+    log scale from ``low`` to ``high``."""
+
+    key: Annotated[str, Field(pattern=_DOTTED_PATTERN)]
+    """Dotted key of a knob (a value the compiled program takes as input), e.g. optimizer.learning_rate."""
+    values: Union[Annotated[list[Annotated[float, Field(allow_inf_nan=False)]], Field(min_length=1, max_length=100)], None] = None
+    """The values tried in every arm; or give low, high and points instead."""
+    low: Union[Positive, None] = None
+    """Smallest value of a log-spaced range (with high and points)."""
+    high: Union[Positive, None] = None
+    """Largest value of a log-spaced range (with low and points)."""
+    points: Union[Annotated[int, Field(ge=2, le=100)], None] = None
+    """Number of log-spaced values from low to high, both included."""
+
+    @model_validator(mode="after")
+    def _one_form(self):
+        ranged = (self.low, self.high, self.points)
+        if self.values is not None:
+            if any(x is not None for x in ranged):
+                raise ValueError("give either values = [...] or low, high and points, not both")
+            if len(set(self.values)) != len(self.values):
+                raise ValueError(f"@values: each value may appear once (got {self.values})")
+        elif any(x is None for x in ranged):
+            raise ValueError("give values = [...], or low, high and points (points values spaced evenly on a "
+                             "log scale from low to high)")
+        elif not self.low < self.high:
+            raise ValueError(f"@high: {self.high} must be above low = {self.low}")
+        return self
+
+    @property
+    def grid(self) -> list[float]:
+        """The values tried; a range's values rounded to 4 significant digits (labels stay short; the rounded values are the ones run)."""
+        if self.values is not None:
+            return list(self.values)
+        ratio = self.high / self.low
+        return [float(f"{self.low * ratio ** (i / (self.points - 1)):.4g}") for i in range(self.points)]
+
+
+class Tuning(Strict):
+    """Knobs tuned inside every arm with the same budget; each arm is then represented, per seed, by
+    the setting with the best validation score, and the arms are compared on the test split."""
+
+    knob: Annotated[list[TunedKnob], Field(min_length=1, max_length=8)]
+    """[[ablation.tune.knob]] tables; every arm tries every combination of their values."""
+    metric: Union[str, None] = None
+    """Validation metric that selects an arm's setting (default: study.metric, which must then be a validation metric)."""
+    epoch: Literal["last", "best"] = "last"
+    """Epoch a run is judged at: its last, or the one with its best value of the metric; test scores are taken there too."""
+
+    @model_validator(mode="after")
+    def _distinct_keys(self):
+        keys = [k.key for k in self.knob]
+        dup = sorted({k for k in keys if keys.count(k) > 1})
+        if dup:
+            raise ValueError(f"each knob may be tuned once (repeated: {dup})")
+        return self
+
+    @property
+    def settings(self) -> list[dict[str, float]]:
+        """Every combination of the tuned values, the last knob varying fastest: one arm's budget."""
+        out: list[dict[str, float]] = [{}]
+        for k in self.knob:
+            out = [{**s, k.key: v} for s in out for v in k.grid]
+        return out
+
+
 class Ablation(Strict):
     """How variants are derived from the base configuration."""
 
@@ -702,6 +774,9 @@ class Ablation(Strict):
     """[[ablation.variant]] tables (list)."""
     include_base: bool = True
     """list: run the base configuration too, labelled base."""
+    # Left out of the dump while unset, so studies without it keep their hash.
+    tune: Annotated[Union[Tuning, None], Field(exclude_if=lambda v: v is None)] = None
+    """[ablation.tune]: knobs tuned inside every arm (the variants above), compared on the test split."""
 
     @model_validator(mode="after")
     def _fits_mode(self):
@@ -726,6 +801,23 @@ class Ablation(Strict):
             if dup:
                 raise ValueError(f"each key may have one axis (repeated: {dup})")
         return self
+
+    def problems(self, spec):
+        if self.tune is None:
+            return []
+        if spec.data.test == 0:
+            return [("tune", "tuning inside arms compares the arms on a test split, which this study lacks; "
+                             "set data.test (e.g. 0.2)")]
+        chooser = self.tune.metric or spec.study.metric
+        task, classes = task_of(spec.data), classes_of(spec.data)
+        if chooser.startswith("val_") and metric_problem(chooser, task, classes) is None:
+            return []
+        choices = ", ".join(m for m in metrics_of(task, classes) if m.startswith("val_"))
+        if self.tune.metric:
+            return [("tune.metric", f"{chooser!r} cannot choose an arm's setting: the choice is made on "
+                                    f"validation data (use one of {choices})")]
+        return [("tune", f"study.metric {chooser!r} cannot choose an arm's setting: the choice is made on "
+                         f"validation data (use one of {choices}, or set ablation.tune.metric)")]
 
 
 # ── the whole spec ──────────────────────────────────────────────────────────────────────────────
@@ -775,10 +867,41 @@ class Spec(Strict):
             raise ValueError("\n".join(f"@{key}: {msg}" for key, msg in problems))
         return self
 
+    @property
+    def selection(self) -> tuple[str, Literal["last", "best"]]:
+        """(metric, epoch): the epoch every run is judged at and its test scores are taken at —
+        ``[ablation.tune]``'s, else the last epoch (the metric then only names the headline)."""
+        tune = self.ablation.tune if self.ablation is not None else None
+        if tune is None:
+            return self.study.metric, "last"
+        return tune.metric or self.study.metric, tune.epoch
 
-def train_size(samples: int, validation: float) -> int:
-    """Rows in the training split: the validation share is rounded, the rest trains."""
-    return samples - int(round(samples * validation))
+
+def split_sizes(samples: int, validation: float, test: float = 0.0) -> tuple[int, int, int]:
+    """Rows of the training, validation and test splits: each held-out share is rounded on its
+    own, the rest trains."""
+    n_val, n_test = int(round(samples * validation)), int(round(samples * test))
+    return samples - n_val - n_test, n_val, n_test
+
+
+def train_size(samples: int, validation: float, test: float = 0.0) -> int:
+    """Rows in the training split: the validation and test shares are rounded, the rest trains."""
+    return split_sizes(samples, validation, test)[0]
+
+
+def split_problems(samples: int, validation: float, test: float, what: str) -> list[tuple[str, str]]:
+    """(key, message) when the shares leave a split of ``samples`` rows empty (``what`` names
+    them); the key is the share to change."""
+    n_train, n_val, n_test = split_sizes(samples, validation, test)
+    if n_val < 1 or (n_train < 1 and not test):
+        return [("data.validation", f"{validation} leaves no rows on one side of the split of {what}")]
+    if test and n_test < 1:
+        return [("data.test", f"{test} of {what} rounds to no test row; use at least {math.ceil(1000 / samples) / 1000}")]
+    if n_train < 1:
+        return [("data.test", f"data.validation = {validation} and data.test = {test} leave no training rows "
+                              f"of {what} ({n_val} validation + {n_test} test); lower one of them so that "
+                              "they add up to well below 1")]
+    return []
 
 
 _SAFE_INT = 2**53 - 1

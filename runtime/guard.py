@@ -158,7 +158,7 @@ def _shape(group: Group, dataset):
         out_width=spec.divergence.outputs(dataset.classes, dataset.targets),
         dropout=regularization.REGISTRY[spec.regularization.dropout.kind]())
     n = dataset.x.shape[0]
-    n_train = train_size(n, spec.data.validation)
+    n_train = train_size(n, spec.data.validation, spec.data.test)
     return spec, cost, n, n_train, spec.training.steps(n_train)
 
 

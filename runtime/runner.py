@@ -106,7 +106,8 @@ def datasets_for(groups: list[Group], base_dir: Path, cache: dict | None = None)
 
 def group_tables(result: GroupResult, group: Group, study_hash: str, headline: str, key_columns: dict,
                  data_fingerprint: str) -> tuple[pa.Table, pa.Table]:
-    """The runs rows and curves rows of one executed group."""
+    """The runs rows and curves rows of one executed group; with a test split, ``test_epoch`` and
+    the ``test_<metric>`` scores there (``execute.LaneResult``)."""
     env_json = json.dumps(result.environment, sort_keys=True)
     env_fp = environment.fingerprint(result.environment)
     direction = metric_direction(headline)
@@ -120,6 +121,7 @@ def group_tables(result: GroupResult, group: Group, study_hash: str, headline: s
         cols[k] = []
     finals = {f"final_{m}": [] for m in result.metric_names}
     best, best_epoch = [], []
+    tested: dict[str, list] = {"test_epoch": [], **{m: [] for m in result.test_names}}
     tail = {k: [] for k in ("param_digest", "data_fingerprint", "env_fingerprint", "environment",
                             "compile_seconds", "run_seconds", "warnings", "finished_at")}
     curve_cols: dict[str, list] = {"run_id": [], "variant_label": [], "seed": [], "epoch": []}
@@ -154,6 +156,10 @@ def group_tables(result: GroupResult, group: Group, study_hash: str, headline: s
             i = int(np.nanargmax(h) if direction == "max" else np.nanargmin(h))
             best.append(h[i])
             best_epoch.append(i + 1)
+        if result.test_names:
+            tested["test_epoch"].append(lane.test_epoch)
+            for m in result.test_names:
+                tested[m].append(lane.tests[m])
         tail["param_digest"].append(lane.param_digest)
         tail["data_fingerprint"].append(data_fingerprint)
         tail["env_fingerprint"].append(env_fp)
@@ -185,6 +191,10 @@ def group_tables(result: GroupResult, group: Group, study_hash: str, headline: s
         names.append(k)
     arrays += [column(best, pa.float32()), column(best_epoch, pa.int32())]
     names += [f"best_{headline}", "best_epoch"]
+    if result.test_names:
+        for k, vals in tested.items():
+            arrays.append(column(vals, pa.int32() if k == "test_epoch" else pa.float32()))
+            names.append(k)
     for k, vals in tail.items():
         typ = pa.float64() if k.endswith("seconds") else pa.string()
         arrays.append(column(vals, typ))
@@ -409,6 +419,9 @@ def run_until_decided(loaded, out: Path, rule, *, axis: str | None = None, **kw)
     from runtime.diff import sequential_design
 
     spec = loaded.spec
+    if spec.ablation is not None and spec.ablation.tune is not None:
+        raise ResultSetError(f"{loaded.path}: --until-decided adds seeds to variants, and a tuned study compares "
+                             "arms (each its pick per seed); run it with a fixed number of seeds (study.seeds)")
     first = spec.study.seed_list
     record = {**rule.as_dict(), "first": first, "axis": axis, "metric": spec.study.metric}
     path = result_dir(out, spec.study.name, loaded.study_hash)
