@@ -344,7 +344,8 @@ def test_test_rows_are_apart_and_standardization_ignores_them():
         prog = compile_structure([spec], ds)
         knobs = {k: v[0] for k, v in prog.pack([spec]).items()}
         carries[name] = prog.init(knobs, seed_key(5), ds.x, ds.y)
-        assert prog.test_names == (("test_divergence", "test_accuracy") if name == "held" else ())
+        assert prog.test_names == (("test_divergence", "test_accuracy", "test_macro_f1", "test_recall_0", "test_recall_1",
+                                     "test_recall_2") if name == "held" else ())
     c, p = carries["held"], carries["plain"]
     train, val, test = (np.asarray(a).tolist() for a in (c.train_idx, c.val_idx, c.test_idx))
     assert (len(train), len(val), len(test)) == (110, 50, 40)       # 200 − 50 − 40
