@@ -22,12 +22,14 @@ and the weight norm act on).
 
 from __future__ import annotations
 
+import math
 from typing import Callable, NamedTuple
 
 import jax
 import jax.numpy as jnp
 
-__all__ = ["Network", "mlp", "FAMILIES", "weight_mask", "layer_names", "layer_metric", "draw_weights", "ACTIVATIONS", "INITIALIZERS"]
+__all__ = ["Network", "Family", "Cost", "mlp", "mlp_cost", "FAMILIES", "weight_mask", "layer_names", "layer_metric",
+           "draw_weights", "ACTIVATIONS", "INITIALIZERS"]
 
 ACTIVATIONS: dict[str, Callable] = {
     "relu": jax.nn.relu,
@@ -130,9 +132,38 @@ def mlp(hidden, out_width, activation, init, normalizer, dropout) -> Network:
     return Network(init_fn, apply_fn, names)
 
 
-# Network families by the spec's ``model.kind``: each factory takes the ``[model]`` fields by name
-# plus ``out_width``, ``normalizer`` and ``dropout``, and returns a :class:`Network`.
-FAMILIES: dict[str, Callable[..., Network]] = {"mlp": mlp}
+class Cost(NamedTuple):
+    """What a network declares about its size, per lane and per example, in float32 values: the
+    resource guard's memory and time model is written in these and nothing else of the network."""
+
+    parameters: int   # an upper bound: every unit counted with a bias, γ and β, whatever the normalizer
+    activations: int  # kept per example for the backward pass, the input and the output included
+    macs: int         # multiply-accumulates of one example's forward pass
+    layers: int       # layers with a gradient norm of their own (``grad_norm_layer<i>``)
+    masks: int        # per-example weight masks a training step draws (DropConnect), per example
+
+
+def mlp_cost(in_shape, out_width, hidden, dropout, **fields) -> Cost:
+    """The MLP's :class:`Cost` on inputs of ``in_shape`` (one example's): ``Σ a·b`` weights over
+    consecutive widths, three vectors per unit; a DropConnect mask (``dropout.masks_weights``) is
+    one per example over the parameters."""
+    widths = [math.prod(in_shape), *hidden, out_width]
+    parameters = sum(a * b + 3 * b for a, b in zip(widths[:-1], widths[1:]))
+    return Cost(parameters, sum(widths), sum(a * b for a, b in zip(widths[:-1], widths[1:])), len(widths) - 1,
+                parameters if dropout.masks_weights else 0)
+
+
+class Family(NamedTuple):
+    """A network family: ``network`` takes the ``[model]`` fields by name plus ``out_width``,
+    ``normalizer`` and ``dropout`` and returns a :class:`Network`; ``cost`` takes ``in_width``,
+    ``out_width``, ``dropout`` and the same fields and returns its :class:`Cost`."""
+
+    network: Callable[..., Network]
+    cost: Callable[..., Cost]
+
+
+# Network families by the spec's ``model.kind``.
+FAMILIES: dict[str, Family] = {"mlp": Family(mlp, mlp_cost)}
 
 
 def weight_mask(params):

@@ -11,7 +11,9 @@ Contract:
   ``dense(key, x, W, train) -> x W`` (the hidden layer's linear map, bias added by the caller)
   and ``activation(key, h, train) -> h`` (on the hidden layer's activations). ``train`` is a
   Python bool. Masks are drawn per example from ``key``; the caller gives a fresh key per
-  step and layer.
+  step and layer. ``masks_weights`` declares whether the masks cover the weights (a mask per
+  example the size of the layer: the network's cost counts it) rather than the activations (a
+  rate of 0 then makes ``activation`` the identity, which the compiler leaves out).
 """
 
 from __future__ import annotations
@@ -42,6 +44,7 @@ def decoupled_decay(weight_decay, mask) -> optax.GradientTransformation:
 class Dropout(NamedTuple):
     dense: Callable
     activation: Callable
+    masks_weights: bool  # a mask per example over the weights (its cost), not over the activations
 
 
 def _plain_dense(key, x, w, train):
@@ -61,7 +64,7 @@ def inverted(rate=0.0) -> Dropout:
     def activation(key, h, train):
         return h * _keep_mask(key, rate, h.shape, h.dtype) / keep if train else h
 
-    return Dropout(_plain_dense, activation)
+    return Dropout(_plain_dense, activation, False)
 
 
 def scaled(rate=0.0) -> Dropout:
@@ -73,7 +76,7 @@ def scaled(rate=0.0) -> Dropout:
     def activation(key, h, train):
         return h * _keep_mask(key, rate, h.shape, h.dtype) if train else h * keep
 
-    return Dropout(_plain_dense, activation)
+    return Dropout(_plain_dense, activation, False)
 
 
 def dropconnect(rate=0.0) -> Dropout:
@@ -89,7 +92,7 @@ def dropconnect(rate=0.0) -> Dropout:
         masks = _keep_mask(key, rate, (x.shape[0],) + w.shape, w.dtype)
         return jnp.einsum("bi,bio->bo", x, masks * w)
 
-    return Dropout(dense, lambda key, h, train: h)
+    return Dropout(dense, lambda key, h, train: h, True)
 
 
 REGISTRY: dict[str, Callable[..., Dropout]] = {"inverted": inverted, "scaled": scaled, "dropconnect": dropconnect}

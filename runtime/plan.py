@@ -23,7 +23,7 @@ from dataclasses import dataclass
 from compiler.expand import Variant
 from compiler.hashing import run_id
 
-__all__ = ["Run", "Group", "plan", "DEFAULT_MAX_LANES", "lane_bytes"]
+__all__ = ["Run", "Group", "plan", "DEFAULT_MAX_LANES"]
 
 # Wider lanes amortize per-step overhead on small models; beyond ~32 the matrices are big enough
 # that XLA:CPU gains nothing more on two cores and memory grows linearly.
@@ -47,19 +47,6 @@ class Group:
     @property
     def padding(self) -> int:
         return self.lane_width - len(self.runs)
-
-
-def lane_bytes(variant: Variant, features: int, outputs: int) -> int:
-    """Rough bytes one lane needs while training: parameters with gradients and up to three
-    optimizer slots, activations of one batch kept for the backward pass, float32."""
-    spec = variant.spec
-    widths = [features, *spec.model.widths, outputs]
-    params = sum(a * b + 3 * b for a, b in zip(widths[:-1], widths[1:]))
-    batch = spec.training.batch_size
-    activations = batch * sum(widths) * 4
-    if spec.regularization.dropout.kind == "dropconnect":
-        activations += batch * params  # a weight mask per example
-    return 4 * (5 * params + activations)
 
 
 def plan(variants: list[Variant], seeds: list[int], *, lanes: int | None = None,
