@@ -341,7 +341,7 @@ def test_epoch_metrics_are_the_means_of_the_per_step_values():
         layer_sq = {k: sum(np.sum(a ** 2) for a in g[k].values()) for k in g}
         steps["grad_norm"].append(np.sqrt(sum(layer_sq.values())))
         for k in g:
-            steps[f"grad_norm_{k}"].append(np.sqrt(layer_sq[k]))
+            steps[f"grad_norm_layer{k[1:]}"].append(np.sqrt(layer_sq[k]))
             for n in g[k]:
                 vel[k][n] = g[k][n] + mu * vel[k][n]
                 p[k][n] = p[k][n] - lr * vel[k][n]
