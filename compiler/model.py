@@ -1,20 +1,24 @@
-"""The network: a multilayer perceptron as a stax-like (init, apply) pair.
+"""The networks: a multilayer perceptron and a convolutional network as stax-like (init, apply) pairs.
 
-Contract: :data:`FAMILIES` maps the spec's ``model.kind`` to a factory; :func:`mlp` (``"mlp"``)
-returns a :class:`Network` with
+Contract: :data:`FAMILIES` maps the spec's ``model.kind`` to a factory — :func:`mlp` (``"mlp"``),
+:func:`conv` (``"conv"``) — returning a :class:`Network` with
 
-- ``init(key, in_width) -> (params, state)``: ``params`` is ``{"l1": {...}, …, "lL": {...}}``
-  (the last is the output layer), each layer a dict with ``W`` ``[fan_in, fan_out]``, ``b``
-  (omitted when the normalizer makes it irrelevant) and the normalizer's γ/β; ``state`` holds the
-  normalizer's running statistics per hidden layer. All weight matrices come from one draw from
-  ``key`` (:func:`draw_weights`), so networks whose layer shapes agree start from the same
-  weights whatever normalization or dropout they use (paired comparisons).
-- ``apply(params, state, x, key, mask, train) -> (z, new_state)``: ``z`` is the raw output
-  (before the divergence's link). Each hidden layer is
-  ``h ← dropout(act(norm(dense(h) + b)))``; the output layer is ``z = hW + b``.
-  ``key`` feeds the dropout masks (per layer ``fold_in(key, i)``); ``mask`` (``f32[batch]``)
-  marks real examples for batch statistics; ``train`` is a Python bool.
+- ``init(key, in_shape) -> (params, state)``: ``in_shape`` is one example's shape (an int for a
+  vector). ``params`` is ``{"l1": {...}, …, "lL": {...}}`` (the last is the output layer), each
+  layer a dict with ``W`` (``[fan_in, fan_out]``, or a convolution kernel
+  ``[*window, in_channels, out_channels]``), ``b`` (omitted when the normalizer makes it
+  irrelevant) and the normalizer's γ/β; ``state`` holds the normalizer's running statistics per
+  hidden layer. All weights come from one draw from ``key`` (:func:`draw_weights`), so networks
+  whose layer shapes agree start from the same weights whatever normalization or dropout they
+  use (paired comparisons).
+- ``apply(params, state, x, key, mask, train) -> (z, new_state)``: ``x`` is ``[batch, *in_shape]``,
+  channels last; ``z`` is the raw output (before the divergence's link). ``key`` feeds the dropout
+  masks (per layer ``fold_in(key, i)``); ``mask`` (``f32[batch]``) marks real examples for batch
+  statistics; ``train`` is a Python bool.
 - ``layers``: the layer names in order.
+
+:data:`COSTS` maps a family to its cost facts for the resource guard, pure Python (no jax):
+``(model, in_shape, out_width) -> Cost``.
 
 :func:`weight_mask` marks the weight matrices of a params tree (what the L2 penalty, weight decay
 and the weight norm act on).
@@ -22,12 +26,17 @@ and the weight norm act on).
 
 from __future__ import annotations
 
-from typing import Callable, NamedTuple
+import math
+from typing import Callable, NamedTuple, Sequence
 
 import jax
 import jax.numpy as jnp
 
-__all__ = ["Network", "mlp", "FAMILIES", "weight_mask", "layer_names", "draw_weights", "ACTIVATIONS", "INITIALIZERS"]
+from compiler.errors import UserError
+
+__all__ = ["Network", "mlp", "conv", "FAMILIES", "COSTS", "Cost", "ShapeError", "feature_shapes", "convolve", "pool",
+           "weight_mask",
+           "layer_names", "draw_weights", "ACTIVATIONS", "INITIALIZERS"]
 
 ACTIVATIONS: dict[str, Callable] = {
     "relu": jax.nn.relu,
@@ -49,25 +58,32 @@ INITIALIZERS: dict[str, tuple[str, Callable]] = {
 }
 
 
+class ShapeError(UserError, ValueError):
+    """A network that does not fit its data's shape; the message names the key to change."""
+
+
 def draw_weights(init: str, key, shapes) -> list[jax.Array]:
-    """Weight matrices of ``shapes`` (each ``(fan_in, fan_out)``) from one draw of unit-variance
-    numbers, consecutive slices scaled to the initializer's variance.
+    """Weights of ``shapes`` from one draw of unit-variance numbers, consecutive slices scaled to
+    the initializer's variance. Each entry is ``(fan_in, fan_out)`` (a matrix of that shape) or
+    ``(fan_in, fan_out, shape)``: a convolution kernel, whose fans count its window too
+    (``window·in_channels``, ``window·out_channels``; common practice).
 
     One draw rather than one per matrix: every random draw is its own block of generated code,
     and XLA:CPU compiles three normal draws about four times slower than one of the same total
     size. The draw is prefix-stable, so networks whose leading layers agree in shape get the same
     leading matrices."""
     kind, variance = INITIALIZERS[init]
-    sizes = [fan_in * fan_out for fan_in, fan_out in shapes]
+    shapes = [(s[0], s[1], tuple(s[2]) if len(s) > 2 else (s[0], s[1])) for s in shapes]
+    sizes = [math.prod(shape) for _, _, shape in shapes]
     total = sum(sizes)
     if kind == "normal":
         unit = jax.random.normal(key, (total,), jnp.float32)
     else:  # uniform on [-√3, √3): variance 1
         unit = jax.random.uniform(key, (total,), jnp.float32, -1.0) * jnp.sqrt(jnp.float32(3.0))
     out, start = [], 0
-    for (fan_in, fan_out), size in zip(shapes, sizes):
+    for (fan_in, fan_out, shape), size in zip(shapes, sizes):
         scale = jnp.sqrt(jnp.float32(variance(fan_in, fan_out)))
-        out.append(unit[start:start + size].reshape(fan_in, fan_out) * scale)
+        out.append(unit[start:start + size].reshape(shape) * scale)
         start += size
     return out
 
@@ -83,52 +99,223 @@ def layer_names(depth: int) -> tuple[str, ...]:
     return tuple(f"l{i}" for i in range(1, depth + 1))
 
 
+def _shape_of(in_shape) -> tuple[int, ...]:
+    return (in_shape,) if isinstance(in_shape, int) else tuple(in_shape)
+
+
+def _dense_init(params, state, names, weights, widths, normalizer):
+    """The dense layers ``names`` (hidden ones, then the output layer) into ``params``/``state``."""
+    hidden = len(names) - 1
+    for i, name in enumerate(names):
+        layer = {"W": weights[i]}
+        is_hidden = i < hidden
+        if not is_hidden or normalizer.uses_bias:
+            layer["b"] = jnp.zeros((widths[i + 1],), jnp.float32)
+        if is_hidden:
+            norm_params, state[name] = normalizer.init(widths[i + 1])
+            layer.update(norm_params)
+        params[name] = layer
+
+
+def _dense_apply(params, state, new_state, names, h, key, first, mask, train, act, normalizer, dropout):
+    """``h ← dropout(act(norm(dense(h) + b)))`` per hidden layer, then ``z = hW + b``; the layer
+    keys are ``fold_in(key, first + i)``."""
+    for i, name in enumerate(names[:-1]):
+        p = params[name]
+        layer_key = jax.random.fold_in(key, first + i)
+        u = dropout.dense(jax.random.fold_in(layer_key, 0), h, p["W"], train)
+        if "b" in p:
+            u = u + p["b"]
+        norm_params = {k: v for k, v in p.items() if k not in ("W", "b")}
+        u, new_state[name] = normalizer.apply(norm_params, state[name], u, mask, train)
+        h = dropout.activation(jax.random.fold_in(layer_key, 1), act(u), train)
+    out = params[names[-1]]
+    return h @ out["W"] + out["b"]
+
+
 def mlp(hidden, out_width, activation, init, normalizer, dropout) -> Network:
     """An MLP with hidden widths ``hidden`` (possibly empty: a linear model), ``out_width``
     outputs, activation and initializer names from :data:`ACTIVATIONS` / :data:`INITIALIZERS`,
     a :class:`compiler.normalization.Normalizer` and a :class:`compiler.regularization.Dropout`
-    for the hidden layers."""
+    for the hidden layers. An example of any shape is flattened (C order) into one vector."""
     hidden = tuple(hidden)
     names = layer_names(len(hidden) + 1)
     act = ACTIVATIONS[activation]
 
-    def init_fn(key, in_width):
-        widths = (in_width, *hidden, out_width)
+    def init_fn(key, in_shape):
+        widths = (math.prod(_shape_of(in_shape)), *hidden, out_width)
         weights = draw_weights(init, key, list(zip(widths[:-1], widths[1:])))
         params, state = {}, {}
-        for i, name in enumerate(names):
+        _dense_init(params, state, names, weights, widths, normalizer)
+        return params, state
+
+    def apply_fn(params, state, x, key, mask, train):
+        h = x if x.ndim == 2 else x.reshape(x.shape[0], -1)
+        new_state = {}
+        z = _dense_apply(params, state, new_state, names, h, key, 1, mask, train, act, normalizer, dropout)
+        return z, new_state
+
+    return Network(init_fn, apply_fn, names)
+
+
+def _padding(kernel: int, padding: str) -> tuple[int, int]:
+    # "same": the output of stride 1 keeps the input's size; an even window's extra zero goes
+    # before, as scipy.signal.correlate's mode="same" centres it.
+    return (kernel // 2, (kernel - 1) // 2) if padding == "same" else (0, 0)
+
+
+def convolve(x, kernel, stride: int, padding: str):
+    """Cross-correlation of ``x`` (``[batch, *positions, in_channels]``) with ``kernel``
+    (``[*window, in_channels, out_channels]``) along every spatial axis at ``stride``, ``"valid"``
+    (no padding) or ``"same"`` (zeros around the input, so stride 1 keeps its size)."""
+    spatial = x.ndim - 2
+    layout = ("NWC", "WIO", "NWC") if spatial == 1 else ("NHWC", "HWIO", "NHWC")
+    pads = [_padding(k, padding) for k in kernel.shape[:spatial]]
+    return jax.lax.conv_general_dilated(x, kernel, (stride,) * spatial, pads, dimension_numbers=layout)
+
+
+def pool(x, window: int, pooling: str):
+    """Non-overlapping ``window``×… pooling over every spatial axis of ``x`` (``[batch,
+    *positions, channels]``): the maximum or the mean of each window; positions left over at
+    the end of an axis are dropped."""
+    spatial = x.ndim - 2
+    dims = (1, *(window,) * spatial, 1)
+    if pooling == "max":
+        return jax.lax.reduce_window(x, -jnp.inf, jax.lax.max, dims, dims, "VALID")
+    return jax.lax.reduce_window(x, 0.0, jax.lax.add, dims, dims, "VALID") / window ** spatial
+
+
+def feature_shapes(in_shape, blocks) -> list[tuple[int, ...]]:
+    """The shape of one example after each convolution block (channels last), pure Python:
+    a convolution of window ``k``, stride ``s`` and padding ``(lo, hi)`` gives
+    ``⌊(n + lo + hi − k)/s⌋ + 1`` positions per spatial axis, then pooling of window ``p``
+    (stride ``p``, no padding) ``⌊n/p⌋``. Raises :class:`ShapeError` when a block leaves no
+    position."""
+    shape = _shape_of(in_shape)
+    if len(shape) not in (2, 3):
+        raise ShapeError(f"model.kind = \"conv\" needs examples of shape [length, channels] or [height, width, "
+                         f"channels], not {list(shape)}; set data.shape (e.g. [8, 8, 1]) or use kind = \"mlp\"")
+    out = []
+    for i, block in enumerate(blocks):
+        lo, hi = _padding(block.kernel, block.padding)
+        spatial = []
+        for n in shape[:-1]:
+            m = (n + lo + hi - block.kernel) // block.stride + 1 if n + lo + hi >= block.kernel else 0
+            spatial.append(m // block.pool)
+        if min(spatial) < 1:
+            raise ShapeError(f"model.blocks[{i}]: a block of kernel {block.kernel}, stride {block.stride}, pool "
+                             f"{block.pool} and padding {block.padding!r} leaves no position of the "
+                             f"{list(shape[:-1])} it receives; use fewer blocks, padding = \"same\", or a smaller "
+                             "kernel, stride or pool")
+        shape = (*spatial, block.channels)
+        out.append(shape)
+    return out
+
+
+def conv(blocks, pooling, hidden, out_width, activation, init, normalizer, dropout) -> Network:
+    """A convolutional network for 1-D (``[length, channels]``) or 2-D (``[height, width,
+    channels]``) examples: per block ``h ← pool(dropout(act(norm(W ⋆ h + b))))`` — a
+    cross-correlation of window ``kernel`` along every spatial axis, ``stride``, ``"same"`` or
+    ``"valid"`` padding, then ``pool``×… windows of ``pooling`` (``"max"`` or ``"average"``,
+    stride = window; ``pool = 1``: none) — then the feature maps flattened (C order) into the
+    dense ``hidden`` layers and the output layer, as in :func:`mlp`.
+
+    Normalization acts per channel over the batch and positions (batch) or per example over
+    positions and channels (layer); dropout draws its masks per unit of the feature map, per
+    channel (spatial), or not at all on blocks (connect: DropConnect acts on the dense layers'
+    weights only)."""
+    blocks, hidden = tuple(blocks), tuple(hidden)
+    names = layer_names(len(blocks) + len(hidden) + 1)
+    conv_names, dense_names = names[:len(blocks)], names[len(blocks):]
+    act = ACTIVATIONS[activation]
+
+    def init_fn(key, in_shape):
+        in_shape = _shape_of(in_shape)
+        shapes = feature_shapes(in_shape, blocks)
+        spatial = len(in_shape) - 1
+        entries, channels = [], in_shape[-1]
+        for block in blocks:
+            window = block.kernel ** spatial
+            entries.append((window * channels, window * block.channels,
+                            (*(block.kernel,) * spatial, channels, block.channels)))
+            channels = block.channels
+        widths = (math.prod(shapes[-1]) if shapes else math.prod(in_shape), *hidden, out_width)
+        entries += list(zip(widths[:-1], widths[1:]))
+        weights = draw_weights(init, key, entries)
+        params, state = {}, {}
+        for i, (name, block) in enumerate(zip(conv_names, blocks)):
             layer = {"W": weights[i]}
-            is_hidden = i < len(hidden)
-            if not is_hidden or normalizer.uses_bias:
-                layer["b"] = jnp.zeros((widths[i + 1],), jnp.float32)
-            if is_hidden:
-                norm_params, state[name] = normalizer.init(widths[i + 1])
-                layer.update(norm_params)
+            if normalizer.uses_bias:
+                layer["b"] = jnp.zeros((block.channels,), jnp.float32)
+            norm_params, state[name] = normalizer.init(block.channels)
+            layer.update(norm_params)
             params[name] = layer
+        _dense_init(params, state, dense_names, weights[len(blocks):], widths, normalizer)
         return params, state
 
     def apply_fn(params, state, x, key, mask, train):
         h, new_state = x, {}
-        for i, name in enumerate(names[:-1]):
+        for i, (name, block) in enumerate(zip(conv_names, blocks)):
             p = params[name]
             layer_key = jax.random.fold_in(key, i + 1)
-            u = dropout.dense(jax.random.fold_in(layer_key, 0), h, p["W"], train)
+            u = convolve(h, p["W"], block.stride, block.padding)
             if "b" in p:
                 u = u + p["b"]
             norm_params = {k: v for k, v in p.items() if k not in ("W", "b")}
             u, new_state[name] = normalizer.apply(norm_params, state[name], u, mask, train)
             h = dropout.activation(jax.random.fold_in(layer_key, 1), act(u), train)
-        out = params[names[-1]]
-        return h @ out["W"] + out["b"], new_state
+            if block.pool > 1:
+                h = pool(h, block.pool, pooling)
+        h = h.reshape(h.shape[0], -1)
+        z = _dense_apply(params, state, new_state, dense_names, h, key, len(blocks) + 1, mask, train, act,
+                         normalizer, dropout)
+        return z, new_state
 
     return Network(init_fn, apply_fn, names)
 
 
 # Network families by the spec's ``model.kind``: each factory takes the ``[model]`` fields by name
 # plus ``out_width``, ``normalizer`` and ``dropout``, and returns a :class:`Network`.
-FAMILIES: dict[str, Callable[..., Network]] = {"mlp": mlp}
+FAMILIES: dict[str, Callable[..., Network]] = {"mlp": mlp, "conv": conv}
+
+
+class Cost(NamedTuple):
+    """What one example costs a network, for the resource guard."""
+    params: int       # weights, biases and normalizer parameters, counted as 3 per unit
+    activations: int  # values of every layer's output, the input included
+    macs: int         # multiply-accumulates of one forward pass
+    layers: int       # affine layers (blocks, hidden, output)
+
+
+def mlp_cost(model, in_shape, out_width) -> Cost:
+    widths = [math.prod(_shape_of(in_shape)), *model.widths, out_width]
+    pairs = list(zip(widths[:-1], widths[1:]))
+    return Cost(sum(a * b + 3 * b for a, b in pairs), sum(widths), sum(a * b for a, b in pairs), len(pairs))
+
+
+def conv_cost(model, in_shape, out_width) -> Cost:
+    in_shape = _shape_of(in_shape)
+    blocks = model.resolved_blocks
+    params = macs = 0
+    activations = math.prod(in_shape)
+    channels, spatial = in_shape[-1], len(in_shape) - 1
+    for block, shape in zip(blocks, feature_shapes(in_shape, blocks)):
+        kernel = block.kernel ** spatial * channels * block.channels
+        # Positions before pooling: the convolution's output, which the backward pass keeps.
+        positions = math.prod(shape[:-1]) * block.pool ** spatial
+        params += kernel + 3 * block.channels
+        macs += positions * kernel
+        activations += positions * block.channels
+        channels = block.channels
+    flat = math.prod(feature_shapes(in_shape, blocks)[-1])
+    dense = mlp_cost(model, flat, out_width)
+    return Cost(params + dense.params, activations + dense.activations - flat, macs + dense.macs,
+                len(blocks) + dense.layers)
+
+
+COSTS: dict[str, Callable[..., Cost]] = {"mlp": mlp_cost, "conv": conv_cost}
 
 
 def weight_mask(params):
-    """A pytree of bools shaped like ``params``: True on weight matrices ``W`` only."""
+    """A pytree of bools shaped like ``params``: True on weights ``W`` only (matrices and kernels)."""
     return {name: {k: k == "W" for k in layer} for name, layer in params.items()}

@@ -171,7 +171,7 @@ def execute_group(group: Group, dataset, environment: dict,
             run_id=run.run_id, lane=i, curves=curves,
             diverged_at=int(at[i]) + 1 if bool(diverged[i]) else None,
             param_digest=param_digest(lane_params),
-            warnings=diagnose(run.variant.spec.normalization.kind, len(run.variant.spec.model.widths), curves),
+            warnings=diagnose(run.variant.spec.normalization.kind, run.variant.spec.model.hidden_layers, curves),
             arrays=_lane_arrays(lane_params, carry, i) if keep_arrays else None,
         ))
     return GroupResult(group.group_id, group.lane_width, names, results, compile_seconds, run_seconds, environment)

@@ -43,13 +43,14 @@ from __future__ import annotations
 
 import dataclasses
 import json
+import math
 import os
 import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 
 from compiler.errors import UserError
-from compiler.spec import train_size
+from compiler.spec import example_shape, train_size
 from runtime.plan import Group, lane_bytes
 
 __all__ = ["Estimate", "ResourceError", "Calibration", "estimate", "model_seconds", "lane_budget", "check",
@@ -141,27 +142,30 @@ def _outputs(variant, dataset) -> int:
 
 
 def _shape(group: Group, dataset):
+    from compiler.model import COSTS  # jax: only where a run is planned, never in `lesion check`
+
     v = group.runs[0].variant
-    n, features = dataset.x.shape
-    widths = [features, *v.spec.model.widths, _outputs(v, dataset)]
+    n, in_shape = dataset.x.shape[0], dataset.x.shape[1:]
+    outputs = _outputs(v, dataset)
+    cost = COSTS[v.spec.model.kind](v.spec.model, in_shape, outputs)
     n_train = train_size(n, v.spec.data.validation)
     batch = v.spec.training.batch_size
     steps = n_train // batch if v.spec.training.drop_last else -(-n_train // batch)
-    return v, n, n_train, widths, steps
+    return v, n, n_train, in_shape, outputs, cost, steps
 
 
 def per_lane_bytes(group: Group, dataset) -> int:
-    v, n, n_train, widths, steps = _shape(group, dataset)
-    n_val, features = n - n_train, widths[0]
-    grows = (n + n_train + max(n_train * features, n_val * (features + 2 * sum(widths)))
-             + steps * (len(widths) + 6))
-    return lane_bytes(v, features, widths[-1]) + 4 * grows
+    v, n, n_train, in_shape, outputs, cost, steps = _shape(group, dataset)
+    n_val, features = n - n_train, math.prod(in_shape)
+    grows = (n + n_train + max(n_train * features, n_val * (features + 2 * cost.activations))
+             + steps * (cost.layers + 7))
+    return lane_bytes(v, in_shape, outputs) + 4 * grows
 
 
 def model_seconds(group: Group, dataset) -> float:
     """Uncalibrated execution seconds of a group."""
-    v, n, n_train, widths, steps = _shape(group, dataset)
-    macs = sum(a * b for a, b in zip(widths[:-1], widths[1:]))
+    v, n, n_train, in_shape, outputs, cost, steps = _shape(group, dataset)
+    macs = cost.macs
     flops = group.lane_width * (6 * macs * n_train + 2 * macs * (n - n_train))
     epochs = v.spec.training.epochs
     return epochs * (flops / FLOPS_PER_SECOND + steps * STEP_SECONDS)
@@ -233,9 +237,10 @@ def check_data(groups: list[Group], *, where: str, base_dir=".", available: int 
     for g in groups:
         data = g.runs[0].variant.spec.data
         if data.kind == "synthetic":
-            need = RUNTIME_BYTES + 12 * data.samples * (data.features + 1)
-            what = f"data.samples = {data.samples} × data.features = {data.features}"
-            fix = "lower data.samples or data.features"
+            shape = example_shape(data)
+            need = RUNTIME_BYTES + 12 * data.samples * (math.prod(shape) + 1)
+            size, value = ("data.shape", list(shape)) if len(shape) > 1 else ("data.features", data.features)
+            what, fix = f"data.samples = {data.samples} × {size} = {value}", f"lower data.samples or {size}"
         else:
             need = RUNTIME_BYTES + load_bytes(inspect_file(data, base_dir), data)
             what, fix = f"data.path = {data.path}", "use a sample of its rows or fewer columns"

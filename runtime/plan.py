@@ -49,14 +49,18 @@ class Group:
         return self.lane_width - len(self.runs)
 
 
-def lane_bytes(variant: Variant, features: int, outputs: int) -> int:
+def lane_bytes(variant: Variant, in_shape, outputs: int) -> int:
     """Rough bytes one lane needs while training: parameters with gradients and up to three
-    optimizer slots, activations of one batch kept for the backward pass, float32."""
+    optimizer slots, activations of one batch kept for the backward pass, float32. The network's
+    sizes are its family's cost facts (:data:`compiler.model.COSTS`) for examples of
+    ``in_shape``."""
+    from compiler.model import COSTS  # jax: only where a run is planned, never in `lesion check`
+
     spec = variant.spec
-    widths = [features, *spec.model.widths, outputs]
-    params = sum(a * b + 3 * b for a, b in zip(widths[:-1], widths[1:]))
+    cost = COSTS[spec.model.kind](spec.model, in_shape, outputs)
+    params = cost.params
     batch = spec.training.batch_size
-    activations = batch * sum(widths) * 4
+    activations = batch * cost.activations * 4
     if spec.regularization.dropout.kind == "connect":
         activations += batch * params  # a weight mask per example
     return 4 * (5 * params + activations)

@@ -62,6 +62,15 @@ BASES = {
         "optimizer": {"kind": "adamw", "learning_rate": 0.01, "schedule": {"kind": "constant"}},
         "training": {"epochs": 2, "batch_size": 16},
     },
+    "conv-spatial": {
+        "data": {"generator": "glyphs", "samples": 64, "shape": [6, 6, 2], "classes": 3},
+        "model": {"kind": "conv", "blocks": [{"channels": 3, "kernel": 2, "stride": 1, "padding": "valid", "pool": 2}],
+                  "pooling": "average", "hidden": [4], "activation": "gelu", "init": "he_uniform"},
+        "normalization": {"kind": "batch"},
+        "regularization": {"dropout": {"kind": "spatial", "rate": 0.2}},
+        "optimizer": {"kind": "adam", "learning_rate": 0.01},
+        "training": {"epochs": 2, "batch_size": 16},
+    },
     # Only hashed, never trained: the data file does not exist.
     "file-data": {
         "data": {"kind": "file", "path": "table.csv", "target": "label", "features": ["a", "b"]},
@@ -109,8 +118,8 @@ def test_knob_marks_name_real_valued_fields_of_their_model():
 
 def test_the_bases_use_every_model_of_the_schema():
     used = {type(section) for raw in BASES.values() for _, section in sections(_variant(raw))}
-    # Expansion resolves a neuron budget into a list of widths: no variant holds one.
-    assert {m.__name__ for m in _schema_models() - used} == {"NeuronBudget"}
+    # Expansion resolves a budget into a list of widths or blocks: no variant holds one.
+    assert {m.__name__ for m in _schema_models() - used} == {"NeuronBudget", "ChannelBudget"}
 
 
 def test_knobs_are_derived_from_the_marks():

@@ -20,10 +20,6 @@ def test_activation_and_init_tables_match_spec_literals():
     assert set(typing.get_args(spec.Model.model_fields["init"].annotation)) == set(model.INITIALIZERS)
 
 
-def test_families_match_the_model_kinds():
-    assert set(typing.get_args(spec.Model.model_fields["kind"].annotation)) == set(model.FAMILIES)
-
-
 def test_activations_match_references():
     x = np.linspace(-4, 4, 41)
     f = lambda name: np.asarray(model.ACTIVATIONS[name](jnp.asarray(x, jnp.float32)))
