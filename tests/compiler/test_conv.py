@@ -226,3 +226,21 @@ def test_families_and_tables_match_the_spec():
     assert kinds == set(model.FAMILIES) == set(model.COSTS)
     assert set(typing.get_args(spec.ConvModel.model_fields["activation"].annotation)) == set(model.ACTIVATIONS)
     assert set(typing.get_args(spec.ConvModel.model_fields["init"].annotation)) == set(model.INITIALIZERS)
+
+
+@pytest.mark.parametrize("padding, low", [("valid", 1.0), ("same", 0.8)])
+def test_the_guards_multiply_accumulates_are_xlas_own_count(padding, low):
+    # XLA's cost analysis of the compiled forward pass (jax's Compiled.cost_analysis) counts
+    # 2 FLOPs per multiply-accumulate of the convolutions and products, plus the element-wise
+    # work (bias, activation, pooling) the guard leaves out: within 15 % above. With "same"
+    # padding XLA does not count the taps that fall on the padding zeros (here about 15 % of the
+    # convolutions'), which the guard does: it may then count up to 20 % more than XLA.
+    blocks = _blocks(8, 16, kernel=3, pool=2, padding=padding)
+    net = model.conv(blocks, "max", (32,), 10, "relu", "he_normal", normalization.none(), regularization.inverted(0.0))
+    params, state = net.init(jax.random.key(0), (14, 14, 1))
+    x = jnp.zeros((16, 14, 14, 1), jnp.float32)
+    forward = jax.jit(lambda p, x: net.apply(p, state, x, jax.random.key(0), None, False)[0])
+    analysis = forward.lower(params, x).compile().cost_analysis()
+    flops = (analysis[0] if isinstance(analysis, list) else analysis)["flops"]
+    cost = model.COSTS["conv"](spec.ConvModel(kind="conv", blocks=blocks, hidden=[32]), (14, 14, 1), 10)
+    assert low <= flops / (2 * 16 * cost.macs) <= 1.15, flops / (2 * 16 * cost.macs)
