@@ -53,16 +53,22 @@ def test_the_loader_keeps_the_images_shape(digits):
 
 
 def test_a_small_conv_net_reaches_97_percent_on_digits(digits):
-    # common practice: a two-block convolutional network reaches about 98 % on the held-out 8×8
-    # digits within a few epochs (from memory; the 97 % bar leaves room for one unlucky split)
+    # common practice: a small convolutional network reaches about 97-98 % on the held-out 8×8
+    # digits within a few epochs (from memory). One seed, the fast variant of the slow check
+    # below: over seeds 0-9 this network measured 0.9715 on average, between 0.962 and 0.982,
+    # so a single seed is a regression check of this seed's run, not the claim itself.
     _, accuracy = _final_accuracy(digits, CONV, [0], epochs=8)
     assert accuracy[0] >= 0.97, accuracy
 
 
 @pytest.mark.slow
 def test_conv_against_an_mlp_of_equal_parameters_over_paired_seeds(digits):
-    # Paired seeds: the same split per seed for both networks. A Wilcoxon signed-rank test
-    # (scipy.stats.wilcoxon) on the per-seed differences; the numbers are printed for the README.
+    # Paired seeds: the same split per seed for both networks; a Wilcoxon signed-rank test
+    # (scipy.stats.wilcoxon) on the per-seed differences. Measured (8 epochs, seeds 0-9): conv
+    # 0.9715 ± 0.0083, MLP 0.9717 ± 0.0074, conv − MLP −0.0002 (5 wins of 10), p = 0.98: at equal
+    # parameters and this budget of epochs the convolutional network does NOT beat the MLP on
+    # these tiny images. What is asserted is what was found: the conv net's mean reaches the
+    # common-practice 97 %, and it is within one point of the MLP either way.
     seeds = list(range(10))
     _, conv = _final_accuracy(digits, CONV, seeds, epochs=8)
     _, mlp = _final_accuracy(digits, MLP, seeds, epochs=8)
@@ -70,5 +76,5 @@ def test_conv_against_an_mlp_of_equal_parameters_over_paired_seeds(digits):
     print(f"conv {conv.mean():.4f} ± {conv.std(ddof=1):.4f}, mlp {mlp.mean():.4f} ± {mlp.std(ddof=1):.4f}, "
           f"conv − mlp {diff.mean():+.4f} (wins {int(np.sum(diff > 0))}/{len(seeds)}), "
           f"Wilcoxon p = {scipy.stats.wilcoxon(diff).pvalue:.3g}")
-    assert np.all(conv >= 0.97)
-    assert diff.mean() > 0 and scipy.stats.wilcoxon(diff, alternative="greater").pvalue < 0.05
+    assert conv.mean() >= 0.97
+    assert abs(diff.mean()) < 0.01
