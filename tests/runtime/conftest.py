@@ -3,6 +3,7 @@
 import os
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 TINY = """
@@ -86,3 +87,24 @@ def decided_spec():
 def _private_compile_cache(tmp_path_factory):
     # The persistent compile cache is a speed-up only; tests keep theirs apart from the user's.
     os.environ.setdefault("LESION_CACHE_DIR", str(tmp_path_factory.mktemp("xla-cache")))
+
+
+def _assert_same_bits(a, b):
+    runs_a, runs_b = a.runs.sort_by("run_id"), b.runs.sort_by("run_id")
+    curves_a = a.curves.sort_by([("run_id", "ascending"), ("epoch", "ascending")])
+    curves_b = b.curves.sort_by([("run_id", "ascending"), ("epoch", "ascending")])
+    for column in ("run_id", "param_digest", "lane_width"):
+        assert runs_a.column(column).to_pylist() == runs_b.column(column).to_pylist(), column
+    metrics = [c for c in curves_a.column_names if c not in ("run_id", "variant_label", "seed", "epoch")]
+    assert metrics
+    for m in metrics:
+        # float32 bit patterns, not a tolerance
+        x = curves_a.column(m).to_numpy().astype(np.float32).view(np.uint32)
+        y = curves_b.column(m).to_numpy().astype(np.float32).view(np.uint32)
+        np.testing.assert_array_equal(x, y, err_msg=m)
+
+
+@pytest.fixture(scope="session")
+def same_bits():
+    """same_bits(a, b): two opened result sets hold the same runs, digests, widths and curve bits."""
+    return _assert_same_bits

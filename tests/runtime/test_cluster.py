@@ -12,7 +12,6 @@ import signal
 import threading
 import time
 
-import numpy as np
 import pytest
 from distributed import Client, LocalCluster
 from typer.testing import CliRunner
@@ -35,27 +34,6 @@ def cluster():
         yield lc, client
 
 
-def _by_run(rs):
-    runs = rs.runs.sort_by("run_id")
-    curves = rs.curves.sort_by([("run_id", "ascending"), ("epoch", "ascending")])
-    return runs, curves
-
-
-def _assert_same_bits(a, b):
-    ra, ca = _by_run(a)
-    rb, cb = _by_run(b)
-    assert ra.column("run_id").to_pylist() == rb.column("run_id").to_pylist()
-    assert ra.column("param_digest").to_pylist() == rb.column("param_digest").to_pylist()
-    assert ra.column("lane_width").to_pylist() == rb.column("lane_width").to_pylist()
-    metrics = [c for c in ca.column_names if c not in ("run_id", "variant_label", "seed", "epoch")]
-    assert metrics
-    for m in metrics:
-        # float32 bit patterns, not a tolerance
-        x = ca.column(m).to_numpy().astype(np.float32).view(np.uint32)
-        y = cb.column(m).to_numpy().astype(np.float32).view(np.uint32)
-        np.testing.assert_array_equal(x, y, err_msg=m)
-
-
 @pytest.fixture(scope="module")
 def on_cluster(cluster, tmp_path_factory, tiny_spec):
     lc, _ = cluster
@@ -67,11 +45,11 @@ def on_cluster(cluster, tmp_path_factory, tiny_spec):
     return loaded, open_result_set(here.path), open_result_set(there.path), there
 
 
-def test_cluster_result_set_is_bit_identical_to_in_process(on_cluster):
+def test_cluster_result_set_is_bit_identical_to_in_process(on_cluster, same_bits):
     loaded, here, there, report = on_cluster
     assert report.computed == 6 and report.groups == 3
     assert there.runs.num_rows == 6 and there.curves.num_rows == 6 * 4
-    _assert_same_bits(here, there)
+    same_bits(here, there)
 
 
 def test_runs_record_the_workers_environment(on_cluster, cluster):
@@ -193,7 +171,7 @@ def test_a_scheduler_without_workers_is_a_cluster_error():
             DaskExecutor(lc.scheduler_address, worker_seconds=0.5).open()
 
 
-def test_cli_local_cluster_matches_in_process(tmp_path, tiny_spec, on_cluster):
+def test_cli_local_cluster_matches_in_process(tmp_path, tiny_spec, on_cluster, same_bits):
     # `--cluster local:2` starts its own loopback cluster; same study, same widths, same bits
     _, here, _, _ = on_cluster
     spec = tiny_spec(tmp_path, "spread", seeds=3, epochs=4, rates="[0.03, 0.3]")
@@ -201,7 +179,7 @@ def test_cli_local_cluster_matches_in_process(tmp_path, tiny_spec, on_cluster):
                                    "--out", str(tmp_path / "r")])
     assert out.exit_code == 0, out.output
     path = out.stdout.strip().splitlines()[-1]
-    _assert_same_bits(here, open_result_set(path))
+    same_bits(here, open_result_set(path))
     again = CliRunner().invoke(app, ["replay", path])
     assert again.exit_code == 0 and "all 6 replayed run(s) identical" in again.stdout, again.output
 
@@ -217,7 +195,7 @@ def _kill_a_busy_worker(client, killed: dict, stop: threading.Event):
         time.sleep(0.005)
 
 
-def test_a_worker_killed_mid_study_loses_nothing_and_writes_nothing_twice(cluster, tmp_path, tiny_spec):
+def test_a_worker_killed_mid_study_loses_nothing_and_writes_nothing_twice(cluster, tmp_path, tiny_spec, same_bits):
     # Dask recomputes the tasks of a lost worker elsewhere (distributed scheduler docs, "Resilience")
     lc, client = cluster
     loaded = load_study(tiny_spec(tmp_path, "killed", seeds=3, epochs=12, rates="[0.03, 0.3]"))
@@ -241,10 +219,10 @@ def test_a_worker_killed_mid_study_loses_nothing_and_writes_nothing_twice(cluste
     ids = there.runs.column("run_id").to_pylist()
     assert len(ids) == len(set(ids)) == 6
     assert there.curves.num_rows == 6 * 12
-    _assert_same_bits(here, there)
+    same_bits(here, there)
 
 
-def test_until_decided_on_the_cluster_matches_in_process(cluster, tmp_path, decided_spec):
+def test_until_decided_on_the_cluster_matches_in_process(cluster, tmp_path, decided_spec, same_bits):
     # `run --until-decided --cluster`: each look's groups are tasks; same looks, seeds, decisions, bits
     from runtime.runner import run_until_decided
     from runtime.sequential import Rule
@@ -257,4 +235,4 @@ def test_until_decided_on_the_cluster_matches_in_process(cluster, tmp_path, deci
         there, seq_there = run_until_decided(loaded, tmp_path / "there", rule, executor=ex)
     assert seq_there.procedure.looks == seq_here.procedure.looks
     assert seq_there.procedure.settled == seq_here.procedure.settled
-    _assert_same_bits(open_result_set(here[-1].path), open_result_set(there[-1].path))
+    same_bits(open_result_set(here[-1].path), open_result_set(there[-1].path))

@@ -14,7 +14,6 @@ import os
 import subprocess
 import sys
 
-import numpy as np
 import pytest
 
 from compiler.loader import load_study
@@ -128,20 +127,6 @@ def test_pinning_gives_every_thread_its_cpus_back():
     assert json.loads(done.stdout.strip().splitlines()[-1]) == [environment.usable_cores()]
 
 
-def _assert_same_bits(a, b):
-    ra, rb = a.runs.sort_by("run_id"), b.runs.sort_by("run_id")
-    ca = a.curves.sort_by([("run_id", "ascending"), ("epoch", "ascending")])
-    cb = b.curves.sort_by([("run_id", "ascending"), ("epoch", "ascending")])
-    for column in ("run_id", "param_digest", "lane_width"):
-        assert ra.column(column).to_pylist() == rb.column(column).to_pylist(), column
-    metrics = [c for c in ca.column_names if c not in ("run_id", "variant_label", "seed", "epoch")]
-    assert metrics
-    for m in metrics:
-        x = ca.column(m).to_numpy().astype(np.float32).view(np.uint32)
-        y = cb.column(m).to_numpy().astype(np.float32).view(np.uint32)
-        np.testing.assert_array_equal(x, y, err_msg=m)
-
-
 @pytest.fixture(scope="module")
 def one_and_two(sensitive, tmp_path_factory):
     """The sensitive study as 2 groups of 2 lanes: in this process (one worker) and on two."""
@@ -154,10 +139,10 @@ def one_and_two(sensitive, tmp_path_factory):
     return one, two, events
 
 
-def test_two_workers_compute_the_bits_of_one(one_and_two):
+def test_two_workers_compute_the_bits_of_one(one_and_two, same_bits):
     one, two, _ = one_and_two
     assert one.computed == two.computed == 4 and one.groups == two.groups == 2
-    _assert_same_bits(open_result_set(one.path), open_result_set(two.path))
+    same_bits(open_result_set(one.path), open_result_set(two.path))
 
 
 def test_runs_from_workers_record_a_one_thread_pool(one_and_two):
