@@ -203,10 +203,11 @@ def feature_shapes(in_shape, blocks) -> list[tuple[int, ...]]:
             m = (n + lo + hi - block.kernel) // block.stride + 1 if n + lo + hi >= block.kernel else 0
             spatial.append(m // block.pool)
         if min(spatial) < 1:
+            same = ', padding = "same"' if block.padding == "valid" else ""
             raise ShapeError(f"model.blocks[{i}]: a block of kernel {block.kernel}, stride {block.stride}, pool "
                              f"{block.pool} and padding {block.padding!r} leaves no position of the "
-                             f"{list(shape[:-1])} it receives; use fewer blocks, padding = \"same\", or a smaller "
-                             "kernel, stride or pool")
+                             f"{list(shape[:-1])} it receives; use fewer blocks{same} or a smaller kernel, "
+                             "stride or pool")
         shape = (*spatial, block.channels)
         out.append(shape)
     return out
