@@ -19,10 +19,19 @@ epoch: shuffle, every step in ``lax.scan``, then the validation split in inferen
 ``train`` is ``init`` then a scan over ``epochs``. Metrics per epoch (``Program.metric_names``):
 ``train_divergence`` and ``train_penalty`` (``λ/2‖W‖²``, 0 when decay is decoupled) averaged
 over the epoch's steps; ``val_divergence`` and ``val_accuracy`` or ``val_rmse`` (target units)
-on the validation split in inference mode; ``grad_norm`` and ``grad_norm_l<i>`` (L2 norm of the
+on the validation split in inference mode, for a classifier also ``val_macro_f1`` and
+``val_recall_<k>`` per class from the same predictions (:func:`class_scores`; the names come from
+``compiler.spec.class_metrics``); ``grad_norm`` and ``grad_norm_l<i>`` (L2 norm of the
 objective's gradient, all of it or one layer's, averaged over steps); ``weight_norm`` (L2 norm of
 the weight matrices at the end of the epoch); ``learning_rate`` at the epoch's last step.
-``evaluate`` returns ``divergence`` and ``accuracy`` or ``rmse``.
+``evaluate`` returns ``divergence`` and ``accuracy`` (with ``macro_f1`` and ``recall_<k>``) or
+``rmse``.
+
+With ``data.test``, the split's permutation gives its last rows to a test split
+(:func:`compiler.spec.split_sizes`), which neither training nor standardization sees, nor any
+epoch: ``test(carry, data_x, data_y)`` scores them (``Program.test_names``: ``test_divergence``
+and ``test_accuracy`` or ``test_rmse``, inference mode) for the weights of a carry, once, after
+training (the runtime passes the weights of the epoch the study judges its runs at).
 
 Components are built from their spec sections by their family's registry under the section's
 ``kind``, with every field of the section as an argument of the same name: knobs as the traced
@@ -62,10 +71,10 @@ import optax
 from compiler import divergences, model, normalization, optimizers, regularization
 from compiler.data import Dataset
 from compiler.hashing import knobs_of, structure_key
-from compiler.spec import Spec, Strict, train_size
+from compiler.spec import MACRO_F1, RECALL, Spec, Strict, class_metrics, split_sizes
 
-__all__ = ["Program", "Carry", "compile_structure", "zero_knobs", "fit_standardization", "knob_vector", "seed_key",
-           "param_digest", "permutation",
+__all__ = ["Program", "Carry", "compile_structure", "class_scores", "zero_knobs", "fit_standardization", "knob_vector",
+           "seed_key", "param_digest", "permutation",
            "SPLIT", "INIT", "SHUFFLE", "DROPOUT"]
 
 # Purpose tags of the random streams; fixed forever, since they decide every run's bits.
@@ -77,6 +86,7 @@ class Program(NamedTuple):
     knob_names: tuple[str, ...]
     zero_knobs: frozenset[str]
     metric_names: tuple[str, ...]
+    test_names: tuple[str, ...]
     epochs: int
     init: Callable
     epoch: Callable
@@ -85,6 +95,7 @@ class Program(NamedTuple):
     params: Callable
     status: Callable
     pack: Callable
+    test: Callable        # carry, data → test scores of the carry's weights (with data.test)
 
 
 class Carry(NamedTuple):
@@ -95,6 +106,7 @@ class Carry(NamedTuple):
     epoch: jax.Array      # int32, index of the next epoch
     train_idx: jax.Array  # int32 [n_train]
     val_idx: jax.Array    # int32 [n_val]
+    test_idx: jax.Array   # int32 [n_test], empty without data.test
     x_mean: jax.Array
     x_scale: jax.Array
     shuffle_key: jax.Array
@@ -187,6 +199,33 @@ def fit_standardization(x_train: jax.Array) -> tuple[jax.Array, jax.Array]:
     return mean, jnp.where(constant, 1.0, jnp.sqrt(var))
 
 
+def class_scores(predicted: jax.Array, y: jax.Array, classes: int) -> dict[str, jax.Array]:
+    """Recall of each class and the macro-averaged F1 score of class predictions (int ``[n]``)
+    against labels (int ``[n]``, ``0 … classes − 1``), as float32 scalars named by
+    ``compiler.spec.RECALL`` + k and ``compiler.spec.MACRO_F1``.
+
+    With per-class counts ``tp`` (predicted k and labelled k), ``support`` (labelled k) and
+    ``chosen`` (predicted k): recall_k = tp / support, F1_k = 2 tp / (support + chosen) (the
+    harmonic mean of precision and recall written without either, as scikit-learn computes it).
+    Macro F1 is the unweighted mean of F1_k over the classes that occur in the labels or the
+    predictions: scikit-learn's ``f1_score(average="macro")`` with ``labels`` left out. A class
+    absent from the labels has recall 0 (scikit-learn's ``zero_division`` default, "warn", which
+    returns 0); a class in neither is left out of the mean, so the macro F1 never divides by 0.
+    The counts are int32 scatter-adds (exact, in any order); every value is finite, so these
+    metrics never mark an epoch unhealthy."""
+    ones = jnp.ones_like(y, dtype=jnp.int32)
+    count = lambda index, weight: jnp.zeros((classes,), jnp.int32).at[index].add(weight)
+    support, chosen = count(y, ones), count(predicted, ones)
+    tp = count(y, (predicted == y).astype(jnp.int32))
+    ratio = lambda num, den: jnp.where(den > 0, num.astype(jnp.float32) / jnp.maximum(den, 1).astype(jnp.float32),
+                                       jnp.float32(0.0))
+    recall = ratio(tp, support)
+    f1 = ratio(2 * tp, support + chosen)
+    present = (support + chosen) > 0
+    macro = jnp.sum(jnp.where(present, f1, 0.0)) / jnp.sum(present).astype(jnp.float32)
+    return {MACRO_F1: macro, **{f"{RECALL}{k}": recall[k] for k in range(classes)}}
+
+
 def zero_knobs(variants: Sequence[Spec]) -> frozenset[str]:
     """The knobs that are 0 in every one of ``variants`` (lanes padded with copies of a real run
     add no other value): work they make the identity can be left out of their program."""
@@ -205,29 +244,25 @@ def compile_structure(variants: Sequence[Spec], dataset: Dataset) -> Program:
     zero = zero_knobs(variants)
     n, shape = dataset.x.shape[0], dataset.x.shape[1:]
     classification = dataset.task == "classification"
-    n_train = train_size(n, variant.data.validation)
-    targets = None if classification else dataset.y.shape[1]
+    n_train, n_val, n_test = split_sizes(n, variant.data.validation, variant.data.test)
     epochs = variant.training.epochs
     batch_size = variant.training.batch_size
-    drop_last = variant.training.drop_last
-    steps = n_train // batch_size if drop_last else -(-n_train // batch_size)
+    steps = variant.training.steps(n_train)
     padded = steps * batch_size
     decoupled = variant.regularization.decoupled
     opt = variant.optimizer
     widths = list(variant.model.widths)
     names = model.layer_names(variant.model.hidden_layers + 1)
     fit_scale = variant.data.standardize
-    no_dropout_masks = ("regularization.dropout.rate" in zero
-                        and variant.regularization.dropout.kind in ("inverted", "scaled", "spatial"))
-
     def parts(knobs) -> _Parts:
         divergence = _component(divergences.REGISTRY, variant.divergence, "divergence.", knobs)
         normalizer = _component(normalization.REGISTRY, variant.normalization, "normalization.", knobs)
         dropout = _component(regularization.REGISTRY, variant.regularization.dropout, "regularization.dropout.", knobs)
-        if no_dropout_masks:
+        if "regularization.dropout.rate" in zero and not dropout.masks_weights:
             dropout = dropout._replace(activation=lambda key, h, train: h)
-        out_width = divergence.width(dataset.classes, targets)
-        network = _component(model.FAMILIES, variant.model, "model.", knobs, hidden=widths, out_width=out_width,
+        out_width = variant.divergence.outputs(dataset.classes, dataset.targets)
+        networks = {kind: family.network for kind, family in model.FAMILIES.items()}
+        network = _component(networks, variant.model, "model.", knobs, hidden=widths, out_width=out_width,
                              normalizer=normalizer, dropout=dropout)
         schedule = _component(optimizers.SCHEDULES, opt.schedule, "optimizer.schedule.", knobs,
                               learning_rate=knobs["optimizer.learning_rate"], steps_per_epoch=steps,
@@ -258,27 +293,33 @@ def compile_structure(variants: Sequence[Spec], dataset: Dataset) -> Program:
         p = parts(knobs)
         data_x = jnp.asarray(data_x)
         order = permutation(jax.random.fold_in(key, SPLIT), n)
-        train_idx, val_idx = order[:n_train], order[n_train:]
+        # The test rows come last in the split's permutation: without a test split the training and
+        # validation rows are what they always were.
+        train_idx, val_idx, test_idx = order[:n_train], order[n_train:n_train + n_val], order[n_train + n_val:]
         mean, scale = fit_standardization(data_x[train_idx]) if fit_scale else \
             (jnp.zeros(shape, jnp.float32), jnp.ones(shape, jnp.float32))
         params, state = p.network.init(jax.random.fold_in(key, INIT), shape)
         return Carry(params, state, p.tx.init(params), dict(knobs), jnp.int32(0),
-                     train_idx.astype(jnp.int32), val_idx.astype(jnp.int32), mean,
+                     train_idx.astype(jnp.int32), val_idx.astype(jnp.int32), test_idx.astype(jnp.int32), mean,
                      scale, jax.random.fold_in(key, SHUFFLE),
                      jax.random.fold_in(key, DROPOUT), jnp.bool_(False), jnp.int32(-1))
 
     def scores(p, params, state, x, y):
-        """Inference-mode divergence and accuracy/RMSE on standardized inputs."""
+        """Inference-mode divergence and accuracy/RMSE on standardized inputs; for a classifier
+        also the per-class recall and macro F1 of the same predictions (:func:`class_scores`)."""
         # Inference draws no dropout masks, so any key will do.
         z, _ = p.network.apply(params, state, x, seed_key(0), None, False)
         out = {"divergence": jnp.mean(p.divergence.per_example(z, y))}
         if not classification:
             out["rmse"] = jnp.sqrt(jnp.mean(jnp.square(z - y)))
-        elif z.shape[-1] == 1:
+            return out
+        if z.shape[-1] == 1:
             out["accuracy"] = jnp.mean(((z[:, 0] > 0) == (y == 1)).astype(jnp.float32))
+            predicted = (z[:, 0] > 0).astype(jnp.int32)
         else:
             out["accuracy"] = jnp.mean((jnp.argmax(z, axis=-1) == y).astype(jnp.float32))
-        return out
+            predicted = jnp.argmax(z, axis=-1).astype(jnp.int32)
+        return {**out, **class_scores(predicted, y, dataset.classes)}
 
     def epoch(carry: Carry, knobs, data_x, data_y):
         p = parts(knobs)
@@ -347,9 +388,16 @@ def compile_structure(variants: Sequence[Spec], dataset: Dataset) -> Program:
         return scores(parts(carry.knobs), carry.params, carry.state, standardize(carry, jnp.asarray(x)),
                       jnp.asarray(y))
 
+    def test(carry: Carry, data_x, data_y):
+        idx = carry.test_idx
+        scored = evaluate(carry, jnp.asarray(data_x)[idx], jnp.asarray(data_y)[idx])
+        return {f"test_{k}": v for k, v in scored.items()}
+
     metric_names = ("train_divergence", "train_penalty", "val_divergence",
-                    "val_accuracy" if classification else "val_rmse", "grad_norm",
+                    *(("val_accuracy", *class_metrics(dataset.classes)) if classification else ("val_rmse",)),
+                    "grad_norm",
                     *(f"grad_norm_{name}" for name in names), "weight_norm", "learning_rate")
-    return Program(structure, knob_names, zero, metric_names, epochs, init, epoch, train, evaluate,
+    test_names = tuple(f"test_{m.removeprefix('val_')}" for m in metric_names if m.startswith("val_")) if n_test else ()
+    return Program(structure, knob_names, zero, metric_names, test_names, epochs, init, epoch, train, evaluate,
                    lambda carry: {"params": carry.params, "state": carry.state},
-                   lambda carry: (carry.diverged, carry.diverged_at), pack)
+                   lambda carry: (carry.diverged, carry.diverged_at), pack, test)

@@ -36,7 +36,7 @@ import numpy as np
 
 from compiler.errors import Problem, SpecError, UserError, dotted
 from compiler.locate import line_of
-from compiler.spec import FileData, Spec, classes_of, example_shape, task_of, train_size
+from compiler.spec import FileData, Spec, classes_of, example_shape, metric_problem, split_problems, task_of, train_size
 
 __all__ = ["Dataset", "DataError", "load_data", "FileInfo", "Column", "inspect_file", "load_bytes", "file_problems",
            "check_files", "locate", "GENERATORS", "rings", "spirals", "blobs", "glyphs", "friedman1",
@@ -53,6 +53,11 @@ class Dataset(NamedTuple):
     task: str
     classes: int | None
     fingerprint: str
+
+    @property
+    def targets(self) -> int | None:
+        """Target columns of a regression set; None for class labels."""
+        return self.y.shape[1] if self.task == "regression" else None
 
 
 # ── generators ──────────────────────────────────────────────────────────────────────────────────
@@ -330,8 +335,8 @@ def file_problems(variant: Spec, info: FileInfo) -> list[tuple[tuple, str]]:
             out.append((("data", "shape"), f"{data.shape} holds {math.prod(data.shape)} values but a row of {name} "
                                            f"has {width} feature values; give a shape whose sizes multiply to {width}"))
     if info.rows is not None:
-        n, n_train = info.rows, train_size(info.rows, data.validation)
-        if n_train < 1 or n_train == n:
+        n, n_train = info.rows, train_size(info.rows, data.validation, data.test)
+        if not data.test and (n_train < 1 or n_train == n):
             if n < 2:
                 fit = "a split needs at least 2 rows"
             elif n_train == n:
@@ -340,9 +345,13 @@ def file_problems(variant: Spec, info: FileInfo) -> list[tuple[tuple, str]]:
                 fit = f"use at most {math.floor(1000 * (n - 1) / n) / 1000}"
             out.append((("data", "validation"), f"{data.validation} leaves no rows on one side of the split of the "
                                                 f"{n} rows of {name}; {fit}"))
+        elif data.test:
+            out += [(tuple(key.split(".")), m) for key, m in split_problems(n, data.validation, data.test,
+                                                                            f"the {n} rows of {name}")]
         if 1 <= n_train < variant.training.batch_size:
+            share = f"1 − {data.validation}" + (f" − {data.test}" if data.test else "")
             out.append((("training", "batch_size"), f"{variant.training.batch_size} exceeds the {n_train} training "
-                                                    f"rows of {name} ({n} rows × (1 − {data.validation})); use at "
+                                                    f"rows of {name} ({n} rows × ({share})); use at "
                                                     f"most {n_train}"))
     return out
 
@@ -462,8 +471,14 @@ def _load_file(variant: Spec, base_dir: pathlib.Path):
             raise DataError(f"{path}: target column '{data.target}' has {len(labels)} class(es); "
                             "classification needs at least 2")
         classes = len(labels)
-        if variant.divergence.kind == "bce" and classes != 2:
-            raise DataError(f"{path}: divergence 'bce' is binary but the target has {classes} classes; use 'kl'")
+        problem = variant.divergence.class_problem(classes, f"the target has {classes} classes")
+        if problem:
+            raise DataError(f"{path}: divergence {problem}")
+        # A per-class metric's class count is known only now (the spec's check had no labels).
+        wrong = metric_problem(variant.study.metric, "classification", classes,
+                               f"the labels of target column '{data.target}' in sorted order")
+        if wrong:
+            raise DataError(f"{path}: study.metric: {wrong}")
         return x, y.reshape(-1), classes, _file_digest(path)
     y = _numeric(path, data.target, target)
     return x, y.reshape(n, -1), None, _file_digest(path)

@@ -1,16 +1,19 @@
 """Divergences: how far the network's output is from the target, per example.
 
-Contract: each factory in :data:`REGISTRY` takes the divergence's knobs (plain floats or traced
-f32 scalars) and returns a :class:`Divergence` of pure functions of the network's *raw* output
-``z`` (the last affine map, before the output link):
+Contract: each factory in :data:`REGISTRY` takes the divergence's fields by name (knobs as plain
+floats or traced f32 scalars) and returns a :class:`Divergence`, a pure function of the network's
+*raw* output ``z`` (the last affine map, before the output link):
+``per_example(z, target) -> f32[batch]``, the divergence of every example.
 
-- ``per_example(z, target) -> f32[batch]``: the divergence of every example;
-- ``predict(z) -> array``: the output link (softmax, sigmoid or identity), for inference;
-- ``width(classes, targets) -> int``: how many output units the link needs.
+Targets are int32 class labels ``[batch]`` for a classification divergence and float32
+``[batch, targets]`` for a regression one. Every form is written on the raw output in a
+numerically stable way (log-softmax, log-sigmoid), so the link is never exponentiated and then
+logged.
 
-Targets are int32 class labels ``[batch]`` for ``kl``/``bce`` and float32 ``[batch, targets]``
-for ``l2``/``huber``. Every form is written on the raw output in a numerically stable way
-(log-softmax, log-sigmoid), so the link is never exponentiated and then logged.
+What a divergence is *for* — its task, the classes it is defined for, its output width — is
+declared once, on its schema class in ``compiler/spec.py`` (``DivergenceSection``), where the
+spec check needs it without jax; the shared tests check that each factory accepts what its
+class declares.
 """
 
 from __future__ import annotations
@@ -25,13 +28,6 @@ __all__ = ["Divergence", "l2", "kl", "bce", "huber", "REGISTRY"]
 
 class Divergence(NamedTuple):
     per_example: Callable
-    predict: Callable
-    width: Callable
-    task: str  # "classification" | "regression"
-
-
-def _regression_width(classes, targets):
-    return targets
 
 
 def l2() -> Divergence:
@@ -41,7 +37,7 @@ def l2() -> Divergence:
     def per_example(z, d):
         return 0.5 * jnp.sum(jnp.square(z - d), axis=-1)
 
-    return Divergence(per_example, lambda z: z, _regression_width, "regression")
+    return Divergence(per_example)
 
 
 def kl(label_smoothing=0.0) -> Divergence:
@@ -60,8 +56,7 @@ def kl(label_smoothing=0.0) -> Divergence:
         # xlogy: 0·log 0 = 0 for the classes a one-hot target gives no mass.
         return jnp.sum(jax.scipy.special.xlogy(d, d) - d * log_y, axis=-1)
 
-    return Divergence(per_example, lambda z: jax.nn.softmax(z, axis=-1), lambda classes, targets: classes,
-                      "classification")
+    return Divergence(per_example)
 
 
 def bce() -> Divergence:
@@ -73,7 +68,7 @@ def bce() -> Divergence:
         d = label.astype(z.dtype)
         return -(d * jax.nn.log_sigmoid(z) + (1.0 - d) * jax.nn.log_sigmoid(-z))
 
-    return Divergence(per_example, jax.nn.sigmoid, lambda classes, targets: 1, "classification")
+    return Divergence(per_example)
 
 
 def huber(delta=1.0) -> Divergence:
@@ -86,7 +81,7 @@ def huber(delta=1.0) -> Divergence:
         # ½q² + δ(a − q) equals both branches without a select on the traced δ.
         return jnp.sum(0.5 * jnp.square(quadratic) + delta * (a - quadratic), axis=-1)
 
-    return Divergence(per_example, lambda z: z, _regression_width, "regression")
+    return Divergence(per_example)
 
 
 REGISTRY: dict[str, Callable[..., Divergence]] = {"l2": l2, "kl": kl, "bce": bce, "huber": huber}

@@ -7,6 +7,11 @@ Modes:
 - ``list``: the explicit ``[[ablation.variant]]`` tables (the base first unless
   ``include_base = false``).
 
+With ``[ablation.tune]`` the variants those modes make are *arms*: each arm runs once per
+combination of the tuned knobs' values (the same settings, hence the same budget, for every arm),
+and every such run's variant records its ``arm`` and ``setting``. Tuned keys must be knobs of
+every arm (traced inputs: tuning adds lanes, never programs) and not keys the ablation varies.
+
 An axis key addresses any field by its dotted path, inside tagged unions too. Changes are applied
 to what the user wrote (defaults are not copied in), so switching ``optimizer.kind`` from ``sgd``
 to ``adam`` drops sgd's defaults, while a key the user set that the new kind lacks is an error.
@@ -27,13 +32,13 @@ from typing import Any
 from pydantic import BaseModel, ValidationError
 
 from compiler.errors import Problem, SpecError, dotted
-from compiler.hashing import identity
-from compiler.labels import BASE_LABEL, format_value, variant_label
+from compiler.hashing import identity, knobs_of
+from compiler.labels import BASE_LABEL, format_value, label_parts, variant_label
 from compiler.paths import field_paths
 from compiler.problems import pydantic_problems
 from compiler.spec import ChannelBudget, NeuronBudget, Spec
 
-__all__ = ["Variant", "expand", "max_variants", "MAX_VARIANTS"]
+__all__ = ["Variant", "expand", "arms", "max_variants", "MAX_VARIANTS"]
 
 # Expansion costs about 0.1 ms per variant and every variant runs for seconds to minutes, so a
 # study beyond this is almost always a typo (one axis too many); $LESION_MAX_VARIANTS raises it.
@@ -48,6 +53,13 @@ class Variant:
     spec: Spec                   # resolved: no ablation, model.hidden and model.blocks explicit lists
     hash: str = field(default="")
     structure: str = field(default="")
+    # With [ablation.tune]: the arm this run of the tuning belongs to (an untuned variant) and the
+    # tuned knobs' values; None and {} otherwise.
+    arm: "Variant | None" = field(default=None, compare=False)
+    setting: dict[str, float] = field(default_factory=dict)
+    # (metric, "last" | "best"): the epoch a run is judged and its test split scored at
+    # (compiler.spec.Spec.selection); the metric only matters for "best".
+    judge: tuple[str, str] = ("", "last")
 
 
 # ── axis keys ───────────────────────────────────────────────────────────────────────────────────
@@ -108,6 +120,10 @@ def _count(abl) -> tuple[int, str]:
     """How many variants an ablation asks for, and how (for the message), before building any."""
     if abl is None:
         return 1, "the study"
+    if abl.tune is not None:
+        arms, how = _count(abl.model_copy(update={"tune": None}))
+        settings = math.prod(len(k.grid) for k in abl.tune.knob)
+        return arms * settings, f"{how} × {settings} tuned settings per arm"
     if abl.mode == "list":
         return len(abl.variant) + abl.include_base, "the list"
     sizes = [len(a.values) for a in abl.axis]
@@ -117,7 +133,79 @@ def _count(abl) -> tuple[int, str]:
 
 
 def expand(spec: Spec) -> list[Variant]:
-    """The variants of a study, in a fixed order. Raises SpecError listing every problem."""
+    """The variants of a study, in a fixed order (with ``[ablation.tune]``: each arm's settings
+    in turn). Raises SpecError listing every problem."""
+    tune = spec.ablation.tune if spec.ablation is not None else None
+    if tune is None:
+        return _expand(spec)
+    count, how = _count(spec.ablation)
+    limit = max_variants()
+    if count > limit:
+        raise SpecError([Problem(("ablation",), f"{how} makes {count:,} variants, above the limit of {limit:,}; "
+                                                "tune fewer values, or set LESION_MAX_VARIANTS in the environment")])
+    arm_list = _expand(spec.model_copy(update={"ablation": spec.ablation.model_copy(update={"tune": None})}))
+    return _tuned(spec, arm_list)
+
+
+def arms(variants: list[Variant]) -> list[Variant]:
+    """The arms of a study's variants in order: each variant itself when nothing is tuned."""
+    out: dict[str, Variant] = {}
+    for v in variants:
+        arm = v.arm or v
+        out.setdefault(arm.hash, arm)
+    return list(out.values())
+
+
+def _tuned(spec: Spec, arm_list: list[Variant]) -> list[Variant]:
+    tune = spec.ablation.tune
+    varied = {k for arm in arm_list for k in arm.changes}
+    problems = []
+    for i, knob in enumerate(tune.knob):
+        where = ("ablation", "tune", "knob", i, "key")
+        if knob.key in varied:
+            problems.append(Problem(where, f"{knob.key!r} is varied by the ablation itself; an arm cannot both fix "
+                                           "and tune it (tune another knob, or drop it from the arms)"))
+            continue
+        lacking = [arm.label for arm in arm_list if knob.key not in knobs_of(arm.spec)]
+        if lacking:
+            known = sorted(set.intersection(*(set(knobs_of(a.spec)) for a in arm_list)) - varied)
+            problems.append(Problem(where, f"{knob.key!r} is not a knob of {_some(lacking)}: only knobs (values the "
+                                           "compiled program takes as inputs, so tuning adds lanes, not programs) "
+                                           f"can be tuned; knobs of every arm: {', '.join(known)}"))
+    if problems:
+        raise SpecError(problems)
+    raw = spec.model_dump(mode="python", exclude_unset=True, exclude={"ablation"}, round_trip=True)
+    raw = json.loads(json.dumps(_plain(raw)))
+    _with_kinds(raw, spec)
+    out: list[Variant] = []
+    memo: dict[str, bytes] = {}
+    for arm in arm_list:
+        for setting in tune.settings:
+            tree = dict(raw)
+            for key, value in {**arm.changes, **setting}.items():
+                _deep_set(tree, key, value)
+            label = ", ".join([arm.label, *label_parts(setting)])
+            try:
+                resolved = _resolve(tree)
+            except ValidationError as err:
+                for p in pydantic_problems(err):
+                    key = next((k for k in setting if dotted(p.loc) == k), None)
+                    at = ("ablation", "tune", "knob", [k.key for k in tune.knob].index(key)) if key else ("ablation",)
+                    problems.append(Problem(at, f"variant '{label}' is invalid: {dotted(p.loc)}: {p.message}"))
+                continue
+            vhash, structure = identity(resolved, memo)
+            out.append(Variant(len(out), label, {**arm.changes, **setting}, resolved, vhash, structure, arm, setting,
+                               spec.selection))
+    if problems:
+        raise SpecError(problems[:20])
+    return out
+
+
+def _some(labels: list[str]) -> str:
+    return "arm " + repr(labels[0]) + (f" and {len(labels) - 1} more" if len(labels) > 1 else "")
+
+
+def _expand(spec: Spec) -> list[Variant]:
     count, how = _count(spec.ablation)
     limit = max_variants()
     if count > limit:

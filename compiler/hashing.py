@@ -96,7 +96,7 @@ def run_id(vhash: str, seed: int) -> str:
 
 
 # Keys that dumps leave out at their default so older study hashes hold (compiler.spec.Standardize).
-OMITTED_AT_DEFAULT = {"data.standardize": True}
+OMITTED_AT_DEFAULT = {"data.standardize": True, "data.test": 0.0}
 
 
 def lookup(tree: dict, path: str):

@@ -1,7 +1,7 @@
 """The networks: a multilayer perceptron and a convolutional network as stax-like (init, apply) pairs.
 
-Contract: :data:`FAMILIES` maps the spec's ``model.kind`` to a factory — :func:`mlp` (``"mlp"``),
-:func:`conv` (``"conv"``) — returning a :class:`Network` with
+Contract: :data:`FAMILIES` maps the spec's ``model.kind`` to a :class:`Family` whose ``network``
+factory — :func:`mlp` (``"mlp"``), :func:`conv` (``"conv"``) — returns a :class:`Network` with
 
 - ``init(key, in_shape) -> (params, state)``: ``in_shape`` is one example's shape (an int for a
   vector). ``params`` is ``{"l1": {...}, …, "lL": {...}}`` (the last is the output layer), each
@@ -17,8 +17,8 @@ Contract: :data:`FAMILIES` maps the spec's ``model.kind`` to a factory — :func
   statistics; ``train`` is a Python bool.
 - ``layers``: the layer names in order.
 
-:data:`COSTS` maps a family to its cost facts for the resource guard, pure Python (no jax):
-``(model, in_shape, out_width) -> Cost``.
+and whose ``cost`` (:func:`mlp_cost`, :func:`conv_cost`) declares the :class:`Cost` facts the
+resource guard reads, pure Python (no jax).
 
 :func:`weight_mask` marks the weight matrices of a params tree (what the L2 penalty, weight decay
 and the weight norm act on).
@@ -27,16 +27,17 @@ and the weight norm act on).
 from __future__ import annotations
 
 import math
-from typing import Callable, NamedTuple, Sequence
+from typing import Callable, NamedTuple
 
 import jax
 import jax.numpy as jnp
 
+from compiler import shapes
 from compiler.errors import UserError
 
-__all__ = ["Network", "mlp", "conv", "FAMILIES", "COSTS", "Cost", "ShapeError", "feature_shapes", "convolve", "pool",
-           "weight_mask",
-           "layer_names", "draw_weights", "ACTIVATIONS", "INITIALIZERS"]
+__all__ = ["Network", "Family", "Cost", "mlp", "mlp_cost", "conv", "conv_cost", "FAMILIES", "ShapeError",
+           "feature_shapes", "convolve", "pool", "weight_mask", "layer_names", "draw_weights", "ACTIVATIONS",
+           "INITIALIZERS"]
 
 ACTIVATIONS: dict[str, Callable] = {
     "relu": jax.nn.relu,
@@ -158,19 +159,13 @@ def mlp(hidden, out_width, activation, init, normalizer, dropout) -> Network:
     return Network(init_fn, apply_fn, names)
 
 
-def _padding(kernel: int, padding: str) -> tuple[int, int]:
-    # "same": the output of stride 1 keeps the input's size; an even window's extra zero goes
-    # before, as scipy.signal.correlate's mode="same" centres it.
-    return (kernel // 2, (kernel - 1) // 2) if padding == "same" else (0, 0)
-
-
 def convolve(x, kernel, stride: int, padding: str):
     """Cross-correlation of ``x`` (``[batch, *positions, in_channels]``) with ``kernel``
     (``[*window, in_channels, out_channels]``) along every spatial axis at ``stride``, ``"valid"``
     (no padding) or ``"same"`` (zeros around the input, so stride 1 keeps its size)."""
     spatial = x.ndim - 2
     layout = ("NWC", "WIO", "NWC") if spatial == 1 else ("NHWC", "HWIO", "NHWC")
-    pads = [_padding(k, padding) for k in kernel.shape[:spatial]]
+    pads = [shapes.padding(k, padding) for k in kernel.shape[:spatial]]
     return jax.lax.conv_general_dilated(x, kernel, (stride,) * spatial, pads, dimension_numbers=layout)
 
 
@@ -186,31 +181,18 @@ def pool(x, window: int, pooling: str):
 
 
 def feature_shapes(in_shape, blocks) -> list[tuple[int, ...]]:
-    """The shape of one example after each convolution block (channels last), pure Python:
-    a convolution of window ``k``, stride ``s`` and padding ``(lo, hi)`` gives
-    ``⌊(n + lo + hi − k)/s⌋ + 1`` positions per spatial axis, then pooling of window ``p``
-    (stride ``p``, no padding) ``⌊n/p⌋``. Raises :class:`ShapeError` when a block leaves no
-    position."""
-    shape = _shape_of(in_shape)
-    if len(shape) not in (2, 3):
-        raise ShapeError(f"model.kind = \"conv\" needs examples of shape [length, channels] or [height, width, "
-                         f"channels], not {list(shape)}; set data.shape (e.g. [8, 8, 1]) or use kind = \"mlp\"")
-    out = []
-    for i, block in enumerate(blocks):
-        lo, hi = _padding(block.kernel, block.padding)
-        spatial = []
-        for n in shape[:-1]:
-            m = (n + lo + hi - block.kernel) // block.stride + 1 if n + lo + hi >= block.kernel else 0
-            spatial.append(m // block.pool)
-        if min(spatial) < 1:
-            same = ', padding = "same"' if block.padding == "valid" else ""
-            raise ShapeError(f"model.blocks[{i}]: a block of kernel {block.kernel}, stride {block.stride}, pool "
-                             f"{block.pool} and padding {block.padding!r} leaves no position of the "
-                             f"{list(shape[:-1])} it receives; use fewer blocks{same} or a smaller kernel, "
-                             "stride or pool")
-        shape = (*spatial, block.channels)
-        out.append(shape)
-    return out
+    """The shape of one example after each convolution block (channels last), by
+    :mod:`compiler.shapes`' arithmetic. Raises :class:`ShapeError` for examples no convolution
+    takes or a block that leaves no position: the spec's check catches both where the shape is
+    declared, this where only the data says it (an NPZ array's own shape)."""
+    in_shape = _shape_of(in_shape)
+    wrong = shapes.misfit(in_shape, blocks)
+    if wrong is not None:
+        index, message = wrong
+        if index is None:
+            raise ShapeError(f'model.kind = "conv" {message}; set data.shape (e.g. [8, 8, 1]) or use kind = "mlp"')
+        raise ShapeError(f"model.blocks[{index}]: {message}")
+    return shapes.feature_shapes(in_shape, blocks)
 
 
 def conv(blocks, pooling, hidden, out_width, activation, init, normalizer, dropout) -> Network:
@@ -275,46 +257,64 @@ def conv(blocks, pooling, hidden, out_width, activation, init, normalizer, dropo
     return Network(init_fn, apply_fn, names)
 
 
-# Network families by the spec's ``model.kind``: each factory takes the ``[model]`` fields by name
-# plus ``out_width``, ``normalizer`` and ``dropout``, and returns a :class:`Network`.
-FAMILIES: dict[str, Callable[..., Network]] = {"mlp": mlp, "conv": conv}
-
-
 class Cost(NamedTuple):
-    """What one example costs a network, for the resource guard."""
-    params: int       # weights, biases and normalizer parameters, counted as 3 per unit
-    activations: int  # values of every layer's output, the input included
-    macs: int         # multiply-accumulates of one forward pass
-    layers: int       # affine layers (blocks, hidden, output)
+    """What a network declares about its size, per lane and per example, in float32 values: the
+    resource guard's memory and time model is written in these and nothing else of the network."""
+
+    parameters: int   # an upper bound: every unit counted with a bias, γ and β, whatever the normalizer
+    activations: int  # kept per example for the backward pass, the input and the output included
+    macs: int         # multiply-accumulates of one example's forward pass
+    layers: int       # layers with a gradient norm of their own (``grad_norm_l<i>``)
+    masks: int        # per-example weight masks a training step draws (DropConnect), per example
 
 
-def mlp_cost(model, in_shape, out_width) -> Cost:
-    widths = [math.prod(_shape_of(in_shape)), *model.widths, out_width]
-    pairs = list(zip(widths[:-1], widths[1:]))
-    return Cost(sum(a * b + 3 * b for a, b in pairs), sum(widths), sum(a * b for a, b in pairs), len(pairs))
+def mlp_cost(in_shape, out_width, hidden, dropout, **fields) -> Cost:
+    """The MLP's :class:`Cost` on inputs of ``in_shape`` (one example's): ``Σ a·b`` weights over
+    consecutive widths, three vectors per unit; a DropConnect mask (``dropout.masks_weights``) is
+    one per example over the parameters."""
+    widths = [math.prod(in_shape), *hidden, out_width]
+    parameters = sum(a * b + 3 * b for a, b in zip(widths[:-1], widths[1:]))
+    return Cost(parameters, sum(widths), sum(a * b for a, b in zip(widths[:-1], widths[1:])), len(widths) - 1,
+                parameters if dropout.masks_weights else 0)
 
 
-def conv_cost(model, in_shape, out_width) -> Cost:
+def conv_cost(in_shape, out_width, blocks, hidden, dropout, **fields) -> Cost:
+    """The convolutional network's :class:`Cost` on examples of ``in_shape``: per block a kernel
+    of ``window·in_channels·out_channels`` weights and three vectors per channel, applied at every
+    position of its output (which the backward pass keeps, before pooling); then the dense layers
+    as :func:`mlp_cost` counts them on the flattened feature maps. DropConnect masks only the
+    dense layers' weights (:func:`conv`), so only they count as masks."""
     in_shape = _shape_of(in_shape)
-    blocks = model.resolved_blocks
-    params = macs = 0
-    activations = math.prod(in_shape)
-    channels, spatial = in_shape[-1], len(in_shape) - 1
-    for block, shape in zip(blocks, feature_shapes(in_shape, blocks)):
+    spatial = len(in_shape) - 1
+    parameters = macs = 0
+    activations, channels = math.prod(in_shape), in_shape[-1]
+    maps = feature_shapes(in_shape, blocks)
+    for block, shape in zip(blocks, maps):
         kernel = block.kernel ** spatial * channels * block.channels
-        # Positions before pooling: the convolution's output, which the backward pass keeps.
         positions = math.prod(shape[:-1]) * block.pool ** spatial
-        params += kernel + 3 * block.channels
+        parameters += kernel + 3 * block.channels
         macs += positions * kernel
         activations += positions * block.channels
         channels = block.channels
-    flat = math.prod(feature_shapes(in_shape, blocks)[-1])
-    dense = mlp_cost(model, flat, out_width)
-    return Cost(params + dense.params, activations + dense.activations - flat, macs + dense.macs,
-                len(blocks) + dense.layers)
+    flat = math.prod(maps[-1]) if maps else math.prod(in_shape)
+    dense = mlp_cost((flat,), out_width, hidden, dropout)
+    # The flattened maps are the dense part's input, already counted as the last block's output
+    # (or as the input itself).
+    return Cost(parameters + dense.parameters, activations + dense.activations - flat, macs + dense.macs,
+                len(blocks) + dense.layers, dense.masks)
 
 
-COSTS: dict[str, Callable[..., Cost]] = {"mlp": mlp_cost, "conv": conv_cost}
+class Family(NamedTuple):
+    """A network family: ``network`` takes the ``[model]`` fields by name plus ``out_width``,
+    ``normalizer`` and ``dropout`` and returns a :class:`Network`; ``cost`` takes ``in_shape``,
+    ``out_width``, ``dropout`` and the same fields and returns its :class:`Cost`."""
+
+    network: Callable[..., Network]
+    cost: Callable[..., Cost]
+
+
+# Network families by the spec's ``model.kind``.
+FAMILIES: dict[str, Family] = {"mlp": Family(mlp, mlp_cost), "conv": Family(conv, conv_cost)}
 
 
 def weight_mask(params):

@@ -12,6 +12,9 @@ Contract:
   and ``activation(key, h, train) -> h`` (on the hidden layer's activations, ``[batch, width]``
   or a feature map ``[batch, *positions, channels]``). ``train`` is a Python bool. Masks are
   drawn per example from ``key``; the caller gives a fresh key per step and layer.
+  ``masks_weights`` declares whether the masks cover the weights (a mask per example the size
+  of the layer: the network's cost counts it) rather than the activations (a rate of 0 then
+  makes ``activation`` the identity, which the compiler leaves out).
 """
 
 from __future__ import annotations
@@ -42,6 +45,7 @@ def decoupled_decay(weight_decay, mask) -> optax.GradientTransformation:
 class Dropout(NamedTuple):
     dense: Callable
     activation: Callable
+    masks_weights: bool  # a mask per example over the weights (its cost), not over the activations
 
 
 def _plain_dense(key, x, w, train):
@@ -61,7 +65,7 @@ def inverted(rate=0.0) -> Dropout:
     def activation(key, h, train):
         return h * _keep_mask(key, rate, h.shape, h.dtype) / keep if train else h
 
-    return Dropout(_plain_dense, activation)
+    return Dropout(_plain_dense, activation, False)
 
 
 def scaled(rate=0.0) -> Dropout:
@@ -73,7 +77,7 @@ def scaled(rate=0.0) -> Dropout:
     def activation(key, h, train):
         return h * _keep_mask(key, rate, h.shape, h.dtype) if train else h * keep
 
-    return Dropout(_plain_dense, activation)
+    return Dropout(_plain_dense, activation, False)
 
 
 def connect(rate=0.0) -> Dropout:
@@ -89,7 +93,7 @@ def connect(rate=0.0) -> Dropout:
         masks = _keep_mask(key, rate, (x.shape[0],) + w.shape, w.dtype)
         return jnp.einsum("bi,bio->bo", x, masks * w)
 
-    return Dropout(dense, lambda key, h, train: h)
+    return Dropout(dense, lambda key, h, train: h, True)
 
 
 def spatial(rate=0.0) -> Dropout:
@@ -106,7 +110,7 @@ def spatial(rate=0.0) -> Dropout:
         shape = (h.shape[0],) + (1,) * (h.ndim - 2) + (h.shape[-1],)
         return h * _keep_mask(key, rate, shape, h.dtype) / keep
 
-    return Dropout(_plain_dense, activation)
+    return Dropout(_plain_dense, activation, False)
 
 
 REGISTRY: dict[str, Callable[..., Dropout]] = {"inverted": inverted, "scaled": scaled, "connect": connect,

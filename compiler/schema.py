@@ -10,7 +10,8 @@ what pydantic cannot know from the types added:
   with an OpenAPI ``discriminator`` (not a 2020-12 keyword): under ``oneOf`` a typo inside the
   table only yields "not valid under any of the given schemas", under ``if``/``then`` the
   validator names the bad key;
-- ``study.metric`` as an enum of the known metrics (the model checks it in a validator);
+- ``study.metric`` as an enum of the known metrics or a per-class metric's pattern (the model
+  checks it in a validator, the class index against the class count);
 - axis keys and ``[[ablation.variant]]`` ``set`` keys as enums of the dotted keys an ablation may
   change (expand checks them), so an editor offers them;
 - no ``null`` for ``[ablation]``: TOML has no null, the table is simply left out.
@@ -23,7 +24,7 @@ from __future__ import annotations
 from typing import Any
 
 from compiler.paths import field_paths
-from compiler.spec import METRICS, Spec
+from compiler.spec import METRICS, PER_CLASS_METRICS, Spec
 
 __all__ = ["spec_schema", "DRAFT", "SCHEMA_ID"]
 
@@ -36,7 +37,11 @@ def spec_schema() -> dict[str, Any]:
     schema = Spec.model_json_schema()
     defs = schema["$defs"]
     settable = sorted(p for p in field_paths() if "." in p and not p.startswith(("ablation", "study")))
-    defs["Study"]["properties"]["metric"]["enum"] = list(METRICS)
+    # A per-class metric is its prefix and a class index; the spec's check compares the index with
+    # the class count, which a schema cannot see.
+    defs["Study"]["properties"]["metric"]["anyOf"] = [
+        {"enum": list(METRICS)},
+        *({"pattern": f"^{prefix}(0|[1-9][0-9]*)$"} for prefix in PER_CLASS_METRICS)]
     defs["Axis"]["properties"]["key"]["enum"] = settable
     defs["ListedVariant"]["properties"]["set"]["propertyNames"] = {"enum": settable}
     schema["properties"]["ablation"] = {"$ref": "#/$defs/Ablation", "description": defs["Ablation"]["description"]}

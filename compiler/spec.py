@@ -13,30 +13,112 @@ from __future__ import annotations
 import math
 import posixpath
 import re
+import typing
 from typing import Annotated, ClassVar, Literal, Union
 
 from pydantic import (BaseModel, ConfigDict, Discriminator, Field, SerializerFunctionWrapHandler, Tag, field_validator,
                       model_serializer, model_validator)
 
+from compiler import shapes
+
 __all__ = [
     "Strict", "Study", "SyntheticData", "FileData", "Data", "NeuronBudget", "Model", "ConvBlock", "ChannelBudget",
     "ConvModel", "Network",
-    "L2", "KL", "BCE", "Huber", "Divergence", "NoNorm", "BatchNorm", "LayerNorm", "Normalization",
+    "DivergenceSection", "L2", "KL", "BCE", "Huber", "Divergence", "NoNorm", "BatchNorm", "LayerNorm", "Normalization",
     "Dropout", "Regularization", "Constant", "Exponential", "Cosine", "WarmupCosine", "Schedule",
     "SGD", "Adam", "AdamW", "RMSProp", "Optimizer", "Training", "Axis", "ListedVariant",
-    "Ablation", "Spec", "METRICS", "CLASSIFICATION_GENERATORS",
-    "task_of", "classes_of", "example_shape",
+    "TunedKnob", "Tuning", "Ablation", "Spec", "METRICS", "PER_CLASS_METRICS", "RECALL", "MACRO_F1",
+    "CLASSIFICATION_GENERATORS", "task_of", "classes_of", "example_shape", "section_problems", "train_size",
+    "split_sizes", "class_of_metric", "direction", "known_metrics", "class_metrics", "metrics_of", "metric_problem",
+    "spelled_metrics",
 ]
+
+# The metric names, in one place. A classifier's evaluation computes, from the predictions its
+# accuracy counts, the recall of each class k (RECALL + "<k>") and the F1 score averaged over
+# classes (MACRO_F1); they are named here without the split, whose prefix ("val_") the evaluating
+# code adds.
+RECALL, MACRO_F1 = "recall_", "macro_f1"
 
 # Per-epoch metrics a study may use as its headline, with the direction that counts as better.
 METRICS: dict[str, Literal["max", "min"]] = {
     "val_accuracy": "max",
+    f"val_{MACRO_F1}": "max",
     "val_divergence": "min",
     "val_rmse": "min",
     "train_divergence": "min",
 }
-CLASSIFICATION_METRICS = {"val_accuracy", "val_divergence", "train_divergence"}
+# Metrics with one column per class: the prefix, then the class index k (0 … classes − 1).
+PER_CLASS_METRICS: dict[str, Literal["max", "min"]] = {f"val_{RECALL}": "max"}
+CLASSIFICATION_METRICS = {"val_accuracy", "val_divergence", "train_divergence", f"val_{MACRO_F1}"}
 REGRESSION_METRICS = {"val_rmse", "val_divergence", "train_divergence"}
+
+
+def class_of_metric(name: str) -> tuple[str, int] | None:
+    """(prefix, class index) of a per-class metric name such as ``val_recall_2``; None otherwise.
+    The index is written as Python prints it (no sign, no leading zero), so each class has one
+    name."""
+    for prefix in PER_CLASS_METRICS:
+        k = name[len(prefix):]
+        if name.startswith(prefix) and k.isascii() and k.isdigit() and str(int(k)) == k:
+            return prefix, int(k)
+    return None
+
+
+def direction(metric: str) -> Literal["max", "min"] | None:
+    """The direction that counts as better for a metric name; None for a name that is no metric."""
+    if metric in METRICS:
+        return METRICS[metric]
+    per_class = class_of_metric(metric)
+    return PER_CLASS_METRICS[per_class[0]] if per_class else None
+
+
+def known_metrics() -> list[str]:
+    """Every metric name, a per-class one as ``<prefix><k>`` (k a class index)."""
+    return [*METRICS, *(f"{prefix}<k>" for prefix in PER_CLASS_METRICS)]
+
+
+def class_metrics(classes: int) -> tuple[str, ...]:
+    """The metrics a classifier of ``classes`` classes computes beyond accuracy, in stored order."""
+    return (f"val_{MACRO_F1}", *(f"{prefix}{k}" for prefix in PER_CLASS_METRICS for k in range(classes)))
+
+
+def metrics_of(task: str, classes: int | None) -> list[str]:
+    """The headline metrics a study of ``task`` may use; per-class ones spelled out for
+    ``classes`` classes, or as ``<prefix><k>`` while the class count is unknown (a data file's
+    is known once it is read)."""
+    if task == "regression":
+        return [m for m in METRICS if m in REGRESSION_METRICS]
+    fixed = [m for m in METRICS if m in CLASSIFICATION_METRICS]
+    if classes is None:
+        return fixed + [f"{prefix}<k>" for prefix in PER_CLASS_METRICS]
+    return fixed + [m for m in class_metrics(classes) if m not in fixed]
+
+
+def spelled_metrics(names: list[str]) -> str:
+    """Metric names as text, more than three per-class ones of a prefix as "first … last"."""
+    for prefix in PER_CLASS_METRICS:
+        mine = [i for i, n in enumerate(names) if (c := class_of_metric(n)) and c[0] == prefix]
+        if len(mine) > 3:
+            ks = sorted(class_of_metric(names[i])[1] for i in mine)
+            names = [f"{prefix}{ks[0]} … {prefix}{ks[-1]}" if i == mine[0] else n for i, n in enumerate(names)
+                     if i == mine[0] or i not in mine]
+    return ", ".join(names)
+
+
+def metric_problem(metric: str, task: str, classes: int | None, classes_from: str = "data.classes") -> str | None:
+    """Why ``metric`` is not one of a study's metrics, with the ones it has; None when it is.
+    ``classes_from`` says where the class count comes from."""
+    per_class = class_of_metric(metric)
+    allowed = CLASSIFICATION_METRICS if task == "classification" else REGRESSION_METRICS
+    if metric not in allowed and not (per_class and task == "classification"):
+        expected = spelled_metrics(metrics_of(task, classes))
+        return f"{metric!r} does not exist for a {task} task (expected one of {expected})"
+    if per_class and classes is not None and per_class[1] >= classes:
+        prefix = per_class[0]
+        return (f"{metric!r} names class {per_class[1]} but there are {classes} classes (0 … {classes - 1}: "
+                f"{classes_from}); use {prefix}0 … {prefix}{classes - 1}")
+    return None
+
 
 CLASSIFICATION_GENERATORS = ("rings", "spirals", "blobs", "glyphs")
 # The generators that draw shaped examples (images, signals), and the shape they draw by default.
@@ -49,6 +131,8 @@ Fraction = Annotated[float, Field(ge=0.0, le=1.0, allow_inf_nan=False)]
 # data.standardize came after study hashes were fixed: at its default (true) it is left out of
 # every dump, hence of the canonical JSON, so specs written before it keep their study hash.
 Standardize = Annotated[bool, Field(exclude_if=lambda v: v is True)]
+# data.test too: at 0 (no test split) it is left out of every dump, so older hashes hold.
+TestShare = Annotated[float, Field(ge=0.0, lt=1.0, allow_inf_nan=False, exclude_if=lambda v: v == 0)]
 # Large enough for any real study on one machine, small enough that a typo cannot ask for
 # terabytes before the resource estimate even runs.
 MAX_SAMPLES = 50_000_000
@@ -70,6 +154,22 @@ class Strict(BaseModel):
     # every other field is structure, passed to its component as a Python value.
     knobs: ClassVar[tuple[str, ...]] = ()
 
+    def problems(self, spec: "Spec") -> list[tuple[str, str]]:
+        """This section's own rules against the rest of ``spec``: (key below the section,
+        message) pairs. ``Spec`` only collects them, so a rule lives with the component it is
+        about and a new component brings its own."""
+        return []
+
+
+def section_problems(section: Strict, spec: "Spec", prefix: str = "") -> list[tuple[str, str]]:
+    """The problems of ``section`` and of every section nested in it, keys made whole."""
+    out = [(prefix + key, message) for key, message in section.problems(spec)]
+    for name in type(section).model_fields:
+        value = getattr(section, name)
+        if isinstance(value, Strict):
+            out += section_problems(value, spec, f"{prefix}{name}.")
+    return out
+
 
 # ── study ───────────────────────────────────────────────────────────────────────────────────────
 class Study(Strict):
@@ -82,7 +182,7 @@ class Study(Strict):
     seeds: Union[Annotated[int, Field(ge=1, le=10_000)], Annotated[list[Annotated[int, Field(ge=0, lt=2**31)]], Field(min_length=1, max_length=10_000)]] = 3
     """A count n (seeds 0 … n−1) or a list of distinct seeds; every variant runs once per seed."""
     metric: str = "val_accuracy"
-    """Headline metric, summarized by `lesion show` and compared by `lesion diff`."""
+    """Headline metric, summarized by `lesion show` and compared by `lesion diff`; a classifier's also val_macro_f1 and val_recall_<k> (recall of class k)."""
     # Left out of the study's JSON while unset: a new optional key dumped as null would change the
     # hash of every existing spec, and with it the folder its results are stored in.
     margin: Annotated[Union[Positive, None], Field(exclude_if=lambda v: v is None)] = None
@@ -99,13 +199,18 @@ class Study(Strict):
     @field_validator("metric")
     @classmethod
     def _known_metric(cls, v):
-        if v not in METRICS:
-            raise ValueError(f"unknown metric {v!r} (expected one of {', '.join(METRICS)})")
+        if direction(v) is None:
+            raise ValueError(f"unknown metric {v!r} (expected one of {', '.join(known_metrics())}; <k> a class index)")
         return v
 
     @property
     def seed_list(self) -> list[int]:
         return list(range(self.seeds)) if isinstance(self.seeds, int) else list(self.seeds)
+
+    def problems(self, spec):
+        classes = classes_of(spec.data)
+        wrong = metric_problem(self.metric, task_of(spec.data), classes, f"data.classes = {classes}")
+        return [] if wrong is None else [("metric", wrong)]
 
 
 # ── data ────────────────────────────────────────────────────────────────────────────────────────
@@ -129,6 +234,8 @@ class SyntheticData(Strict):
     """Share of the rows held out for validation."""
     seed: Annotated[int, Field(ge=0, lt=2**31)] = 0
     """Seed of the data set itself; the split comes from each run's seed."""
+    test: TestShare = 0.0
+    """Share of the rows held out for testing, apart from training and validation (0: no test split); test scores are stored once per run and never used for a choice."""
     standardize: Standardize = True
     """Standardize the inputs per run on its training rows (mean 0, sd 1; targets never); false feeds them as they are."""
     shape: Shape = None
@@ -155,6 +262,19 @@ class SyntheticData(Strict):
             raise ValueError("\n".join(problems))
         return self
 
+    @property
+    def training_rows(self) -> tuple[int, str] | None:
+        """Rows of the training split and how they come about, when known from the spec alone
+        (a file's rows are counted where it is read, in ``compiler.data``)."""
+        if self.problems(None):
+            return None
+        share = f"1 − {self.validation}" + (f" − {self.test}" if self.test else "")
+        return train_size(self.samples, self.validation, self.test), f"{self.samples} × ({share})"
+
+    def problems(self, spec):
+        return [(key.removeprefix("data."), message)
+                for key, message in split_problems(self.samples, self.validation, self.test, f"{self.samples} samples")]
+
 
 class FileData(Strict):
     """A table on disk (Parquet, CSV or NPZ). ``path`` is relative to the spec file's folder and
@@ -174,6 +294,8 @@ class FileData(Strict):
     """classification: integer class labels; regression: real-valued target."""
     validation: Annotated[float, Field(gt=0.0, lt=1.0, allow_inf_nan=False)] = 0.25
     """Share of the rows held out for validation."""
+    test: TestShare = 0.0
+    """Share of the rows held out for testing, apart from training and validation (0: no test split); test scores are stored once per run and never used for a choice."""
     standardize: Standardize = True
     """Standardize the inputs per run on its training rows (mean 0, sd 1; targets never); false feeds them as they are."""
     shape: Shape = None
@@ -190,6 +312,8 @@ class FileData(Strict):
             raise ValueError(f"data path {v!r} leaves the spec's folder; paths are relative to the spec file "
                              "and stay inside its folder (copy the file there)")
         return v
+
+    training_rows: ClassVar[None] = None
 
     @model_validator(mode="after")
     def _target_apart(self):
@@ -356,6 +480,20 @@ class ConvModel(Strict):
     def hidden_layers(self) -> int:
         return len(self.resolved_blocks) + len(self.hidden)
 
+    def problems(self, spec):
+        # A file without data.shape is checked where its arrays are read (compiler.model).
+        shape = example_shape(spec.data)
+        wrong = None if shape is None else shapes.misfit(shape, self.resolved_blocks)
+        if wrong is None:
+            return []
+        index, message = wrong
+        if index is None:
+            return [("kind", f"'conv' {message}; set data.shape (a file) or use generator = 'glyphs', "
+                             "or use kind = 'mlp'")]
+        if isinstance(self.blocks, ChannelBudget):
+            return [("blocks.depth", f"block {index + 1} of {self.blocks.depth}: {message}")]
+        return [(f"blocks.{index}", message)]
+
 
 def _model_kind(value) -> str:
     # [model] without a kind is the multilayer perceptron, as every spec before the families was.
@@ -366,37 +504,90 @@ Network = Annotated[Union[Annotated[Model, Tag("mlp")], Annotated[ConvModel, Tag
 
 
 # ── divergence ──────────────────────────────────────────────────────────────────────────────────
-class L2(Strict):
+class DivergenceSection(Strict):
+    """What every divergence declares about itself, so that the spec check, the data loader, the
+    resource guard and the compiler ask it instead of knowing kinds: the task its targets belong
+    to, the number of classes it is defined for (None: any) and its output width."""
+
+    task: ClassVar[Literal["classification", "regression"]]
+    classes: ClassVar[int | None] = None
+
+    def outputs(self, classes: int | None, targets: int | None) -> int:
+        """Output units the network needs for ``classes`` classes or ``targets`` target columns."""
+        return classes if self.task == "classification" else targets
+
+    def class_problem(self, classes: int, found: str) -> str | None:
+        """Why ``classes`` classes (``found`` says where they were counted) do not suit it."""
+        if self.classes is None or classes == self.classes:
+            return None
+        what = "binary" if self.classes == 2 else f"defined for {self.classes} classes"
+        return f"{self.kind!r} is {what} but {found}; use {_divergences_for('classification', classes)}"
+
+    def problems(self, spec):
+        task = task_of(spec.data)
+        if task != self.task:
+            needs = "class targets" if self.task == "classification" else "real-valued targets"
+            return [("kind", f"{self.kind!r} needs {needs} but the data is a {task} task; "
+                             f"use {_divergences_for(task, classes_of(spec.data))}")]
+        classes = classes_of(spec.data)
+        problem = None if classes is None else self.class_problem(classes, f"data.classes = {classes}")
+        return [] if problem is None else [("kind", problem)]
+
+
+class L2(DivergenceSection):
     """Identity output, half squared error (regression)."""
     kind: Literal["l2"]
     """Identity output, half squared error."""
+    task: ClassVar = "regression"
 
 
-class KL(Strict):
+class KL(DivergenceSection):
     """Softmax output, KL(d || y) to the (optionally smoothed) target distribution."""
     kind: Literal["kl"]
     """Softmax output, KL divergence to the target distribution."""
     label_smoothing: Rate = 0.0
     """Share of the target probability spread evenly over all classes."""
     knobs: ClassVar[tuple[str, ...]] = ("label_smoothing",)
+    task: ClassVar = "classification"
 
 
-class BCE(Strict):
+class BCE(DivergenceSection):
     """Sigmoid output, binary cross-entropy (two classes)."""
     kind: Literal["bce"]
     """Sigmoid output, binary cross-entropy."""
+    task: ClassVar = "classification"
+    classes: ClassVar = 2
+
+    def outputs(self, classes, targets):
+        return 1
 
 
-class Huber(Strict):
+class Huber(DivergenceSection):
     """Identity output, Huber loss with threshold ``delta`` (regression)."""
     kind: Literal["huber"]
     """Identity output, Huber loss."""
     delta: Positive = 1.0
     """Error at which the loss turns from quadratic to linear."""
     knobs: ClassVar[tuple[str, ...]] = ("delta",)
+    task: ClassVar = "regression"
 
 
 Divergence = Annotated[Union[L2, KL, BCE, Huber], Field(discriminator="kind")]
+
+
+def _divergences_for(task: str, classes: int | None) -> str:
+    """The divergences to suggest for a task with ``classes`` classes (None: not known yet)."""
+    fits, others = [], []
+    for member in typing.get_args(typing.get_args(Divergence)[0]):
+        if member.task != task:
+            continue
+        kind = repr(typing.get_args(member.model_fields["kind"].annotation)[0])
+        if member.classes is None:
+            fits.append(kind)
+        elif classes is None or classes == member.classes:
+            others.append(f"{kind} for {member.classes} classes")
+    named = fits + others or ["another divergence"]
+    return ", ".join(named[:-1]) + " or " + named[-1] if len(named) > 1 else named[0]
 
 
 # ── normalization ───────────────────────────────────────────────────────────────────────────────
@@ -489,6 +680,11 @@ class WarmupCosine(Strict):
     """Learning rate at the end, as a fraction of the base rate."""
     knobs: ClassVar[tuple[str, ...]] = ("final_fraction",)
 
+    def problems(self, spec):
+        if self.warmup_epochs < spec.training.epochs:
+            return []
+        return [("warmup_epochs", f"{self.warmup_epochs} must be below training.epochs = {spec.training.epochs}")]
+
 
 Schedule = Annotated[Union[Constant, Exponential, Cosine, WarmupCosine], Field(discriminator="kind")]
 LearningRate = Annotated[float, Field(gt=0.0, le=1e6, allow_inf_nan=False)]
@@ -533,6 +729,12 @@ class AdamW(Adam):
     kind: Literal["adamw"]
     """Adam with decoupled weight decay."""
 
+    def problems(self, spec):
+        if spec.regularization.decoupled:
+            return []
+        return [("kind", "'adamw' applies weight decay decoupled from the gradient; set regularization.decoupled = "
+                         "true (λ is regularization.weight_decay) or use 'adam'")]
+
 
 class RMSProp(Strict):
     """Gradient scaled by a running mean of its square."""
@@ -565,6 +767,17 @@ class Training(Strict):
     """Rows per optimization step."""
     drop_last: bool = True
     """Drop the last, incomplete batch of each epoch."""
+
+    def steps(self, n_train: int) -> int:
+        """Optimization steps per epoch over ``n_train`` training rows."""
+        return n_train // self.batch_size if self.drop_last else -(-n_train // self.batch_size)
+
+    def problems(self, spec):
+        rows = spec.data.training_rows
+        if rows is not None and self.batch_size > rows[0]:
+            return [("batch_size", f"{self.batch_size} exceeds the {rows[0]} training samples ({rows[1]}); "
+                                   f"use at most {rows[0]}")]
+        return []
 
 
 # ── ablation ────────────────────────────────────────────────────────────────────────────────────
@@ -611,6 +824,73 @@ class ListedVariant(Strict):
         return v
 
 
+class TunedKnob(Strict):
+    """One knob tuned inside every arm: its listed values, or ``points`` values spaced evenly on a
+    log scale from ``low`` to ``high``."""
+
+    key: Annotated[str, Field(pattern=_DOTTED_PATTERN)]
+    """Dotted key of a knob (a value the compiled program takes as input), e.g. optimizer.learning_rate."""
+    values: Union[Annotated[list[Annotated[float, Field(allow_inf_nan=False)]], Field(min_length=1, max_length=100)], None] = None
+    """The values tried in every arm; or give low, high and points instead."""
+    low: Union[Positive, None] = None
+    """Smallest value of a log-spaced range (with high and points)."""
+    high: Union[Positive, None] = None
+    """Largest value of a log-spaced range (with low and points)."""
+    points: Union[Annotated[int, Field(ge=2, le=100)], None] = None
+    """Number of log-spaced values from low to high, both included."""
+
+    @model_validator(mode="after")
+    def _one_form(self):
+        ranged = (self.low, self.high, self.points)
+        if self.values is not None:
+            if any(x is not None for x in ranged):
+                raise ValueError("give either values = [...] or low, high and points, not both")
+            if len(set(self.values)) != len(self.values):
+                raise ValueError(f"@values: each value may appear once (got {self.values})")
+        elif any(x is None for x in ranged):
+            raise ValueError("give values = [...], or low, high and points (points values spaced evenly on a "
+                             "log scale from low to high)")
+        elif not self.low < self.high:
+            raise ValueError(f"@high: {self.high} must be above low = {self.low}")
+        return self
+
+    @property
+    def grid(self) -> list[float]:
+        """The values tried; a range's values rounded to 4 significant digits (labels stay short; the rounded values are the ones run)."""
+        if self.values is not None:
+            return list(self.values)
+        ratio = self.high / self.low
+        return [float(f"{self.low * ratio ** (i / (self.points - 1)):.4g}") for i in range(self.points)]
+
+
+class Tuning(Strict):
+    """Knobs tuned inside every arm with the same budget; each arm is then represented, per seed, by
+    the setting with the best validation score, and the arms are compared on the test split."""
+
+    knob: Annotated[list[TunedKnob], Field(min_length=1, max_length=8)]
+    """[[ablation.tune.knob]] tables; every arm tries every combination of their values."""
+    metric: Union[str, None] = None
+    """Validation metric that selects an arm's setting (default: study.metric, which must then be a validation metric)."""
+    epoch: Literal["last", "best"] = "last"
+    """Epoch a run is judged at: its last, or the one with its best value of the metric; test scores are taken there too."""
+
+    @model_validator(mode="after")
+    def _distinct_keys(self):
+        keys = [k.key for k in self.knob]
+        dup = sorted({k for k in keys if keys.count(k) > 1})
+        if dup:
+            raise ValueError(f"each knob may be tuned once (repeated: {dup})")
+        return self
+
+    @property
+    def settings(self) -> list[dict[str, float]]:
+        """Every combination of the tuned values, the last knob varying fastest: one arm's budget."""
+        out: list[dict[str, float]] = [{}]
+        for k in self.knob:
+            out = [{**s, k.key: v} for s in out for v in k.grid]
+        return out
+
+
 class Ablation(Strict):
     """How variants are derived from the base configuration."""
 
@@ -622,6 +902,9 @@ class Ablation(Strict):
     """[[ablation.variant]] tables (list)."""
     include_base: bool = True
     """list: run the base configuration too, labelled base."""
+    # Left out of the dump while unset, so studies without it keep their hash.
+    tune: Annotated[Union[Tuning, None], Field(exclude_if=lambda v: v is None)] = None
+    """[ablation.tune]: knobs tuned inside every arm (the variants above), compared on the test split."""
 
     @model_validator(mode="after")
     def _fits_mode(self):
@@ -646,6 +929,23 @@ class Ablation(Strict):
             if dup:
                 raise ValueError(f"each key may have one axis (repeated: {dup})")
         return self
+
+    def problems(self, spec):
+        if self.tune is None:
+            return []
+        if spec.data.test == 0:
+            return [("tune", "tuning inside arms compares the arms on a test split, which this study lacks; "
+                             "set data.test (e.g. 0.2)")]
+        chooser = self.tune.metric or spec.study.metric
+        task, classes = task_of(spec.data), classes_of(spec.data)
+        if chooser.startswith("val_") and metric_problem(chooser, task, classes) is None:
+            return []
+        choices = ", ".join(m for m in metrics_of(task, classes) if m.startswith("val_"))
+        if self.tune.metric:
+            return [("tune.metric", f"{chooser!r} cannot choose an arm's setting: the choice is made on "
+                                    f"validation data (use one of {choices})")]
+        return [("tune", f"study.metric {chooser!r} cannot choose an arm's setting: the choice is made on "
+                         f"validation data (use one of {choices}, or set ablation.tune.metric)")]
 
 
 # ── the whole spec ──────────────────────────────────────────────────────────────────────────────
@@ -687,51 +987,22 @@ class Spec(Strict):
 
     @model_validator(mode="after")
     def _coherent(self):
-        # Cross-section rules. Each problem names the key to change; problems.pydantic_problems
-        # reads the "@key: message" lines back into separate, located problems.
-        problems: list[tuple[str, str]] = []
-        task = task_of(self.data)
-        kind = self.divergence.kind
-        if task == "regression" and kind in ("kl", "bce"):
-            problems.append(("divergence.kind", f"{kind!r} needs class targets but the data is a regression task; "
-                                                "use 'l2' or 'huber'"))
-        if task == "classification" and kind in ("l2", "huber"):
-            problems.append(("divergence.kind", f"{kind!r} needs real-valued targets but the data is a classification "
-                                                "task; use 'kl' (or 'bce' for two classes)"))
-        n_classes = classes_of(self.data)
-        if kind == "bce" and n_classes is not None and n_classes != 2:
-            problems.append(("divergence.kind", f"'bce' is binary but data.classes = {n_classes}; "
-                                                "use 'kl' or set data.classes = 2"))
-        metric = self.study.metric
-        allowed = CLASSIFICATION_METRICS if task == "classification" else REGRESSION_METRICS
-        if metric not in allowed:
-            problems.append(("study.metric", f"{metric!r} does not exist for a {task} task "
-                                             f"(expected one of {', '.join(sorted(allowed))})"))
-        if self.optimizer.kind == "adamw" and not self.regularization.decoupled:
-            problems.append(("optimizer.kind", "'adamw' applies weight decay decoupled from the gradient; "
-                                               "set regularization.decoupled = true (λ is regularization.weight_decay) "
-                                               "or use 'adam'"))
-        if isinstance(self.data, SyntheticData):
-            n_train = train_size(self.data.samples, self.data.validation)
-            if n_train < 1 or n_train == self.data.samples:
-                problems.append(("data.validation", f"{self.data.validation} leaves no rows on one side of the "
-                                                    f"split of {self.data.samples} samples"))
-            elif self.training.batch_size > n_train:
-                problems.append(("training.batch_size", f"{self.training.batch_size} exceeds the {n_train} training "
-                                                        f"samples ({self.data.samples} × (1 − {self.data.validation})); "
-                                                        f"use at most {n_train}"))
-        shape = example_shape(self.data)
-        if self.model.kind == "conv" and shape is not None and len(shape) not in (2, 3):
-            problems.append(("model.kind", f"'conv' needs examples of shape [length, channels] or [height, width, "
-                                           f"channels], but the data's are {list(shape)}; set data.shape (a file) or "
-                                           "use generator = 'glyphs', or use kind = 'mlp'"))
-        sched = self.optimizer.schedule
-        if isinstance(sched, WarmupCosine) and sched.warmup_epochs >= self.training.epochs:
-            problems.append(("optimizer.schedule.warmup_epochs", f"{sched.warmup_epochs} must be below "
-                                                                 f"training.epochs = {self.training.epochs}"))
+        # Cross-section rules live with the sections they are about (``Strict.problems``); each
+        # names the key to change, and problems.pydantic_problems reads the "@key: message" lines
+        # back into separate, located problems.
+        problems = section_problems(self, self)
         if problems:
             raise ValueError("\n".join(f"@{key}: {msg}" for key, msg in problems))
         return self
+
+    @property
+    def selection(self) -> tuple[str, Literal["last", "best"]]:
+        """(metric, epoch): the epoch every run is judged at and its test scores are taken at —
+        ``[ablation.tune]``'s, else the last epoch (the metric then only names the headline)."""
+        tune = self.ablation.tune if self.ablation is not None else None
+        if tune is None:
+            return self.study.metric, "last"
+        return tune.metric or self.study.metric, tune.epoch
 
 
 def example_shape(data: SyntheticData | FileData) -> tuple[int, ...] | None:
@@ -744,9 +1015,31 @@ def example_shape(data: SyntheticData | FileData) -> tuple[int, ...] | None:
     return (data.features,)
 
 
-def train_size(samples: int, validation: float) -> int:
-    """Rows in the training split: the validation share is rounded, the rest trains."""
-    return samples - int(round(samples * validation))
+def split_sizes(samples: int, validation: float, test: float = 0.0) -> tuple[int, int, int]:
+    """Rows of the training, validation and test splits: each held-out share is rounded on its
+    own, the rest trains."""
+    n_val, n_test = int(round(samples * validation)), int(round(samples * test))
+    return samples - n_val - n_test, n_val, n_test
+
+
+def train_size(samples: int, validation: float, test: float = 0.0) -> int:
+    """Rows in the training split: the validation and test shares are rounded, the rest trains."""
+    return split_sizes(samples, validation, test)[0]
+
+
+def split_problems(samples: int, validation: float, test: float, what: str) -> list[tuple[str, str]]:
+    """(key, message) when the shares leave a split of ``samples`` rows empty (``what`` names
+    them); the key is the share to change."""
+    n_train, n_val, n_test = split_sizes(samples, validation, test)
+    if n_val < 1 or (n_train < 1 and not test):
+        return [("data.validation", f"{validation} leaves no rows on one side of the split of {what}")]
+    if test and n_test < 1:
+        return [("data.test", f"{test} of {what} rounds to no test row; use at least {math.ceil(1000 / samples) / 1000}")]
+    if n_train < 1:
+        return [("data.test", f"data.validation = {validation} and data.test = {test} leave no training rows "
+                              f"of {what} ({n_val} validation + {n_test} test); lower one of them so that "
+                              "they add up to well below 1")]
+    return []
 
 
 _SAFE_INT = 2**53 - 1

@@ -151,6 +151,15 @@ def _load_runnable(spec: Path):
     return study
 
 
+def _study_metrics(study) -> list[str]:
+    """The metrics every variant of the study stores, which --metric and study.metric accept (a
+    variant may change the class count)."""
+    from compiler.spec import classes_of, metrics_of, task_of
+
+    each = [metrics_of(task_of(v.spec.data), classes_of(v.spec.data)) for v in study.variants]
+    return [m for m in each[0] if all(m in other for other in each[1:])]
+
+
 def _check_report(study) -> dict:
     return {
         "spec": study.path,
@@ -160,6 +169,8 @@ def _check_report(study) -> dict:
         "seeds": study.seeds,
         "structures": len({v.structure for v in study.variants}),
         "runs": study.runs,
+        "metric": study.spec.study.metric,
+        "metrics": _study_metrics(study),
         "variants": [
             {"label": v.label, "changes": v.changes, "variant_hash": v.hash, "structure": v.structure,
              "seeds": study.seeds}
@@ -170,14 +181,23 @@ def _check_report(study) -> dict:
 
 def _print_check_table(study, wide: bool) -> None:
     from compiler.labels import label_parts
+    from compiler.spec import spelled_metrics
     from runtime.formats import Fit, render
 
     structures = sorted({v.structure for v in study.variants}, key=[v.structure for v in study.variants].index)
     typer.echo(f"study       {study.spec.study.name}")
     typer.echo(f"study hash  {study.study_hash}")
     typer.echo(f"result set  {study.result_set}")
+    _echo_fitted(f"metrics     {spelled_metrics(_study_metrics(study))} (headline: {study.spec.study.metric})", wide)
     typer.echo(f"{len(study.variants)} variants × {len(study.seeds)} seeds = {study.runs} runs, "
                f"compiled as {len(structures)} program{'s' if len(structures) != 1 else ''}")
+    tune = study.spec.ablation.tune if study.spec.ablation is not None else None
+    if tune is not None:
+        from compiler.expand import arms
+
+        metric, epoch = study.spec.selection
+        typer.echo(f"tuned: {len(arms(study.variants))} arms × {len(tune.settings)} settings; "
+                   f"picked per seed on {metric} ({epoch} epoch)")
     seeds = _seeds_text(study.seeds)
     rows = []
     for v in study.variants:
@@ -485,8 +505,11 @@ def show(
                                      help="Metric(s) to show, the option repeated for several (default: the study's)."),
     runs: bool = typer.Option(False, "--runs", help="One row per run, with the run id that 'lesion replay --run' takes."),
     wide: bool = typer.Option(False, "--wide", help=_WIDE_HELP),
+    budget: bool = typer.Option(False, "--budget", help="A tuned study: per arm, the expected best validation "
+                                "score of n runs tried, n = 1 … all (Dodge et al. 2019)."),
 ) -> None:
     """Summarize a result set per variant: runs ok/diverged, mean ± sd and 95 % CI across seeds.
+    A tuned study ([ablation.tune]) adds its arms: the settings picked on validation, the test score.
 
     Examples:
 
@@ -501,18 +524,28 @@ def show(
     import dataclasses
 
     from runtime.audit import audit
-    from runtime.formats import render
+    from runtime.formats import Fit, render
     from runtime.show import (CURVES_FIT, RUNS_FIT, SUMMARY_COLUMNS, SUMMARY_FIT, axis_values, curve_rows, run_rows,
                               summary_rows)
     from runtime.store import open_result_set
 
-    if curves and runs:
-        raise UsageError("give --curves or --runs, not both")
+    from runtime import tuning
+
+    if sum((curves, runs, budget)) > 1:
+        raise UsageError("give one of --curves, --runs and --budget")
     rs = open_result_set(result)
     findings = _print_audit(audit(rs))
     name = rs.tree["study"]["name"]
     metrics = metric or [rs.headline]
-    if curves:
+    is_tuned = tuning.tuned(rs)
+    if budget and not is_tuned:
+        raise UsageError("--budget applies to a study that tunes inside its arms ([ablation.tune])")
+    if budget:
+        rows, chooser = tuning.budget_rows(rs, tuning.study_of(rs))
+        columns, fit = tuning.BUDGET_COLUMNS, Fit(keep=("arm", "budget", "expected"), wrap=("arm",))
+        title = (f"{name} ({rs.study_hash[:12]}): expected best {chooser} of n runs tried per arm "
+                 "(drawn with replacement; Dodge et al. 2019)")
+    elif curves:
         rows, columns = curve_rows(rs, metric or None)
         fit = CURVES_FIT
         title = f"{name} ({rs.study_hash[:12]}): per-epoch means over ok runs"
@@ -543,6 +576,19 @@ def show(
         rows = [{**r, **values.get(r["variant"], {})} for r in rows]
         columns = [*columns, *keys]
         extra.update(study=name, study_hash=rs.study_hash, metrics=metrics, axes=keys)
+    if is_tuned and not (curves or runs or budget):
+        arms = tuning.arm_rows(rs, tuning.study_of(rs), metrics[0])
+        chooser, epoch = tuning.study_of(rs).spec.selection
+        arm_title = (f"arms: per seed the setting with the best {chooser} at the {epoch} epoch; "
+                     f"{tuning.test_metric(metrics[0])} of the picks (mean, sd, 95% CI)")
+        if format in (Output.json, Output.csv):
+            extra["arms"] = arms
+        else:
+            typer.echo(render(rows, columns, format.value, title=title, width=_terminal_width(wide), fit=fit))
+            typer.echo()
+            rows, columns, title = arms, tuning.ARM_COLUMNS, arm_title
+            fit = Fit(keep=("arm", "picked", "mean", "ci_low", "ci_high", "settings"), drop=("sd",),
+                      wrap=("arm", "settings"))
     typer.echo(render(rows, columns, format.value, title=title, extra=extra, width=_terminal_width(wide), fit=fit))
 
 
@@ -842,6 +888,7 @@ class PlotKind(str, Enum):
     curves = "curves"
     arms = "arms"
     grid = "grid"
+    budget = "budget"
 
 
 @app.command(cls=_Command)
@@ -851,7 +898,8 @@ def plot(
                              "(default: <result set>/plots/<kind>.png)."),
     kind: PlotKind = typer.Option(PlotKind.curves, "--kind", "-k",
                                   help="curves: per-epoch means; arms: final values per variant; "
-                                       "grid: heat map of a two-axis grid."),
+                                       "grid: heat map of a two-axis grid; budget: expected best validation "
+                                       "score vs runs tried, per arm of a tuned study."),
     metric: list[str] = typer.Option(None, "--metric", "-m", metavar="METRIC", help="Metric(s) to draw (default: the study's; "
                                      "curves also draw train and val divergence)."),
     baseline: str = typer.Option(None, "--baseline", metavar="LABEL", help="arms: the variant to mark as the baseline "

@@ -31,17 +31,17 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from compiler.errors import SpecError, printable
-from compiler.expand import expand
+from compiler.errors import printable
+from compiler.expand import arms, expand
 from compiler.labels import BASE_LABEL, format_value, label_parts
 from compiler.hashing import variant_payload
-from compiler.loader import load_text
-from compiler.spec import METRICS
+from compiler.spec import direction, known_metrics
 from runtime.sequential import Procedure, Row, Rule
 from runtime.specdiff import Change, canonical_leaf, match_variants, spec_diff
 from runtime.stats import (POWER, Comparison, adjust, compare, decide, detectable_difference, family_alpha,
                            interaction_test, interval, seeds_needed)
 from runtime.store import SEQUENTIAL, ResultSet, ResultSetError
+from runtime.tuning import arm_picks, study_of, test_metric, tuned
 
 __all__ = ["DiffReport", "diff_result_sets", "diff_baseline", "diff_design", "resolve_variant", "sequential_design",
            "Sequential", "decided_summary", "DECIDED_COLUMNS", "DIFF_COLUMNS", "SEEDS_COLUMNS"]
@@ -80,17 +80,14 @@ class DiffReport:
         }
 
 
-def _loaded(rs: ResultSet):
-    try:
-        return load_text(rs.meta["spec_source"], rs.meta["spec_path"] or str(rs.path))
-    except SpecError as err:
-        raise ResultSetError(f"{rs.path}: its stored spec does not load: {err.problems[0].render()}") from None
+_loaded = study_of
 
 
 def _variants(rs: ResultSet, loaded=None) -> list[dict]:
+    """The variants to compare: a tuned study's arms (each represented by its picks)."""
     loaded = loaded or _loaded(rs)
     return [{"label": v.label, "hash": v.hash, "payload": variant_payload(v.spec), "changes": v.changes}
-            for v in loaded.variants]
+            for v in (arms(loaded.variants) if tuned(rs) else loaded.variants)]
 
 
 def resolve_variant(loaded, given: str, option: str = "--baseline") -> int:
@@ -98,7 +95,7 @@ def resolve_variant(loaded, given: str, option: str = "--baseline") -> int:
     the variant whose configuration equals the spec's base (a grid cell included); or a short
     label: comma-separated parts each naming one part of the label, whole, by its last dotted
     pieces or by value ("kind=batch, 0.0"), or a prefix of the label, matching one variant alone."""
-    variants = loaded.variants
+    variants = arms(loaded.variants)   # a tuned study is named by its arms
     labels = [v.label for v in variants]
     if given in labels:
         return labels.index(given)
@@ -137,7 +134,14 @@ def _no_variant(labels, given, option, why, indices=None):
 
 def _values(rs: ResultSet, cols: dict, variant_hash: str, metric: str) -> dict[int, float | None]:
     """Final values of a variant's runs by seed (None for a diverged run); ``cols`` is
-    ``rs.runs.to_pydict()``, converted once per result set."""
+    ``rs.runs.to_pydict()``, converted once per result set. A tuned study's arm: the test score
+    of its pick on each seed (``runtime.tuning``)."""
+    if tuned(rs):
+        column = test_metric(metric)
+        for a in arm_picks(rs, _loaded(rs)):
+            if a.arm.hash == variant_hash:
+                return {s: (None if p is None else p.tests[column]) for s, p in a.picks.items()}
+        return {}
     rs.require([metric])
     col = f"final_{metric}"
     return {cols["seed"][i]: (cols[col][i] if cols["status"][i] == "ok" else None)
@@ -147,8 +151,9 @@ def _values(rs: ResultSet, cols: dict, variant_hash: str, metric: str) -> dict[i
 def _metrics(rs: ResultSet, metrics: list[str] | None) -> list[str]:
     metrics = metrics or [rs.headline]
     for m in metrics:
-        if m not in METRICS:
-            raise ResultSetError(f"--metric {m!r}: no known direction (expected one of {', '.join(METRICS)})")
+        if direction(m) is None:
+            raise ResultSetError(f"--metric {m!r}: no known direction (expected one of {', '.join(known_metrics())}; "
+                                 "<k> a class index)")
     return metrics
 
 
@@ -177,7 +182,7 @@ def _judge(question: str, items: list[tuple[dict, tuple[dict, dict]]], correctio
     for (start, arms), c, p_adj in zip(items, comps, adjusted):
         margin = margins.get(start["metric"])
         lo, hi = interval(c, level)
-        rows.append(_row(question, start, c, arms, level, (lo, hi), decide(lo, hi, METRICS[start["metric"]], margin),
+        rows.append(_row(question, start, c, arms, level, (lo, hi), decide(lo, hi, direction(start["metric"]), margin),
                          p_adj, margin, power))
     paired = [c.n_a for c in comps if c.test == "paired"]
     if paired and 2 / 2 ** min(paired) > level:
@@ -192,7 +197,7 @@ def _row(question: str, start: dict, c: Comparison, arms: tuple, level: float, c
     """One comparison's row: its estimate, the interval at ``level`` its verdict was read off, planning."""
     start = _shown(start)
     # the probability of improvement is P(B better than A): for a metric to minimise, B − A < 0
-    flip = METRICS[start["metric"]] == "min"
+    flip = direction(start["metric"]) == "min"
     imp = [1 - x for x in (c.improvement, c.improvement_high, c.improvement_low)] if flip else \
         [c.improvement, c.improvement_low, c.improvement_high]
     return {
@@ -318,7 +323,7 @@ def sequential_design(rs: ResultSet, rule: Rule, first: list[int], *, axis: str 
                 continue
             c = compare({s: v for s, v in a.items() if s in keep}, {s: v for s, v in b.items() if s in keep})
             judged[key] = (question, start, c, (a, b))
-            rows.append(Row(key, size, c.diff, c.se, c.df, METRICS[start["metric"]], start["uses"]))
+            rows.append(Row(key, size, c.diff, c.se, c.df, direction(start["metric"]), start["uses"]))
         p.look(rows)
         if p.done:
             return Sequential(p, judged, {})
@@ -389,15 +394,31 @@ def _ignored_keys(changes: list[Change], a_tree: dict, b_tree: dict) -> set[str]
 def diff_result_sets(rs_a: ResultSet, rs_b: ResultSet, *, metrics: list[str] | None = None,
                      correction: str = "holm", alpha: float = 0.05, margin: float | None = None,
                      power: float = POWER) -> DiffReport:
+    if tuned(rs_a) != tuned(rs_b):
+        raise ResultSetError("one result set tunes inside its arms and the other does not: their values are test "
+                             "scores of picked settings on one side, final validation scores on the other")
     changes = spec_diff(rs_a.meta["canonical_json"], rs_b.meta["canonical_json"])
     va, vb = _variants(rs_a), _variants(rs_b)
     ignored = _ignored_keys(changes, rs_a.tree, rs_b.tree)
     pairs, only_a, only_b = match_variants(va, vb, ignored)
     metrics = _metrics(rs_a, metrics)
     items = _pair_rows([(p.a, p.b) for p in pairs], rs_a, rs_b, metrics)
-    return _report([("B − A for each matched variant", "contrasts", items)], correction, alpha,
-                   _margins(rs_a, metrics, margin), power, changes=changes,
-                   only_a=[v["label"] for v in only_a], only_b=[v["label"] for v in only_b], same_study=not changes)
+    return _on_test(rs_a, _report([("B − A for each matched variant", "contrasts", items)], correction, alpha,
+                                  _margins(rs_a, metrics, margin), power, changes=changes,
+                                  only_a=[v["label"] for v in only_a], only_b=[v["label"] for v in only_b],
+                                  same_study=not changes))
+
+
+def _on_test(rs: ResultSet, report: DiffReport) -> DiffReport:
+    """A tuned study's rows name the test metric their values are, and a note says how they were picked."""
+    if not tuned(rs):
+        return report
+    metric, epoch = _loaded(rs).spec.selection
+    for row in report.rows:
+        row["metric"] = test_metric(row["metric"])
+    report.notes.insert(0, f"arms tuned inside: each arm is, per seed, its setting with the best {metric} at the "
+                           f"{epoch} epoch, scored on the test split (lesion show lists the settings picked)")
+    return report
 
 
 def diff_baseline(rs: ResultSet, baseline: str, *, metrics: list[str] | None = None,
@@ -408,8 +429,8 @@ def diff_baseline(rs: ResultSet, baseline: str, *, metrics: list[str] | None = N
     if recorded is not None and rs.tree["ablation"]["mode"] != "grid" and baseline in ("base", BASE_LABEL):
         # each variant vs base is the design's question of a list or one-at-a-time: the rule's verdicts
         return diff_design(rs, metrics=metrics, correction=correction, alpha=alpha, margin=margin, power=power)
-    report = _report(_baseline_families(rs, baseline, metrics), correction, alpha, _margins(rs, metrics, margin),
-                     power, changes=[], same_study=True)
+    report = _on_test(rs, _report(_baseline_families(rs, baseline, metrics), correction, alpha,
+                                  _margins(rs, metrics, margin), power, changes=[], same_study=True))
     if recorded is not None:
         report.notes.insert(0, "the seeds of this result set were chosen sequentially for the questions of its "
                                "design: verdicts against another baseline ignore the stopping rule")
@@ -457,7 +478,7 @@ def diff_design(rs: ResultSet, *, axis: str | None = None, metrics: list[str] | 
     report = _report(families, correction, alpha, margins, power, sequential=sequential, changes=[],
                      same_study=True)
     report.notes[:0] = notes
-    return report
+    return _on_test(rs, report)
 
 
 def _design_families(rs: ResultSet, axis: str | None, metrics: list[str] | None) -> list:

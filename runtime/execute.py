@@ -9,8 +9,10 @@ of the compiler's per-epoch function, steps in ``lax.scan``) and called once per
 Python; the data stays on the device across epochs and only the per-epoch metrics come back.
 The program (:func:`compiler.build.compile_structure` of the group's variants) packs the lanes'
 knobs itself and decides which work its zero knobs let it leave out; programs compile with XLA's
-default options. With the compile cache on, a structure's executables are loaded from and stored
-in :mod:`runtime.programs`; replay always compiles afresh.
+default options. With a test split, each lane's test rows are scored once, after the last epoch,
+with the weights of the epoch the study judges it at (``_Judge``). With the compile cache on, a
+structure's executables are loaded from and stored in :mod:`runtime.programs`; replay always
+compiles afresh.
 """
 
 from __future__ import annotations
@@ -36,6 +38,9 @@ class LaneResult:
     run_id: str
     lane: int
     curves: dict[str, np.ndarray]       # metric -> float32[epochs]
+    # test metric -> its value at test_epoch (NaN for a diverged run); {} without data.test
+    tests: dict[str, np.float32]
+    test_epoch: int | None              # 1-based epoch whose weights the test split scored
     diverged_at: int | None             # 1-based epoch, None when the run stayed finite
     param_digest: str
     warnings: list[str] = field(default_factory=list)
@@ -49,6 +54,7 @@ class GroupResult:
     group_id: str
     lane_width: int
     metric_names: tuple[str, ...]
+    test_names: tuple[str, ...]
     lanes: list[LaneResult]
     compile_seconds: float
     run_seconds: float
@@ -151,13 +157,16 @@ def execute_group(group: Group, dataset, environment: dict,
     x, y = jax.device_put(dataset.x), jax.device_put(dataset.y)
     t0 = time.perf_counter()
     carry = init_c(knobs, seeds, x, y)
+    judge = _Judge(program, group, len(lanes), carry)
     per_epoch = []
     for e in range(program.epochs):
         carry, metrics = epoch_c(carry, knobs, x, y)
         per_epoch.append(metrics)
+        judge.epoch(e + 1, carry, metrics)
         if on_epoch is not None:
             jax.block_until_ready(metrics)
             on_epoch(e + 1, program.epochs)
+    tested, judged_at = judge.scores(carry, x, y)
     per_epoch, (diverged, at), params = jax.device_get((per_epoch, status_fn(carry), params_fn(carry)))
     run_seconds = time.perf_counter() - t0
 
@@ -169,12 +178,59 @@ def execute_group(group: Group, dataset, environment: dict,
         lane_params = jax.tree.map(lambda a: a[i], params)
         results.append(LaneResult(
             run_id=run.run_id, lane=i, curves=curves,
+            tests={m: np.float32(np.nan) if bool(diverged[i]) else tested[m][i] for m in program.test_names},
+            test_epoch=int(judged_at[i]) if program.test_names and judged_at[i] > 0 else None,
             diverged_at=int(at[i]) + 1 if bool(diverged[i]) else None,
             param_digest=param_digest(lane_params),
             warnings=diagnose(run.variant.spec.normalization.kind, run.variant.spec.model.hidden_layers, curves),
             arrays=_lane_arrays(lane_params, carry, i) if keep_arrays else None,
         ))
-    return GroupResult(group.group_id, group.lane_width, names, results, compile_seconds, run_seconds, environment)
+    return GroupResult(group.group_id, group.lane_width, names, program.test_names, results, compile_seconds,
+                       run_seconds, environment)
+
+
+class _Judge:
+    """The epoch each lane is judged at (``Variant.judge``: its last, or the first with the best
+    value of a validation metric) and, once training is over, its test scores there: for "best",
+    each lane's weights are copied whenever its metric improves, and only those are scored. The
+    test rows are read once per run, after every choice; nothing here reads them before."""
+
+    def __init__(self, program, group: Group, width: int, carry):
+        import jax.numpy as jnp
+
+        self.program = program
+        self.metric, rule = group.runs[0].variant.judge
+        self.best = bool(program.test_names) and rule == "best"
+        self.at = np.full(width, program.epochs if program.test_names and not self.best else 0)
+        if self.best:
+            self.value = np.full(width, np.nan)
+            self.kept = (carry.params, carry.state)
+            self.where = lambda keep, new, old: jnp.where(keep.reshape((-1,) + (1,) * (new.ndim - 1)), new, old)
+
+    def epoch(self, e: int, carry, metrics) -> None:
+        if not self.best:
+            return
+        import jax
+
+        from compiler.spec import direction
+
+        v = np.asarray(metrics[self.metric], dtype=np.float64)
+        ahead = v > self.value if direction(self.metric) == "max" else v < self.value
+        better = np.isfinite(v) & (np.isnan(self.value) | ahead)
+        if better.any():
+            self.value, self.at = np.where(better, v, self.value), np.where(better, e, self.at)
+            self.kept = jax.tree.map(lambda new, old: self.where(better, new, old),
+                                     (carry.params, carry.state), self.kept)
+
+    def scores(self, carry, x, y) -> tuple[dict[str, np.ndarray], np.ndarray]:
+        if not self.program.test_names:
+            return {}, self.at
+        import jax
+
+        if self.best:
+            carry = carry._replace(params=self.kept[0], state=self.kept[1])
+        tested = jax.device_get(jax.vmap(self.program.test, in_axes=(0, None, None))(carry, x, y))
+        return {m: np.asarray(v, dtype=np.float32) for m, v in tested.items()}, self.at
 
 
 def _lane_arrays(lane_params, carry, i) -> dict[str, np.ndarray]:
@@ -184,6 +240,8 @@ def _lane_arrays(lane_params, carry, i) -> dict[str, np.ndarray]:
            for path, leaf in jax.tree_util.tree_flatten_with_path(lane_params)[0]}
     out["input/mean"], out["input/scale"] = np.asarray(carry.x_mean[i]), np.asarray(carry.x_scale[i])
     out["split/validation"] = np.asarray(carry.val_idx[i])
+    if carry.test_idx.shape[-1]:
+        out["split/test"] = np.asarray(carry.test_idx[i])
     return out
 
 

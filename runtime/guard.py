@@ -2,9 +2,10 @@
 
 Contract:
 
-- :func:`estimate` ``(groups, data) -> Estimate``: peak bytes and order-of-magnitude seconds of
-  executing ``groups`` (``data`` maps a group id to its :class:`compiler.data.Dataset`), without
-  compiling or running anything;
+- :func:`estimate` ``(groups, data, workers=1) -> Estimate``: peak bytes and order-of-magnitude
+  wall seconds of executing ``groups`` (``data`` maps a group id to its
+  :class:`compiler.data.Dataset`) in this process or side by side in ``workers`` processes,
+  without compiling or running anything;
 - :func:`lane_budget` ``(groups, data, budget_bytes=None) -> {structure: lanes}``: for each
   structure, the most lanes whose estimate fits in ``budget_bytes`` (default
   :func:`memory_budget`), for :func:`runtime.plan.plan`'s ``lane_budget``;
@@ -19,8 +20,9 @@ Memory model (float32 everywhere; a run's state is its lane's share of a vmapped
 
 - data: the host arrays and one device copy per (structure, data set), since compiled programs
   keep theirs for the whole invocation;
-- per lane: :func:`runtime.plan.lane_bytes` (parameters, gradients, up to three optimizer slots,
-  one batch of activations) plus what grows with the data: the split indices, the epoch's
+- per lane (:func:`per_lane_bytes`): from the network family's declared cost
+  (``compiler.model.FAMILIES``: parameters, activations per example, weight masks), parameters,
+  gradients, up to three optimizer slots and one batch of activations, plus what grows with the data: the split indices, the epoch's
   shuffled order, the larger of the gathered training rows (standardization is fitted on them)
   and the validation split's forward pass, and the per-step metrics of one epoch;
 - × :data:`XLA_SLACK` for temporaries XLA allocates beside the live values, plus
@@ -29,7 +31,11 @@ Memory model (float32 everywhere; a run's state is its lane's share of a vmapped
 Time model: execution is ``2·MACs`` FLOPs per example forward, ``6·MACs`` forward and backward,
 at :data:`FLOPS_PER_SECOND`, plus a fixed cost per vmapped step; each program costs a compile, or
 a load when the compile cache holds it, or nothing when an earlier group of the invocation made
-it; each group costs a fixed amount besides (moving its data, writing the result set). The
+it; each group costs a fixed amount besides (moving its data, writing the result set). With
+several worker processes the groups are handed out in order to the first free worker
+(:func:`schedule`), and a worker pays a compile, or a load once the compile cache holds the
+program, for each program it has not made itself: the estimate is the busiest worker's wall
+time plus the parent's writes, not the sum over groups. The
 constants start as rounded facts of an idle machine and are then *calibrated*: every
 ``lesion run`` in this process stores what it measured (:class:`Calibration`, in the compile
 cache folder) and the next estimate uses it, so a slower or busier machine gets a larger one.
@@ -51,9 +57,9 @@ from pathlib import Path
 
 from compiler.errors import UserError
 from compiler.spec import example_shape, train_size
-from runtime.plan import Group, lane_bytes
+from runtime.plan import Group
 
-__all__ = ["Estimate", "ResourceError", "Calibration", "estimate", "model_seconds", "lane_budget", "check",
+__all__ = ["Estimate", "ResourceError", "Calibration", "estimate", "schedule", "model_seconds", "lane_budget", "check",
            "check_data", "available_bytes", "memory_budget", "total_bytes", "data_room", "XLA_SLACK", "RUNTIME_BYTES",
            "FLOPS_PER_SECOND"]
 
@@ -129,52 +135,97 @@ class Estimate:
     data_bytes: int
     lane_bytes: int        # of the widest-footprint group, per lane
     lanes: int             # that group's lane width
-    seconds: float
+    seconds: float         # wall time
+    workers: int = 1       # processes the groups are handed out to
 
     def describe(self) -> str:
-        return f"about {_size(self.peak_bytes)} of memory and {_duration(self.seconds)}"
-
-
-def _outputs(variant, dataset) -> int:
-    if dataset.task == "regression":
-        return dataset.y.shape[1]
-    return 1 if variant.spec.divergence.kind == "bce" else dataset.classes
+        side = f" on {self.workers} workers" if self.workers > 1 else ""
+        return f"about {_size(self.peak_bytes)} of memory and {_duration(self.seconds)}{side}"
 
 
 def _shape(group: Group, dataset):
-    from compiler.model import COSTS  # jax: only where a run is planned, never in `lesion check`
+    """The group's spec, its network's declared :class:`compiler.model.Cost`, rows in all and in
+    training, and optimization steps per epoch: the network, its divergence and its training
+    section each say their own part."""
+    # Imported here, not at the top: `lesion check` reads this module (``data_room``) and must
+    # not load jax.
+    from compiler import model, regularization
 
-    v = group.runs[0].variant
-    n, in_shape = dataset.x.shape[0], dataset.x.shape[1:]
-    outputs = _outputs(v, dataset)
-    cost = COSTS[v.spec.model.kind](v.spec.model, in_shape, outputs)
-    n_train = train_size(n, v.spec.data.validation)
-    batch = v.spec.training.batch_size
-    steps = n_train // batch if v.spec.training.drop_last else -(-n_train // batch)
-    return v, n, n_train, in_shape, outputs, cost, steps
+    spec = group.runs[0].variant.spec
+    fields = {name: getattr(spec.model, name) for name in type(spec.model).model_fields if name != "kind"}
+    cost = model.FAMILIES[spec.model.kind].cost(
+        **{**fields, "hidden": spec.model.widths}, in_shape=dataset.x.shape[1:],
+        out_width=spec.divergence.outputs(dataset.classes, dataset.targets),
+        dropout=regularization.REGISTRY[spec.regularization.dropout.kind]())
+    n = dataset.x.shape[0]
+    n_train = train_size(n, spec.data.validation, spec.data.test)
+    return spec, cost, n, n_train, spec.training.steps(n_train)
 
 
 def per_lane_bytes(group: Group, dataset) -> int:
-    v, n, n_train, in_shape, outputs, cost, steps = _shape(group, dataset)
-    n_val, features = n - n_train, math.prod(in_shape)
+    """Parameters with gradients and up to three optimizer slots, one batch of activations kept
+    for the backward pass (and the weight masks it draws), plus what grows with the data: the
+    split indices, the epoch's order, the larger of the gathered training rows and the validation
+    split's forward pass, and one epoch of per-step metrics; float32, with a factor of 4 on the
+    activations for XLA's copies of them."""
+    spec, cost, n, n_train, steps = _shape(group, dataset)
+    n_val, features = n - n_train, math.prod(dataset.x.shape[1:])
+    batch = spec.training.batch_size
+    lane = 5 * cost.parameters + 4 * batch * cost.activations + batch * cost.masks
     grows = (n + n_train + max(n_train * features, n_val * (features + 2 * cost.activations))
              + steps * (cost.layers + 7))
-    return lane_bytes(v, in_shape, outputs) + 4 * grows
+    return 4 * (lane + grows)
 
 
 def model_seconds(group: Group, dataset) -> float:
     """Uncalibrated execution seconds of a group."""
-    v, n, n_train, in_shape, outputs, cost, steps = _shape(group, dataset)
-    macs = cost.macs
-    flops = group.lane_width * (6 * macs * n_train + 2 * macs * (n - n_train))
-    epochs = v.spec.training.epochs
-    return epochs * (flops / FLOPS_PER_SECOND + steps * STEP_SECONDS)
+    spec, cost, n, n_train, steps = _shape(group, dataset)
+    flops = group.lane_width * (6 * cost.macs * n_train + 2 * cost.macs * (n - n_train))
+    return spec.training.epochs * (flops / FLOPS_PER_SECOND + steps * STEP_SECONDS)
+
+
+def schedule(costs: list[float], workers: int) -> float:
+    """Wall seconds of jobs of ``costs`` handed out in order, each to the first worker free
+    (how :class:`runtime.workers.LocalWorkers` hands out groups)."""
+    free = [0.0] * max(1, min(workers, len(costs)))
+    for cost in costs:
+        w = free.index(min(free))
+        free[w] += cost
+    return max(free)
+
+
+def _parallel_seconds(groups: list[Group], data: dict, execute: list[float], actions: list[str],
+                      cal: Calibration, workers: int) -> float:
+    """Wall seconds of compiling and executing ``groups`` in ``workers`` new processes. A
+    worker holds no program at first: a group whose program its worker has not made pays a
+    compile, or a load once the compile cache holds the program (stored by the first worker
+    that compiled it, or before this invocation: ``actions`` other than compile)."""
+    free = [0.0] * min(workers, len(groups))
+    held: list[set] = [set() for _ in free]
+    stored: dict = {}
+    first: dict = {}
+    for g, run, action in zip(groups, execute, actions):
+        key = (g.structure, g.lane_width, id(data[g.group_id]))
+        first.setdefault(key, action)
+        w = free.index(min(free))
+        start = free[w]
+        if key in held[w]:
+            cost = 0.0
+        elif first[key] != "compile" or stored.get(key, float("inf")) <= start:
+            cost = cal.load_seconds
+        else:
+            cost = cal.compile_seconds
+            stored[key] = min(stored.get(key, float("inf")), start + cost)
+        held[w].add(key)
+        free[w] = start + cost + run
+    return max(free)
 
 
 def estimate(groups: list[Group], data: dict, *, preparation: dict[str, str] | None = None,
-             calibration: Calibration | None = None) -> Estimate:
-    """Peak memory and rough time of executing ``groups`` one after another in this process.
-    ``preparation`` (group id -> compile, load or reuse, from
+             calibration: Calibration | None = None, workers: int = 1) -> Estimate:
+    """Peak memory (per process) and rough wall time of executing ``groups``: one after another
+    in this process, or handed out to ``workers`` worker processes side by side (more than one
+    worker and one group). ``preparation`` (group id -> compile, load or reuse, from
     :func:`runtime.execute.preparation`) defaults to one compile per structure and data set;
     ``calibration`` defaults to the idle-machine constants."""
     host = {id(data[g.group_id]): data[g.group_id] for g in groups}
@@ -186,15 +237,26 @@ def estimate(groups: list[Group], data: dict, *, preparation: dict[str, str] | N
         if b * g.lane_width >= widest:
             widest, lanes, lane = b * g.lane_width, g.lane_width, b
     cal = calibration or Calibration()
+    execute = [cal.execute_ratio * model_seconds(g, data[g.group_id]) for g in groups]
     if preparation is None:
-        actions = ["compile"] * len(device)
+        seen: set = set()
+        actions = []
+        for g in groups:
+            key = (g.structure, id(data[g.group_id]))
+            actions.append("reuse" if key in seen else "compile")
+            seen.add(key)
     else:
         actions = [preparation[g.group_id] for g in groups]
-    seconds = (cal.execute_ratio * sum(model_seconds(g, data[g.group_id]) for g in groups)
-               + cal.compile_seconds * actions.count("compile") + cal.load_seconds * actions.count("load")
-               + cal.group_seconds * len(groups))
+    # The parent writes each group's result: that part stays serial whatever the workers.
+    other = cal.group_seconds * len(groups)
+    if workers > 1 and len(groups) > 1:
+        seconds = _parallel_seconds(groups, data, execute, actions, cal, workers) + other
+    else:
+        workers = 1
+        seconds = (sum(execute) + cal.compile_seconds * actions.count("compile")
+                   + cal.load_seconds * actions.count("load") + other)
     peak = RUNTIME_BYTES + data_bytes + int(XLA_SLACK * widest)
-    return Estimate(peak, data_bytes, lane, lanes, seconds)
+    return Estimate(peak, data_bytes, lane, lanes, seconds, workers)
 
 
 def lane_budget(groups: list[Group], data: dict, budget_bytes: int | None = None) -> dict[str, int]:

@@ -23,7 +23,7 @@ from dataclasses import dataclass
 from compiler.expand import Variant
 from compiler.hashing import run_id
 
-__all__ = ["Run", "Group", "plan", "DEFAULT_MAX_LANES", "lane_bytes"]
+__all__ = ["Run", "Group", "plan", "DEFAULT_MAX_LANES"]
 
 # Wider lanes amortize per-step overhead on small models; beyond ~32 the matrices are big enough
 # that XLA:CPU gains nothing more on two cores and memory grows linearly.
@@ -47,23 +47,6 @@ class Group:
     @property
     def padding(self) -> int:
         return self.lane_width - len(self.runs)
-
-
-def lane_bytes(variant: Variant, in_shape, outputs: int) -> int:
-    """Rough bytes one lane needs while training: parameters with gradients and up to three
-    optimizer slots, activations of one batch kept for the backward pass, float32. The network's
-    sizes are its family's cost facts (:data:`compiler.model.COSTS`) for examples of
-    ``in_shape``."""
-    from compiler.model import COSTS  # jax: only where a run is planned, never in `lesion check`
-
-    spec = variant.spec
-    cost = COSTS[spec.model.kind](spec.model, in_shape, outputs)
-    params = cost.params
-    batch = spec.training.batch_size
-    activations = batch * cost.activations * 4
-    if spec.regularization.dropout.kind == "connect":
-        activations += batch * params  # a weight mask per example
-    return 4 * (5 * params + activations)
 
 
 def plan(variants: list[Variant], seeds: list[int], *, lanes: int | None = None,

@@ -54,11 +54,12 @@ from matplotlib.colors import LinearSegmentedColormap  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
 from matplotlib.lines import Line2D  # noqa: E402
 from matplotlib.patches import Rectangle  # noqa: E402
+from matplotlib.ticker import FuncFormatter  # noqa: E402
 from matplotlib.transforms import blended_transform_factory  # noqa: E402
 
 from compiler.errors import UserError  # noqa: E402
 from compiler.labels import BASE_LABEL, format_value, label_parts, variant_label  # noqa: E402
-from compiler.spec import METRICS  # noqa: E402
+from compiler.spec import direction  # noqa: E402
 from runtime.show import curve_rows, summary_rows  # noqa: E402
 from runtime.stats import summarize  # noqa: E402
 from runtime.store import ResultSet  # noqa: E402
@@ -75,7 +76,7 @@ SEQUENTIAL = LinearSegmentedColormap.from_list(
     "lesion-depth", ["#f5f2e7", "#b9dcc9", "#5fa8a3", "#2f7797", "#0c4a78", "#10233f"])
 VERDICT_COLOURS = {"better": PALETTE[2], "worse": PALETTE[3], "equivalent": PALETTE[0],
                    "inconclusive": PALETTE[9], "no detectable change": PALETTE[9], "no test possible": "#9a9a9a"}
-KINDS = ("curves", "arms", "grid")
+KINDS = ("curves", "arms", "grid", "budget")
 DPI = 150
 LOG_SPAN = 30.0
 # curves: a grid with more variants than this is drawn as small multiples (one panel per level).
@@ -144,7 +145,7 @@ def _title(rs: ResultSet, what: str) -> str:
 
 
 def _direction_text(metric: str) -> str:
-    d = METRICS.get(metric)
+    d = direction(metric)
     return "higher is better" if d == "max" else "lower is better" if d == "min" else "no preferred direction"
 
 
@@ -359,7 +360,7 @@ def _baseline(rs: ResultSet, baseline: str | None, labels: list[str]) -> str | N
 
 def _order(rows: list[dict], metric: str) -> list[str]:
     """Best first in the metric's direction; variants without an ok run last."""
-    sign = 1.0 if METRICS.get(metric, "max") == "max" else -1.0
+    sign = -1.0 if direction(metric) == "min" else 1.0
     return [r["variant"] for r in sorted(rows, key=lambda r: (not math.isfinite(r["mean"]),
                                                              -sign * r["mean"] if math.isfinite(r["mean"]) else 0))]
 
@@ -503,7 +504,7 @@ def plot_grid(rs: ResultSet, metrics: list[str] | None = None) -> Figure:
         table = {r["variant"]: r for r in summary_rows(rs, m)}
         means = {label: table[label]["mean"] for label in cell_of}
         finite = [label for label in cell_of if math.isfinite(means[label])]
-        sign = 1.0 if METRICS.get(m, "max") == "max" else -1.0
+        sign = -1.0 if direction(m) == "min" else 1.0
         best = max(finite, key=lambda label: sign * means[label]) if finite else None
         gaps = _gaps_to_best(rs, m, best) if best else {}
         grid = np.full((ny, nx), np.nan)
@@ -608,6 +609,40 @@ def plot_diff(rs_a: ResultSet, rs_b: ResultSet, metrics: list[str] | None = None
     return fig
 
 
+# ── tuning budget ───────────────────────────────────────────────────────────────────────────────
+def plot_budget(rs: ResultSet) -> Figure:
+    """Expected best validation score against the number of runs tried, per arm, ± one sd
+    (the rows of ``lesion show --budget``: :func:`runtime.tuning.budget_rows`)."""
+    from runtime.tuning import budget_rows, study_of, tuned
+
+    if not tuned(rs):
+        raise PlotError("--kind budget draws the tuning inside arms; this study has no [ablation.tune]")
+    rows, metric = budget_rows(rs, study_of(rs))
+    fig = _figure(7.5, 4.8)
+    ax = fig.subplots()
+    arms = list(dict.fromkeys(r["arm"] for r in rows))
+    for k, arm in enumerate(arms):
+        mine = [r for r in rows if r["arm"] == arm]
+        n = np.array([r["budget"] for r in mine])
+        mean, sd = np.array([r["expected"] for r in mine]), np.array([r["sd"] for r in mine])
+        colour = PALETTE[k % len(PALETTE)]
+        ax.plot(n, mean, "-o", color=colour, markersize=3.5, label=f"{arm} ({mine[0]['trials']} runs)",
+                gid=f"budget:{arm}")
+        ax.fill_between(n, mean - sd, mean + sd, color=colour, alpha=0.15, linewidth=0)
+    ax.set_xscale("log")
+    ax.xaxis.set_major_formatter(FuncFormatter(lambda x, _: f"{x:g}"))
+    ax.set_xlabel("runs tried (settings × seeds drawn with replacement)")
+    ax.set_ylabel(f"expected best {metric}")
+    ax.grid(True, alpha=0.25, linewidth=0.6)
+    for side in ("top", "right"):
+        ax.spines[side].set_visible(False)
+    ax.legend(fontsize=8.5, frameon=False)
+    _suptitle(fig, _title(rs, "expected best validation score vs tuning budget"),
+              f"{metric} ({_direction_text(metric)}) at the judged epoch; band: ± one sd of the best of n "
+              "draws (Dodge et al. 2019)")
+    return fig
+
+
 # ── dispatch and files ──────────────────────────────────────────────────────────────────────────
 def plot(rs: ResultSet, kind: str = "curves", *, metrics: list[str] | None = None,
          baseline: str | None = None) -> Figure:
@@ -619,6 +654,10 @@ def plot(rs: ResultSet, kind: str = "curves", *, metrics: list[str] | None = Non
         return plot_arms(rs, metrics, baseline)
     if kind == "grid":
         return plot_grid(rs, metrics)
+    if kind == "budget":
+        if baseline is not None or metrics:
+            raise PlotError("--kind budget draws the study's tuning metric; --metric and --baseline do not apply")
+        return plot_budget(rs)
     raise PlotError(f"--kind {kind!r}: expected one of {', '.join(KINDS)}")
 
 

@@ -8,7 +8,9 @@ then re-executed, each at its own recorded lane width, with a fresh compile (nev
 program, never one compiled earlier in the process). Every per-epoch metric and every runs-table
 cell the re-execution decides (final and best metrics, status, divergence epoch, epochs, the
 parameter digest, labels, changes, varied-key columns, warnings) is compared: floats by bit
-pattern, except that any NaN equals any NaN (−0.0 ≠ 0.0). A duplicated run is refused; a run the
+pattern, except that any NaN equals any NaN (−0.0 ≠ 0.0). A metric the re-execution computes but
+the result set does not store (one added to lesion after it was written) is not compared; the
+report's notes name it. A duplicated run is refused; a run the
 spec derives but the result set lacks is reported as missing; a run whose recorded width
 disagrees with the other runs of its call is reported; stored digests that no longer match the
 tables (``runtime.audit``) make the replay not identical even when every number reproduces.
@@ -182,7 +184,7 @@ def replay(path: str | Path, *, run: str | None = None, variant: str | None = No
         curve_rows.setdefault(rid, []).append(k)
     row_of = {cols["run_id"][i]: i for i in chosen}
     doubt = _widths_in_doubt(cols, chosen)
-    rows, arrays = [], {}
+    rows, arrays, unstored = [], {}, set()
     for g in plans:
         d = data[g.group_id]
         for r in g.runs:
@@ -196,6 +198,7 @@ def replay(path: str | Path, *, run: str | None = None, variant: str | None = No
         result = execute_group(g, d, current, reuse=False, keep_arrays=keep_arrays)
         fresh, _ = group_tables(result, g, rs.study_hash, rs.headline, key_columns, d.fingerprint)
         fresh = fresh.to_pydict()
+        unstored.update(c for c in fresh if c not in cols)
         for j, lane in enumerate(result.lanes):
             i = row_of[lane.run_id]
             row = _compare(lane, cols, i, {c: fresh[c][j] for c in fresh}, curves, curve_rows.get(lane.run_id, []),
@@ -207,7 +210,11 @@ def replay(path: str | Path, *, run: str | None = None, variant: str | None = No
             if keep_arrays:
                 arrays[lane.run_id] = lane.arrays
     rows += _missing_rows(check, loaded, run, variant)
-    return ReplayReport(rs.path, rows, changes, check.warnings(), check.notes(), bool(check.edits), arrays)
+    notes = check.notes()
+    if unstored:
+        notes.append(f"not compared, since this result set does not store them (an earlier lesion did not compute "
+                     f"them): {', '.join(sorted(unstored))}")
+    return ReplayReport(rs.path, rows, changes, check.warnings(), notes, bool(check.edits), arrays)
 
 
 def _missing_rows(check, loaded, run, variant) -> list[ReplayRow]:
@@ -231,9 +238,9 @@ def _compare(lane, cols, i, fresh: dict, curves, sel: list[int], metric_names) -
     row = ReplayRow(rid, cols["variant_label"][i], cols["seed"][i], cols["lane_width"][i], "identical")
     sel = sorted(sel, key=lambda k: curves["epoch"][k])
     first = None
-    for m in metric_names:
+    for m in (m for m in metric_names if m in curves):
         new = lane.curves[m]
-        old = np.asarray([curves[m][k] if m in curves else np.nan for k in sel], dtype=np.float32)
+        old = np.asarray([curves[m][k] for k in sel], dtype=np.float32)
         if old.shape != new.shape:
             first = first or (1, m)
             row.max_abs = float("inf")
@@ -248,7 +255,8 @@ def _compare(lane, cols, i, fresh: dict, curves, sel: list[int], metric_names) -
                 rel = diff / np.maximum(np.abs(old.astype(np.float64)), np.finfo(np.float32).tiny)
             row.max_abs = max(row.max_abs, float(np.nanmax(np.where(eq, 0, diff))) if diff.size else 0.0)
             row.max_rel = max(row.max_rel, float(np.nanmax(np.where(eq, 0, rel))) if rel.size else 0.0)
-    names = [c for c in dict.fromkeys([*fresh, *cols]) if c not in _NOT_DETERMINED]
+    # A column the stored result set lacks (a metric added to lesion since) is not compared.
+    names = [c for c in cols if c not in _NOT_DETERMINED]
     row.cells = [c for c in names if not _same(cols[c][i] if c in cols else None, fresh.get(c))]
     if lane.param_digest != cols["param_digest"][i]:
         row.digest = "differs"

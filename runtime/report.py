@@ -18,7 +18,7 @@ import json
 import math
 from html import escape
 
-from compiler.spec import METRICS
+from compiler.spec import direction
 from runtime.formats import fmt_number
 from runtime.store import ResultSet
 
@@ -50,7 +50,13 @@ figcaption { color: #555d68; font-size: .88rem; }
 
 
 def default_baseline(rs: ResultSet) -> str:
-    """``base`` when the study has it, else its first variant."""
+    """``base`` when the study has it, else its first variant (of a tuned study: its first arm)."""
+    from compiler.expand import arms
+    from runtime.tuning import study_of, tuned
+
+    if tuned(rs):
+        labels = [a.label for a in arms(study_of(rs).variants)]
+        return "base" if "base" in labels else labels[0]
     pairs = sorted(set(zip(rs.runs.column("variant_index").to_pylist(), rs.runs.column("variant_label").to_pylist())))
     labels = [label for _, label in pairs]
     return "base" if "base" in labels else labels[0]
@@ -81,11 +87,18 @@ def _table(rows: list[dict], columns: list[str], numeric: set[str], row_class=No
 
 
 def _pictures(rs: ResultSet, baseline: str) -> list[tuple[str, str]]:
-    from runtime.plot import PlotError, plot_arms, plot_curves, plot_grid, svg_markup
+    from runtime.plot import PlotError, plot_arms, plot_budget, plot_curves, plot_grid, svg_markup
+    from runtime.tuning import tuned
 
-    figures = [("curves", "Learning curves: per-epoch means over ok seeds with ±1 sd bands.", plot_curves(rs)),
-               ("arms", f"Final values per variant, best first, with 95 % t intervals and every seed; "
-                        f"baseline '{baseline}' marked.", plot_arms(rs, baseline=baseline))]
+    figures = [("curves", "Learning curves: per-epoch means over ok seeds with ±1 sd bands.", plot_curves(rs))]
+    if tuned(rs):
+        # the baseline is an arm, and the variants drawn are its tuned settings: nothing to mark
+        figures += [("arms", "Final values per tuned variant (arm and setting), best first, with 95 % t "
+                             "intervals and every seed.", plot_arms(rs)),
+                    ("budget", "Expected best validation score against the runs tried, per arm.", plot_budget(rs))]
+    else:
+        figures.append(("arms", f"Final values per variant, best first, with 95 % t intervals and every seed; "
+                                f"baseline '{baseline}' marked.", plot_arms(rs, baseline=baseline)))
     try:
         figures.append(("grid", "The grid: colour is each cell's gap to the best cell in half-widths of its 95 % "
                                 "interval; dashed cells cannot be told from the best.", plot_grid(rs)))
@@ -98,6 +111,7 @@ def render_report(rs: ResultSet, baseline: str | None = None) -> str:
     """The page for result set ``rs``; verdicts against ``baseline`` (default: :func:`default_baseline`)."""
     from runtime.diff import diff_baseline
     from runtime.show import SUMMARY_COLUMNS, summary_rows
+    from runtime.tuning import tuned
 
     baseline = baseline or default_baseline(rs)
     tree = rs.tree
@@ -109,7 +123,7 @@ def render_report(rs: ResultSet, baseline: str | None = None) -> str:
     runs = rs.runs.to_pydict()
     environment = rs.meta["environment"]
     where = escape(str(rs.path))
-    sign = 1.0 if METRICS.get(metric, "max") == "max" else -1.0
+    sign = -1.0 if direction(metric) == "min" else 1.0
     best = max((r for r in rows if math.isfinite(r["mean"])), key=lambda r: sign * r["mean"], default=None)
     best_run = next((rid for rid, label, status in zip(runs["run_id"], runs["variant_label"], runs["status"])
                      if best and label == best["variant"] and status == "ok"), runs["run_id"][0])
@@ -142,6 +156,8 @@ def render_report(rs: ResultSet, baseline: str | None = None) -> str:
         f"{len(report.rows) - counts['better'] - counts['worse']} without a detectable change, p-values adjusted by "
         f"{'Holm' if report.correction == 'holm' else 'Benjamini–Hochberg'} over {len(report.rows)} "
         f"comparison{'s' if len(report.rows) != 1 else ''}.</p>",
+        # a tuned study's verdicts are about arms at their picks: the page says how they were picked
+        *([f'<p class="note">{escape(report.notes[0])}</p>'] if tuned(rs) else []),
         _table(verdict_rows, VERDICT_COLUMNS, set(VERDICT_COLUMNS[2:-1]),
                row_class=lambda r: r["verdict"] if r["verdict"] in ("better", "worse") else ""),
         "</section>",

@@ -22,7 +22,7 @@ import numpy as np
 import pyarrow as pa
 
 from compiler.hashing import canonical_json, lookup, variant_payload
-from compiler.spec import METRICS
+from compiler.spec import direction as metric_direction
 from runtime import __version__, environment, execute, guard, programs
 from runtime.execute import GroupResult
 from runtime.plan import Group, plan
@@ -106,10 +106,11 @@ def datasets_for(groups: list[Group], base_dir: Path, cache: dict | None = None)
 
 def group_tables(result: GroupResult, group: Group, study_hash: str, headline: str, key_columns: dict,
                  data_fingerprint: str) -> tuple[pa.Table, pa.Table]:
-    """The runs rows and curves rows of one executed group."""
+    """The runs rows and curves rows of one executed group; with a test split, ``test_epoch`` and
+    the ``test_<metric>`` scores there (``execute.LaneResult``)."""
     env_json = json.dumps(result.environment, sort_keys=True)
     env_fp = environment.fingerprint(result.environment)
-    direction = METRICS[headline]
+    direction = metric_direction(headline)
     by_id = {r.run_id: r for r in group.runs}
     finished = datetime.now(timezone.utc).isoformat(timespec="seconds")
     n = len(result.lanes)
@@ -120,6 +121,7 @@ def group_tables(result: GroupResult, group: Group, study_hash: str, headline: s
         cols[k] = []
     finals = {f"final_{m}": [] for m in result.metric_names}
     best, best_epoch = [], []
+    tested: dict[str, list] = {"test_epoch": [], **{m: [] for m in result.test_names}}
     tail = {k: [] for k in ("param_digest", "data_fingerprint", "env_fingerprint", "environment",
                             "compile_seconds", "run_seconds", "warnings", "finished_at")}
     curve_cols: dict[str, list] = {"run_id": [], "variant_label": [], "seed": [], "epoch": []}
@@ -154,6 +156,10 @@ def group_tables(result: GroupResult, group: Group, study_hash: str, headline: s
             i = int(np.nanargmax(h) if direction == "max" else np.nanargmin(h))
             best.append(h[i])
             best_epoch.append(i + 1)
+        if result.test_names:
+            tested["test_epoch"].append(lane.test_epoch)
+            for m in result.test_names:
+                tested[m].append(lane.tests[m])
         tail["param_digest"].append(lane.param_digest)
         tail["data_fingerprint"].append(data_fingerprint)
         tail["env_fingerprint"].append(env_fp)
@@ -185,6 +191,10 @@ def group_tables(result: GroupResult, group: Group, study_hash: str, headline: s
         names.append(k)
     arrays += [column(best, pa.float32()), column(best_epoch, pa.int32())]
     names += [f"best_{headline}", "best_epoch"]
+    if result.test_names:
+        for k, vals in tested.items():
+            arrays.append(column(vals, pa.int32() if k == "test_epoch" else pa.float32()))
+            names.append(k)
     for k, vals in tail.items():
         typ = pa.float64() if k.endswith("seconds") else pa.string()
         arrays.append(column(vals, typ))
@@ -349,7 +359,8 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
         if executor is None:
             preparation = execute.preparation(todo, data, env)
             calibration = guard.Calibration.load(_timing_path())
-            estimate = guard.estimate(todo, data, preparation=preparation, calibration=calibration)
+            estimate = guard.estimate(todo, data, preparation=preparation, calibration=calibration,
+                                      workers=workers)
         planned = sum(len(g.runs) for g in groups)
         if progress:
             progress("plan", groups=len(todo), runs=sum(len(g.runs) for g in todo), planned=planned,
@@ -359,7 +370,7 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
         compile_s = run_s = 0.0
         current = stored
         started = time.perf_counter()
-        compiled, loaded_s = [], []
+        compiled, loaded_s, busy = [], [], {}
         check()
         for g, result in (executor or LocalWorkers(workers, checkpoint=checkpoint)).run(todo, data, env, progress):
             if estimate is not None and preparation[g.group_id] != "reuse":
@@ -371,12 +382,15 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
             warnings += [f"{lane.run_id}: {w}" for lane in result.lanes for w in lane.warnings]
             compile_s += result.compile_seconds
             run_s += result.run_seconds
+            busy[g.group_id] = result.compile_seconds + result.run_seconds
             if progress:
                 progress("stored", group=g, result=result)
             check()
         if estimate is not None and todo:
             # What this invocation measured calibrates the next estimate on this machine.
-            rest = time.perf_counter() - started - compile_s - run_s
+            # Groups that computed side by side overlap: what is left besides them is the
+            # elapsed time less the busiest worker's.
+            rest = time.perf_counter() - started - guard.schedule([busy[g.group_id] for g in todo], workers)
             modelled = sum(guard.model_seconds(g, data[g.group_id]) for g in todo)
             calibration.updated(compiled=compiled, loaded=loaded_s, executed=(run_s, modelled),
                                 other=(rest, len(todo))).save(_timing_path())
@@ -405,6 +419,9 @@ def run_until_decided(loaded, out: Path, rule, *, axis: str | None = None, **kw)
     from runtime.diff import sequential_design
 
     spec = loaded.spec
+    if spec.ablation is not None and spec.ablation.tune is not None:
+        raise ResultSetError(f"{loaded.path}: --until-decided adds seeds to variants, and a tuned study compares "
+                             "arms (each its pick per seed); run it with a fixed number of seeds (study.seeds)")
     first = spec.study.seed_list
     record = {**rule.as_dict(), "first": first, "axis": axis, "metric": spec.study.metric}
     path = result_dir(out, spec.study.name, loaded.study_hash)

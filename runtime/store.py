@@ -37,6 +37,7 @@ import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
 from compiler.errors import UserError
+from compiler.spec import class_of_metric, direction, metric_problem, spelled_metrics
 
 __all__ = ["column", "ResultSet", "ResultSetError", "open_result_set", "result_dir", "write_results", "writer_lock",
            "META_KEYS", "DIGEST_KEYS", "SEQUENTIAL", "RUNS", "CURVES", "STAGING", "refuse_link", "runs_digest",
@@ -120,8 +121,21 @@ class ResultSet:
         for m in metrics:
             if m not in have:
                 what = "has no curves" if curves else "is not stored"
+                why = self._absent(m)
                 raise ResultSetError(f"{self.path}: metric {m!r} {what} in this result set "
-                                     f"(it has: {', '.join(sorted(have))})")
+                                     f"(it has: {spelled_metrics(sorted(have))})" + (f"; {why}" if why else ""))
+
+    def _absent(self, metric: str) -> str | None:
+        """Why a metric lesion knows is not stored here, from the stored columns; None for a name
+        lesion does not know as a metric."""
+        if direction(metric) is None:
+            return None
+        finals = [c[len("final_"):] for c in self.runs.column_names if c.startswith("final_")]
+        task = "regression" if "val_rmse" in finals else "classification"
+        classes = max((c[1] + 1 for c in map(class_of_metric, finals) if c), default=None)
+        return (metric_problem(metric, task, classes, "this result set's data")
+                or "the lesion that wrote it did not compute this metric yet (`lesion run` on the study's spec "
+                   "recomputes its runs with this lesion)")
 
 
 def result_dir(out: Path, name: str, study_hash: str) -> Path:

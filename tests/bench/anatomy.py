@@ -2,19 +2,21 @@
 
 Usage (repository root, quiet machine)::
 
-    .venv/bin/python tests/bench/anatomy.py [SPEC]     # default: specs/realistic.toml
+    .venv/bin/python tests/bench/anatomy.py [SPEC] [--rounds=7]   # default: specs/realistic.toml
 
 On the workload's shapes at lesion's lane width (lanes × batch × widths, SGD with momentum,
-softmax cross-entropy), each a jitted program timed warm, best of five:
+softmax cross-entropy), each a jitted program timed warm in CPU seconds (one XLA thread), the
+items interleaved round after round and the least of the rounds kept:
 
 - ``epoch``: lesion's own per-epoch program (``execute_group`` on the study's first group, its
-  ``run_seconds`` over the epochs);
+  CPU time over the epochs, once);
 - ``products``: a ``lax.scan`` over the epoch's steps doing only the step's matrix products
   (forward, input gradient and weight gradient of every layer);
 - ``step``: the same scan with the whole training step written out (gather of the batch rows,
   forward, softmax cross-entropy, backward, momentum update), without metrics;
 - ``step+metrics``: that step plus lesion's per-step metrics (global and per-layer gradient
-  norms, the loss mean);
+  norms, the loss mean), as per-step outputs of the scan averaged after it; ``sums``: the same
+  metrics as running sums in the scan's carry; ``unroll 5``: that, five steps per iteration;
 - ``shuffle``: one epoch's random keys and sort (lesion's :func:`compiler.build.permutation`);
 - ``evaluate``: the validation rows forward once;
 - ``empty scan``: the steps with nothing to do (the loop's own cost);
@@ -38,20 +40,28 @@ sys.path.insert(0, str(HERE.parents[1]))
 import workload as wl  # noqa: E402
 
 
-def best(f, *args, reps=5):
+def interleaved(items: dict, rounds: int) -> dict:
+    """CPU seconds of each jitted ``(f, *args)`` of ``items``: every item once per round, in turn
+    (a busy machine's slow phases spread over all of them), the least of ``rounds`` (the run
+    least disturbed by other jobs; with one XLA thread, CPU time moves less with load than wall
+    time)."""
     import jax
 
-    jax.block_until_ready(f(*args))
-    out = float("inf")
-    for _ in range(reps):
-        t0 = time.perf_counter()
+    for f, *args in items.values():
         jax.block_until_ready(f(*args))
-        out = min(out, time.perf_counter() - t0)
+    out = {name: float("inf") for name in items}
+    for _ in range(rounds):
+        for name, (f, *args) in items.items():
+            t0 = time.process_time()
+            jax.block_until_ready(f(*args))
+            out[name] = min(out[name], time.process_time() - t0)
     return out
 
 
 def main() -> None:
-    spec = Path(sys.argv[1]) if len(sys.argv) > 1 else HERE / "specs" / "realistic.toml"
+    args = [a for a in sys.argv[1:] if not a.startswith("--rounds=")]
+    rounds = int(next((a.split("=", 1)[1] for a in sys.argv[1:] if a.startswith("--rounds=")), 7))
+    spec = Path(args[0]) if args else HERE / "specs" / "realistic.toml"
     from runtime.environment import single_threaded_xla
 
     single_threaded_xla()
@@ -97,12 +107,20 @@ def main() -> None:
                         for i, (W, b) in enumerate(g)})
         return p, v, out
 
-    def epoch_of(metrics):
+    def epoch_of(metrics, sums=False, unroll=1):
+        """The scanned epoch; with ``sums`` the metrics are running sums in the carry (divided
+        by the steps once) instead of per-step outputs stacked and averaged after the scan."""
         def epoch(p, v, order, lr):
             def body(c, idx):
-                p, v, out = train_step(*c, idx, lr, metrics)
-                return (p, v), out
-            (p, v), out = jax.lax.scan(body, (p, v), order)
+                p, v, acc = c
+                p, v, out = train_step(p, v, idx, lr, metrics)
+                if sums:
+                    return (p, v, jax.tree.map(jnp.add, acc, out)), None
+                return (p, v, acc), out
+            zero = jax.tree.map(jnp.zeros_like, jax.eval_shape(lambda: train_step(p, v, order[0], lr, metrics)[2]))
+            (p, v, acc), out = jax.lax.scan(body, (p, v, zero), order, unroll=unroll)
+            if sums:
+                return p, v, jax.tree.map(lambda a: a / order.shape[0], acc)
             return p, v, jax.tree.map(jnp.mean, out)
         return jax.jit(jax.vmap(epoch, in_axes=(0, 0, 0, 0)))
 
@@ -128,17 +146,21 @@ def main() -> None:
     data = datasets_for([group], spec.parent)
     env = environment.capture()
     execute_group(group, data[group.group_id], env)
-    r = execute_group(group, data[group.group_id], env)
-    rows["epoch (lesion)"] = r.run_seconds / w["epochs"]
-    rows["products"] = best(jax.jit(jax.vmap(products_epoch, in_axes=(0, 0))), params, order)
-    rows["step"] = best(epoch_of(False), params, v0, order, lr)
-    rows["step+metrics"] = best(epoch_of(True), params, v0, order, lr)
+    t0 = time.process_time()
+    execute_group(group, data[group.group_id], env)
+    rows["epoch (lesion)"] = (time.process_time() - t0) / w["epochs"]
     keys = jax.random.split(key, lanes)
-    rows["shuffle"] = best(jax.jit(jax.vmap(lambda k: permutation(k, w["n_train"]))), keys)
-    rows["evaluate"] = best(jax.jit(jax.vmap(forward, in_axes=(0, None))), params, xv)
-    rows["empty scan"] = best(jax.jit(jax.vmap(lambda o: jax.lax.scan(lambda c, i: (c + i[0], None), 0, o)[0])),
-                              order)
-
+    items = {
+        "products": (jax.jit(jax.vmap(products_epoch, in_axes=(0, 0))), params, order),
+        "step": (epoch_of(False), params, v0, order, lr),
+        "step+metrics": (epoch_of(True), params, v0, order, lr),
+        "step+metrics, sums": (epoch_of(True, sums=True), params, v0, order, lr),
+        "step+metrics, sums, unroll 5": (epoch_of(True, sums=True, unroll=5), params, v0, order, lr),
+        "shuffle": (jax.jit(jax.vmap(lambda k: permutation(k, w["n_train"]))), keys),
+        "evaluate": (jax.jit(jax.vmap(forward, in_axes=(0, None))), params, xv),
+        "empty scan": (jax.jit(jax.vmap(lambda o: jax.lax.scan(lambda c, i: (c + i[0], None), 0, o)[0])), order),
+    }
+    rows.update(interleaved(items, rounds))
     t0 = time.perf_counter()
     one_step = jax.jit(jax.vmap(lambda p, v, idx, lr: train_step(p, v, idx, lr, True)))
     one_step.lower(params, v0, order[:, 0], lr).compile()

@@ -54,7 +54,7 @@ LESION = str(Path(PYTHON).with_name("lesion"))
 TIME = "/usr/bin/time"  # GNU time, for the peak RSS of each way (%M, KiB)
 
 
-def child(cmd: list[str], env: dict | None = None) -> dict:
+def child(cmd: list[str], env: dict | None = None, cwd: Path = ROOT) -> dict:
     """Run a subprocess to completion: wall seconds, peak RSS (MiB) and its stdout."""
     with tempfile.TemporaryFile() as out, tempfile.TemporaryFile() as err, \
             tempfile.NamedTemporaryFile("r") as rss:
@@ -62,7 +62,7 @@ def child(cmd: list[str], env: dict | None = None) -> dict:
         # its parent at fork, and this process holds jax; time's own footprint is a few MiB.
         t0 = time.perf_counter()
         proc = subprocess.run([TIME, "-f", "%M", "-o", rss.name, *cmd], stdout=out, stderr=err,
-                              env={**os.environ, **(env or {})}, cwd=ROOT)
+                              env={**os.environ, **(env or {})}, cwd=cwd)
         seconds = time.perf_counter() - t0
         out.seek(0), err.seek(0)
         text = out.read().decode()
@@ -85,9 +85,13 @@ def result_set_numbers(path: str, w: dict) -> dict:
             "final_val_accuracy": [float(runs["final_val_accuracy"][i]) for i in order]}
 
 
-def lesion(spec: Path, cache: Path, out: Path, fresh: bool, w: dict, extra: tuple[str, ...] = ()) -> dict:
-    cmd = [LESION, "run", str(spec), "--out", str(out), "--quiet", *extra] + (["--fresh"] if fresh else [])
-    r = child(cmd, {"LESION_CACHE_DIR": str(cache)})
+def lesion(spec: Path, cache: Path, out: Path, fresh: bool, w: dict, extra: tuple[str, ...] = (),
+           tree: Path | None = None) -> dict:
+    """``lesion run``; with ``tree``, the lesion whose ``compiler/`` and ``runtime/`` are there
+    (``python -m runtime.cli`` started in that folder, which comes first on ``sys.path``)."""
+    command = [LESION] if tree is None else [PYTHON, "-m", "runtime.cli"]
+    cmd = [*command, "run", str(spec), "--out", str(out), "--quiet", *extra] + (["--fresh"] if fresh else [])
+    r = child(cmd, {"LESION_CACHE_DIR": str(cache)}, cwd=tree or ROOT)
     r.update(result_set_numbers(r.pop("stdout").strip().splitlines()[-1], w))
     return r
 
@@ -96,6 +100,34 @@ def baseline(script: str, spec: Path) -> dict:
     r = child([PYTHON, str(HERE / script), str(spec)])
     r.update(json.loads(r.pop("stdout").strip().splitlines()[-1]))
     return r
+
+
+def export_tree(rev: str, into: Path) -> Path:
+    """``compiler/`` and ``runtime/`` of git revision ``rev`` (``.``: the working tree) in folder
+    ``into``."""
+    into.mkdir(parents=True)
+    if rev == ".":
+        for d in ("compiler", "runtime"):
+            shutil.copytree(ROOT / d, into / d, ignore=shutil.ignore_patterns("__pycache__"))
+        return into
+    tar = subprocess.run(["git", "archive", rev, "compiler", "runtime"], cwd=ROOT, check=True,
+                         capture_output=True).stdout
+    subprocess.run(["tar", "-x", "-C", str(into)], input=tar, check=True)
+    return into
+
+
+def one_thread_rates(names: list[str]) -> dict:
+    """Rates of one core: the 2048² matmul and each workload's batched hidden-layer product, in
+    a child process whose XLA:CPU pool has one thread, as each of lesion's computing processes
+    has (``runtime.environment.single_threaded_xla``)."""
+    code = ("import sys, json; sys.path[:0] = [sys.argv[1], sys.argv[2]]\n"
+            "from runtime.environment import single_threaded_xla; single_threaded_xla()\n"
+            "import bench, workload as wl\n"
+            "print(json.dumps({'matmul': bench.matmul_throughput(), 'batched': {n: bench.batched_matmul_throughput("
+            "wl.workload(bench.HERE / 'specs' / f'{n}.toml')) for n in sys.argv[3:]}}))")
+    out = subprocess.run([PYTHON, "-c", code, str(ROOT), str(HERE), *names], check=True, capture_output=True,
+                         text=True)
+    return json.loads(out.stdout.strip().splitlines()[-1])
 
 
 def matmul_throughput(n: int = 2048, reps: int = 5) -> float:
@@ -186,9 +218,13 @@ def main() -> None:
     ap.add_argument("--repeats", type=int, default=3)
     ap.add_argument("--workloads", nargs="+", default=["small", "medium", "realistic"])
     ap.add_argument("--no-torch", action="store_true", help="skip the PyTorch baseline")
+    ap.add_argument("--before", metavar="REV", help="also time lesion at git revision REV (before_cold, "
+                    "before_warm, before_warm_1w), interleaved with the others")
     args = ap.parse_args()
 
     ways = ["lesion_cold", "lesion_warm", "lesion_warm_1w", "hand_jax", "import_jax"]
+    if args.before:
+        ways += ["before_cold", "before_warm", "before_warm_1w"]
     if args.no_torch:
         print("PyTorch baseline skipped (--no-torch)", file=sys.stderr)
     elif importlib.util.find_spec("torch") is None:
@@ -200,11 +236,13 @@ def main() -> None:
     started = datetime.now(timezone.utc)
     load_before = os.getloadavg()
     gflops = [matmul_throughput()]
+    one_core = [one_thread_rates(args.workloads)]
     specs = {name: HERE / "specs" / f"{name}.toml" for name in args.workloads}
     works = {name: wl.workload(p) for name, p in specs.items()}
     samples: dict[str, dict[str, list[dict]]] = {n: {way: [] for way in ways} for n in specs}
     tmp = Path(tempfile.mkdtemp(prefix="lesion-bench-"))
     try:
+        before = export_tree(args.before, tmp / "before") if args.before else None
         for rep in range(args.repeats):
             for name, spec in specs.items():
                 w = works[name]
@@ -216,6 +254,10 @@ def main() -> None:
                         r = lesion(spec, cache, out, True, w)
                     elif way == "lesion_warm_1w":
                         r = lesion(spec, cache, out, True, w, ("--workers", "1"))
+                    elif way.startswith("before_"):
+                        fresh, extra = way != "before_cold", ("--workers", "1") if way.endswith("_1w") else ()
+                        r = lesion(spec, tmp / f"before-{cache.name}", tmp / f"before-{out.name}", fresh, w, extra,
+                                   tree=before)
                     elif way == "import_jax":
                         r = child([PYTHON, "-c", "import jax"])
                         r.pop("stdout")
@@ -228,27 +270,35 @@ def main() -> None:
     finally:
         shutil.rmtree(tmp, ignore_errors=True)
     gflops.append(matmul_throughput())
-    peak = max(gflops)
+    one_core.append(one_thread_rates(args.workloads))
+    peak, core = max(gflops), max(r["matmul"] for r in one_core)
 
     report = {"started": started.isoformat(timespec="seconds"), "machine": machine(),
               "load_average_before": load_before, "load_average_after": os.getloadavg(),
-              "repeats": args.repeats, "matmul_gflops": gflops, "workloads": {}, "small_64_runs": big}
+              "repeats": args.repeats, "matmul_gflops": gflops, "matmul_gflops_one_thread": one_core,
+              "before": args.before, "workloads": {}, "small_64_runs": big}
     lines = []
     for name, w in works.items():
         med = {way: {k: statistics.median(s[k] for s in runs) for k in ("seconds", "rss_mib")}
                for way, runs in samples[name].items()}
         cold, warm = med["lesion_cold"]["seconds"], med["lesion_warm"]["seconds"]
-        # One process with one XLA thread: the execution's rate per core.
+        # One process with one XLA thread: the execution's rate per core, against one core's.
         exec_s = statistics.median(s["execution_seconds"] for s in samples[name]["lesion_warm_1w"])
         compile_s = statistics.median(s["compile_seconds"] for s in samples[name]["lesion_cold"])
         flops = wl.matmul_flops(w)
         limit = flops["total"] / (peak * 1e9)
-        batched = batched_matmul_throughput(w)
+        core_limit = flops["total"] / (core * 1e9)
+        batched = max(r["batched"][name] for r in one_core)
         entry = {"workload": w, "flops": flops, "physical_limit_seconds": limit,
+                 "one_core_limit_seconds": core_limit,
                  "lesion_execution_seconds": exec_s, "lesion_cold_compile_seconds": compile_s,
-                 "lesion_fraction_of_limit_execution": limit / exec_s,
+                 "lesion_fraction_of_one_core_execution": core_limit / exec_s,
                  "lesion_cold_fraction_of_limit_end_to_end": limit / cold,
-                 "batched_hidden_matmul_gflops": batched, "ways": {}}
+                 "batched_hidden_matmul_gflops_one_thread": batched, "ways": {}}
+        if args.before:
+            before_s = statistics.median(s["execution_seconds"] for s in samples[name]["before_warm_1w"])
+            entry["before_execution_seconds"] = before_s
+            entry["before_fraction_of_one_core_execution"] = core_limit / before_s
         lines.append(f"\n{name}: {len(w['learning_rates']) * len(w['seeds'])} runs, widths {w['widths']}, "
                      f"{w['n_train']} training rows, batch {w['batch_size']}, {w['epochs']} epochs; "
                      f"{flops['total'] / 1e9:.1f} GFLOP")
@@ -265,15 +315,19 @@ def main() -> None:
                          f"{warm / m['seconds']:10.3f}  " + (" ".join(f"{v:.4f}" for v in losses) or "(trains nothing)"))
         lines.append(f"  {os.cpu_count()} workers (the default) against 1: "
                      f"{med['lesion_warm_1w']['seconds'] / warm:.2f}× (warm, end to end)")
-        lines.append(f"  physical limit {limit:.3f} s ({peak:.0f} GFLOP/s); lesion execution {exec_s:.2f} s = "
-                     f"{100 * limit / exec_s:.0f} % of it; cold compile {compile_s:.2f} s; "
-                     f"end to end cold {100 * limit / cold:.1f} %")
-        lines.append(f"  hidden-layer product batched over {lane_width(w)} lanes: {batched:.0f} GFLOP/s = {100 * batched / peak:.0f} % "
-                     f"of the 2048² rate (a ceiling for lesion's execution fraction)")
+        lines.append(f"  physical limit {limit:.3f} s ({peak:.0f} GFLOP/s, every core); end to end cold "
+                     f"{100 * limit / cold:.1f} %, warm {100 * limit / warm:.1f} % of it; cold compile {compile_s:.2f} s")
+        lines.append(f"  one core: limit {core_limit:.3f} s ({core:.0f} GFLOP/s, one XLA thread); lesion execution "
+                     f"(--workers 1) {exec_s:.2f} s = {100 * core_limit / exec_s:.0f} % of it"
+                     + (f"; {args.before}: {before_s:.2f} s = {100 * core_limit / before_s:.0f} %, "
+                        f"this ÷ before {exec_s / before_s:.3f}" if args.before else ""))
+        lines.append(f"  hidden-layer product batched over {lane_width(w)} lanes, one thread: {batched:.0f} GFLOP/s = "
+                     f"{100 * batched / core:.0f} % of one core's 2048² rate (a ceiling for lesion's execution fraction)")
         report["workloads"][name] = entry
     if big:
         lines.append(f"\nsmall study with 64 runs: {big['seconds']:.1f} s, peak RSS {big['rss_mib']:.0f} MiB")
-    lines.append(f"\nmatmul {', '.join(f'{g:.0f}' for g in gflops)} GFLOP/s; load average before "
+    singles = ", ".join(f"{r['matmul']:.0f}" for r in one_core)
+    lines.append(f"\nmatmul {', '.join(f'{g:.0f}' for g in gflops)} GFLOP/s (one thread: {singles}); load average before "
                  f"{load_before[0]:.1f}, after {os.getloadavg()[0]:.1f} ({os.cpu_count()} cores)")
     text = "\n".join(lines)
     print(text)

@@ -43,3 +43,4 @@ def test_zero_dropout_rate_without_masks_is_bit_identical(kind):
     assert digest_zero == digest
     for name, values in metrics.items():
         assert values.tobytes() == metrics_zero[name].tobytes(), name
+

@@ -176,13 +176,18 @@ def test_conv_network_layout_shapes_and_cost(norm, dropout):
         assert z.shape == (5, 3) and np.all(np.isfinite(z))
         assert jax.tree.structure(new_state) == jax.tree.structure(state)
     counted = sum(leaf.size for leaf in jax.tree.leaves(params))
-    cost = model.COSTS["conv"](spec.ConvModel(kind="conv", blocks=blocks, hidden=[7]), (8, 8, 1), 3)
+    cost = model.FAMILIES["conv"].cost(in_shape=(8, 8, 1), out_width=3, blocks=blocks, pooling="max", hidden=[7],
+                                       activation="relu", init="he_normal",
+                                       dropout=regularization.REGISTRY[dropout](0.2))
     # The cost counts 3 values per unit (bias, γ, β) whether or not the layer has them all: the
     # output layer's 3 units have a bias only.
     units = 4 + 6 + 7
-    assert cost.params == counted + {"none": 2 * units, "layer": 0, "batch": units}[norm] + 2 * 3
+    assert cost.parameters == counted + {"none": 2 * units, "layer": 0, "batch": units}[norm] + 2 * 3
     assert cost.macs == 8 * 8 * 9 * 4 + 4 * 4 * 9 * 4 * 6 + 24 * 7 + 7 * 3  # positions × window × channels
     assert cost.layers == 4
+    # DropConnect masks the dense layers' weights only (Wan et al. 2013 define it on a fully
+    # connected layer), counted as the MLP counts its own: 3 values per unit besides.
+    assert cost.masks == (24 * 7 + 3 * 7 + 7 * 3 + 3 * 3 if dropout == "connect" else 0)
 
 
 def test_conv_kernels_initialize_with_window_fans():
@@ -223,7 +228,7 @@ def test_the_mlp_flattens_shaped_examples_in_c_order():
 
 def test_families_and_tables_match_the_spec():
     kinds = {typing.get_args(m.model_fields["kind"].annotation)[0] for m in (spec.Model, spec.ConvModel)}
-    assert kinds == set(model.FAMILIES) == set(model.COSTS)
+    assert kinds == set(model.FAMILIES)
     assert set(typing.get_args(spec.ConvModel.model_fields["activation"].annotation)) == set(model.ACTIVATIONS)
     assert set(typing.get_args(spec.ConvModel.model_fields["init"].annotation)) == set(model.INITIALIZERS)
 
@@ -242,5 +247,23 @@ def test_the_guards_multiply_accumulates_are_xlas_own_count(padding, low):
     forward = jax.jit(lambda p, x: net.apply(p, state, x, jax.random.key(0), None, False)[0])
     analysis = forward.lower(params, x).compile().cost_analysis()
     flops = (analysis[0] if isinstance(analysis, list) else analysis)["flops"]
-    cost = model.COSTS["conv"](spec.ConvModel(kind="conv", blocks=blocks, hidden=[32]), (14, 14, 1), 10)
+    cost = model.conv_cost(in_shape=(14, 14, 1), out_width=10, blocks=blocks, hidden=[32],
+                           dropout=regularization.inverted(0.0))
     assert low <= flops / (2 * 16 * cost.macs) <= 1.15, flops / (2 * 16 * cost.macs)
+
+
+def test_the_spec_check_and_the_network_agree_on_what_fits():
+    # The spec's check (ConvModel.problems) and the network's shapes are one arithmetic
+    # (compiler.shapes): a block that leaves no position is refused where the shape is declared,
+    # at its own key, and a channel budget at its depth.
+    base = {"study": {"name": "t"}, "data": {"generator": "glyphs", "shape": [8, 8, 1]}}
+    deep = {"kind": "conv", "blocks": [{"channels": 4, "pool": 2}] * 4}
+    with pytest.raises(ValueError, match=r"@model\.blocks\.3: a block of kernel 3"):
+        spec.Spec.model_validate({**base, "model": deep})
+    with pytest.raises(ValueError, match=r"@model\.blocks\.depth: block 4 of 4: "):
+        spec.Spec.model_validate({**base, "model": {"kind": "conv", "blocks": {"channels": 16, "depth": 4,
+                                                                                  "pool": 2}}})
+    fits = spec.Spec.model_validate({**base, "model": {**deep, "blocks": deep["blocks"][:3]}})
+    assert model.feature_shapes((8, 8, 1), fits.model.resolved_blocks)[-1] == (1, 1, 4)
+    with pytest.raises(ValueError, match=r"@model\.kind: 'conv' needs examples of shape"):
+        spec.Spec.model_validate({"study": {"name": "t"}, "data": {"generator": "blobs"}, "model": {"kind": "conv"}})

@@ -9,84 +9,33 @@ factory's default of 1.0 under the same variant hash.
 import copy
 import inspect
 import pathlib
+import sys
 import typing
 
 import jax
 import jax.numpy as jnp
 import pytest
 
-from compiler import build, divergences, model, normalization, optimizers, regularization
+from compiler import build, model
 from compiler.data import load_data
 from compiler.expand import expand
 from compiler.hashing import KNOBS, knobs_of, models_in, sections, structure_key, variant_payload
 from compiler.spec import Spec, Strict
 
-# Between them these use every kind of every family, with non-default values where a field
-# has one to change (a field left at its default would hide a factory falling back on its own).
+sys.path.insert(0, str(pathlib.Path(__file__).parent))  # the suite imports in importlib mode
+import components  # noqa: E402
+
+# Between them these use every row of the component table: every kind of every family, with
+# non-default values where a field has one to change.
 BASES = {
-    "kl-batch-sgd": {
-        "data": {"generator": "spirals", "samples": 64, "features": 3, "classes": 2},
-        "model": {"hidden": [5, 4], "activation": "tanh", "init": "glorot_uniform"},
-        "divergence": {"kind": "kl", "label_smoothing": 0.1},
-        "normalization": {"kind": "batch", "momentum": 0.8, "epsilon": 1e-3},
-        "regularization": {"weight_decay": 1e-3, "dropout": {"kind": "inverted", "rate": 0.1}},
-        "optimizer": {"kind": "sgd", "learning_rate": 0.1, "momentum": 0.9, "nesterov": True,
-                      "schedule": {"kind": "warmup_cosine", "warmup_epochs": 2, "final_fraction": 0.2}},
-        "training": {"epochs": 3, "batch_size": 16, "drop_last": False},
-    },
-    "huber-layer-adam": {
-        "data": {"generator": "friedman1", "samples": 64, "features": 5},
-        "model": {"hidden": [4]},
-        "divergence": {"kind": "huber", "delta": 0.05},
-        "normalization": {"kind": "layer", "epsilon": 1e-4},
-        "regularization": {"dropout": {"kind": "connect", "rate": 0.2}},
-        "optimizer": {"kind": "adam", "learning_rate": 0.01, "b1": 0.8, "b2": 0.99, "eps": 1e-7,
-                      "schedule": {"kind": "cosine", "final_fraction": 0.1}},
-        "training": {"epochs": 2, "batch_size": 16},
-    },
-    "l2-none-rmsprop": {
-        "data": {"generator": "sines", "samples": 64, "features": 3},
-        "model": {"hidden": [4]},
-        "divergence": {"kind": "l2"},
-        "normalization": {"kind": "none"},
-        "regularization": {"dropout": {"kind": "scaled", "rate": 0.3}},
-        "optimizer": {"kind": "rmsprop", "learning_rate": 0.01, "decay": 0.8, "eps": 1e-6, "momentum": 0.5,
-                      "schedule": {"kind": "exponential", "rate": 0.9}},
-        "training": {"epochs": 2, "batch_size": 16},
-    },
-    "bce-adamw": {
-        "data": {"generator": "blobs", "samples": 64, "features": 3, "classes": 2},
-        "model": {"hidden": []},
-        "divergence": {"kind": "bce"},
-        "regularization": {"weight_decay": 0.01, "decoupled": True},
-        "optimizer": {"kind": "adamw", "learning_rate": 0.01, "schedule": {"kind": "constant"}},
-        "training": {"epochs": 2, "batch_size": 16},
-    },
-    "conv-spatial": {
-        "data": {"generator": "glyphs", "samples": 64, "shape": [6, 6, 2], "classes": 3},
-        "model": {"kind": "conv", "blocks": [{"channels": 3, "kernel": 2, "stride": 1, "padding": "valid", "pool": 2}],
-                  "pooling": "average", "hidden": [4], "activation": "gelu", "init": "he_uniform"},
-        "normalization": {"kind": "batch"},
-        "regularization": {"dropout": {"kind": "spatial", "rate": 0.2}},
-        "optimizer": {"kind": "adam", "learning_rate": 0.01},
-        "training": {"epochs": 2, "batch_size": 16},
-    },
+    **components.bases(),
     # Only hashed, never trained: the data file does not exist.
     "file-data": {
         "data": {"kind": "file", "path": "table.csv", "target": "label", "features": ["a", "b"]},
     },
 }
 TRAINED = [name for name in BASES if name != "file-data"]
-
-# The family registries and the spec section each is built from.
-REGISTRIES = {
-    "model": model.FAMILIES,
-    "divergence": divergences.REGISTRY,
-    "normalization": normalization.REGISTRY,
-    "regularization.dropout": regularization.REGISTRY,
-    "optimizer": optimizers.REGISTRY,
-    "optimizer.schedule": optimizers.SCHEDULES,
-}
+REGISTRIES = {family: registry for family, (_, registry) in components.FAMILIES.items()}
 
 
 def _variant(raw: dict) -> Spec:
@@ -139,11 +88,13 @@ def factory_calls():
         calls = []
         for section, registry in REGISTRIES.items():
             for kind, real in list(registry.items()):
-                def recorder(*args, _section=section, _kind=kind, _real=real, **kwargs):
+                factory = real.network if isinstance(real, model.Family) else real
+
+                def recorder(*args, _section=section, _kind=kind, _real=factory, **kwargs):
                     given = inspect.signature(_real).bind_partial(*args, **kwargs).arguments
                     calls.append((_section, _kind, dict(given)))
                     return _real(*args, **kwargs)
-                mp.setitem(registry, kind, recorder)
+                mp.setitem(registry, kind, real._replace(network=recorder) if factory is not real else recorder)
         for name in TRAINED:
             v = _variant(BASES[name])
             ds = load_data(v, pathlib.Path("."))

@@ -1,19 +1,10 @@
 """Batch and layer normalization against the formulas of their papers."""
 
-import typing
-
 import jax
 import jax.numpy as jnp
 import numpy as np
-import pytest
 
-from compiler import normalization, spec
-
-
-def test_registry_matches_spec_kinds():
-    kinds = {typing.get_args(m.model_fields["kind"].annotation)[0]
-             for m in typing.get_args(typing.get_args(spec.Normalization)[0])}
-    assert kinds == set(normalization.REGISTRY)
+from compiler import normalization
 
 
 def _batch(rng, m=16, width=5):
@@ -162,25 +153,6 @@ def test_layer_norm_is_ba_et_al_eq_4():
     for train in (True, False):
         y, _ = ln.apply(params, state, jnp.asarray(x), None, train)
         np.testing.assert_allclose(y, ref, rtol=1e-5, atol=1e-5)
-
-
-@pytest.mark.parametrize("kind", sorted(normalization.REGISTRY))
-def test_shared_shapes_dtype_jit_and_both_modes(kind):
-    norm = normalization.REGISTRY[kind]()
-    params, state = norm.init(4)
-    x = jnp.asarray(_batch(np.random.default_rng(6), 10, 4))
-    for train in (True, False):
-        y, new_state = norm.apply(params, state, x, None, train)
-        assert y.shape == x.shape and y.dtype == jnp.float32
-        yj, _ = jax.jit(norm.apply, static_argnums=4)(params, state, x, None, train)
-        np.testing.assert_allclose(y, yj, rtol=1e-6, atol=1e-6)
-        assert jax.tree.structure(new_state) == jax.tree.structure(state)
-    # batch and layer norm standardize in training mode (Ioffe & Szegedy 2015; Ba et al. 2016)
-    if kind != "none":
-        axis = 0 if kind == "batch" else 1
-        y, _ = norm.apply(params, state, x, None, True)
-        np.testing.assert_allclose(np.asarray(y).mean(axis), 0, atol=1e-5)
-        np.testing.assert_allclose(np.asarray(y).std(axis), 1, atol=1e-3)
 
 
 def test_diagnose_names_the_batch_normalized_layer_whose_gradient_collapsed():

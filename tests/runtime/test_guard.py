@@ -23,7 +23,7 @@ from runtime.store import open_result_set
 ROOT = Path(__file__).parents[2]
 
 
-def _grid(samples, features, hidden, classes, batch, epochs):
+def _grid(samples, features, hidden, classes, batch, epochs, lanes=None):
     spec = Spec.model_validate({
         "study": {"name": "timing", "seeds": 4},
         "data": {"generator": "blobs", "samples": samples, "features": features, "classes": classes},
@@ -33,7 +33,7 @@ def _grid(samples, features, hidden, classes, batch, epochs):
         "ablation": {"axis": [{"key": "optimizer.learning_rate", "values": [0.01, 0.03, 0.1, 0.3]}]},
     })
     variants = expand(spec)
-    groups = plan(variants, spec.study.seed_list)
+    groups = plan(variants, spec.study.seed_list, lanes=lanes)
     return groups, runner.datasets_for(groups, ROOT)
 
 
@@ -48,6 +48,33 @@ def test_time_model_is_within_a_factor_two_of_the_measured_grids(shape, measured
     assert [g.lane_width for g in groups] == [16]
     seconds = guard.estimate(groups, data).seconds - guard.COMPILE_SECONDS
     assert measured / 2 <= seconds <= measured * 2, seconds
+
+
+def test_groups_are_handed_out_to_the_first_free_worker():
+    # List scheduling (Graham 1966): jobs in order, each to the worker that is free first.
+    assert guard.schedule([3.0, 1.0, 1.0, 1.0], 2) == 3.0
+    assert guard.schedule([1.0, 1.0, 1.0], 1) == 3.0
+    assert guard.schedule([2.0, 2.0], 8) == 2.0
+
+
+def test_the_time_estimate_with_workers_is_the_busiest_workers_wall_time():
+    # The 16-run grid at 4 lanes: 4 groups of one structure. One process compiles once and runs
+    # the groups one after another; on 2 workers each worker compiles (the cache is empty when
+    # both start) and runs 2 groups; with the program cached, each worker loads it instead.
+    groups, data = _grid(2048, 16, [32, 32], 4, 64, 20, lanes=4)
+    assert len(groups) == 4
+    cal = guard.Calibration(compile_seconds=2.0, load_seconds=0.1, execute_ratio=1.0, group_seconds=0.05)
+    run = guard.model_seconds(groups[0], data[groups[0].group_id])
+    one = guard.estimate(groups, data, calibration=cal)
+    assert one.seconds == pytest.approx(2.0 + 4 * run + 4 * 0.05) and one.workers == 1
+    two = guard.estimate(groups, data, calibration=cal, workers=2)
+    assert two.seconds == pytest.approx(2.0 + 2 * run + 4 * 0.05) and two.workers == 2
+    loads = {g.group_id: "load" for g in groups}
+    cached = guard.estimate(groups, data, calibration=cal, workers=2, preparation=loads)
+    assert cached.seconds == pytest.approx(0.1 + 2 * run + 4 * 0.05)
+    assert guard.estimate(groups, data, calibration=cal, workers=16).seconds == pytest.approx(2.0 + run + 4 * 0.05)
+    # One group stays in this process whatever the workers (runtime.workers).
+    assert guard.estimate(groups[:1], data, calibration=cal, workers=2).workers == 1
 
 
 def test_per_lane_memory_grows_with_the_validation_split():

@@ -133,27 +133,35 @@ def one_and_two(sensitive, tmp_path_factory):
     tmp = tmp_path_factory.mktemp("workers")
     loaded = load_study(sensitive)
     one = run_study(loaded, tmp / "one", lanes=2, workers=1)
-    events = []
+    events, infos = [], []
     two = run_study(loaded, tmp / "two", lanes=2, workers=2,
-                    progress=lambda event, **info: events.append(event))
-    return one, two, events
+                    progress=lambda event, **info: (events.append(event), infos.append(info)))
+    return one, two, events, infos
 
 
 def test_two_workers_compute_the_bits_of_one(one_and_two, same_bits):
-    one, two, _ = one_and_two
+    one, two, _, _ = one_and_two
     assert one.computed == two.computed == 4 and one.groups == two.groups == 2
     same_bits(open_result_set(one.path), open_result_set(two.path))
 
 
 def test_runs_from_workers_record_a_one_thread_pool(one_and_two):
-    _, two, _ = one_and_two
+    _, two, _, _ = one_and_two
     envs = {json.loads(e)["xla_cpu_threads"] for e in open_result_set(two.path).runs.column("environment").to_pylist()}
     assert envs == {1}
 
 
 def test_workers_report_each_group_when_it_is_back(one_and_two):
-    _, _, events = one_and_two
+    _, _, events, _ = one_and_two
     assert events.count("group") == events.count("stored") == 2
+
+
+def test_the_printed_estimate_is_for_the_workers_the_run_uses(one_and_two):
+    # Two groups of one structure on two workers: both compile side by side, so the wall time
+    # is one compile and one group's execution, not the sum over groups.
+    _, _, events, infos = one_and_two
+    estimate = infos[events.index("plan")]["estimate"]
+    assert estimate.workers == 2 and estimate.describe().endswith(" on 2 workers")
 
 
 def test_an_interrupt_keeps_what_was_stored_and_ends_the_workers(tiny_spec, tmp_path):
