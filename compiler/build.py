@@ -40,8 +40,8 @@ values, the other fields as Python values (what a knob-free section field change
 
 ``Program.zero_knobs`` are the knobs that are 0 in every variant the program was built for;
 ``pack`` refuses lanes where one is not. Where a zero knob makes a component exactly the
-identity, the program leaves that work out: a dropout rate of 0 on activations (inverted or
-scaled) keeps every unit with scale 1, so no masks are drawn — the same bits, without a threefry
+identity, the program leaves that work out: a dropout rate of 0 on activations (inverted,
+scaled or spatial) keeps every unit with scale 1, so no masks are drawn — the same bits, without a threefry
 draw the size of every hidden activation per step. DropConnect keeps its masks: its per-example
 product is a different computation than ``x W``.
 
@@ -179,7 +179,8 @@ def _all_finite(tree) -> jax.Array:
 
 
 def fit_standardization(x_train: jax.Array) -> tuple[jax.Array, jax.Array]:
-    """Per-feature mean and scale of the training rows ``[n, features]`` (float32).
+    """Per-feature mean and scale of the training rows ``[n, *shape]`` (float32): one per value
+    of an example (each pixel of each channel of an image).
 
     The scale is the population standard deviation, except for a feature that is constant up to
     rounding: its scale is 1, so it is only centred. A feature constant in the training rows has
@@ -241,7 +242,7 @@ def compile_structure(variants: Sequence[Spec], dataset: Dataset) -> Program:
         raise ValueError(f"variants of several structures in one program: {sorted({structure_key(v) for v in variants})}")
     knob_names = tuple(knob_vector(variant))
     zero = zero_knobs(variants)
-    n, features = dataset.x.shape
+    n, shape = dataset.x.shape[0], dataset.x.shape[1:]
     classification = dataset.task == "classification"
     n_train, n_val, n_test = split_sizes(n, variant.data.validation, variant.data.test)
     epochs = variant.training.epochs
@@ -251,7 +252,7 @@ def compile_structure(variants: Sequence[Spec], dataset: Dataset) -> Program:
     decoupled = variant.regularization.decoupled
     opt = variant.optimizer
     widths = list(variant.model.widths)
-    names = model.layer_names(len(widths) + 1)
+    names = model.layer_names(variant.model.hidden_layers + 1)
     fit_scale = variant.data.standardize
     def parts(knobs) -> _Parts:
         divergence = _component(divergences.REGISTRY, variant.divergence, "divergence.", knobs)
@@ -296,8 +297,8 @@ def compile_structure(variants: Sequence[Spec], dataset: Dataset) -> Program:
         # validation rows are what they always were.
         train_idx, val_idx, test_idx = order[:n_train], order[n_train:n_train + n_val], order[n_train + n_val:]
         mean, scale = fit_standardization(data_x[train_idx]) if fit_scale else \
-            (jnp.zeros((features,), jnp.float32), jnp.ones((features,), jnp.float32))
-        params, state = p.network.init(jax.random.fold_in(key, INIT), features)
+            (jnp.zeros(shape, jnp.float32), jnp.ones(shape, jnp.float32))
+        params, state = p.network.init(jax.random.fold_in(key, INIT), shape)
         return Carry(params, state, p.tx.init(params), dict(knobs), jnp.int32(0),
                      train_idx.astype(jnp.int32), val_idx.astype(jnp.int32), test_idx.astype(jnp.int32), mean,
                      scale, jax.random.fold_in(key, SHUFFLE),

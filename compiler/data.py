@@ -4,7 +4,9 @@ Contract: :func:`load_data` ``(variant, base_dir) -> Dataset`` returns the *whol
 un-split and un-standardized: every lane of a compiled group shares it, and each run draws its own
 train/validation split (and fits standardization on its training rows) inside the program.
 
-- ``x``: float32 ``[n, features]``; ``y``: int32 ``[n]`` class indices ``0..K−1`` (labels mapped in
+- ``x``: float32 ``[n, *shape]``: ``[n, features]`` for vectors, ``[n, height, width, channels]``
+  or ``[n, length, channels]`` for images and signals (``data.shape``, an NPZ array's own shape,
+  the glyphs generator); ``y``: int32 ``[n]`` class indices ``0..K−1`` (labels mapped in
   sorted order) or float32 ``[n, targets]``;
 - ``data_hash``: SHA-256 hex of the file's bytes, or of the generated arrays (dtype, shape and
   bytes), so a replay can check it reads the same data.
@@ -34,10 +36,10 @@ import numpy as np
 
 from compiler.errors import Problem, SpecError, UserError, dotted
 from compiler.locate import line_of
-from compiler.spec import FileData, Spec, classes_of, metric_problem, split_problems, task_of, train_size
+from compiler.spec import FileData, Spec, classes_of, example_shape, metric_problem, split_problems, task_of, train_size
 
 __all__ = ["Dataset", "DataError", "load_data", "FileInfo", "Column", "inspect_file", "load_bytes", "file_problems",
-           "check_files", "locate", "GENERATORS", "rings", "spirals", "blobs", "friedman1",
+           "check_files", "locate", "GENERATORS", "rings", "spirals", "blobs", "glyphs", "friedman1",
            "sines", "hash_arrays"]
 
 
@@ -123,7 +125,41 @@ def sines(rng, samples, features, classes, noise):
     return x, y[:, None]
 
 
-GENERATORS: dict[str, Callable] = {"rings": rings, "spirals": spirals, "blobs": blobs,
+def glyphs(rng, samples, shape, classes, noise):
+    """Shaped examples for convolutional networks, ``shape`` channels last. Images
+    (``[height, width, channels]``): class ``k`` is a bright bar at angle ``πk/K`` through a
+    point jittered around the centre, of a random length between a third and two thirds of the
+    image and a soft edge (a Gaussian profile of 0.8 pixels across it). Signals (``[length,
+    channels]``): class ``k`` is a wave packet of ``k + 1`` cycles over a random stretch of a
+    third of the length, at a random place. Each channel shows the pattern at its own gain in
+    ``[0.5, 1.5]``; Gaussian noise of standard deviation ``noise`` is added to every value. The
+    class lives in the pattern's orientation or frequency, not in where it is: what a
+    convolution's shared weights find anywhere."""
+    label = _balanced_labels(rng, samples, classes)
+    spatial, channels = tuple(shape[:-1]), shape[-1]
+    if len(spatial) == 2:
+        h, w = spatial
+        yy, xx = np.meshgrid(np.arange(h) - (h - 1) / 2, np.arange(w) - (w - 1) / 2, indexing="ij")
+        angle = np.pi * label / classes
+        centre = rng.uniform(-0.15, 0.15, (samples, 2)) * np.array([h, w])
+        half = rng.uniform(1 / 6, 1 / 3, samples) * min(h, w)
+        dy, dx = yy[None] - centre[:, 0, None, None], xx[None] - centre[:, 1, None, None]
+        along = dx * np.cos(angle)[:, None, None] + dy * np.sin(angle)[:, None, None]
+        across = -dx * np.sin(angle)[:, None, None] + dy * np.cos(angle)[:, None, None]
+        pattern = np.exp(-0.5 * (across / 0.8) ** 2) * (np.abs(along) <= half[:, None, None])
+    else:
+        (length,) = spatial
+        t = np.arange(length)[None]
+        span = length / 3
+        start = rng.uniform(0, length - span, samples)[:, None]
+        inside = (t >= start) & (t < start + span)
+        pattern = np.sin(2 * np.pi * (label[:, None] + 1) * (t - start) / span) * inside
+    gain = rng.uniform(0.5, 1.5, (samples, channels))
+    x = pattern[..., None] * gain.reshape((samples,) + (1,) * len(spatial) + (channels,))
+    return x + noise * rng.standard_normal(x.shape), label
+
+
+GENERATORS: dict[str, Callable] = {"rings": rings, "spirals": spirals, "blobs": blobs, "glyphs": glyphs,
                                    "friedman1": friedman1, "sines": sines}
 
 
@@ -242,7 +278,8 @@ def load_bytes(info: FileInfo, data: FileData) -> int:
     return info.stored_bytes + _LOAD_BYTES_PER_VALUE * rows * width
 
 
-def _column_problems(name: str, column: str, col: Column, rows: int | None, numeric: bool) -> list[str]:
+def _column_problems(name: str, column: str, col: Column, rows: int | None, numeric: bool,
+                     column_is_target: bool = False) -> list[str]:
     if col.dtype.startswith("complex"):
         return [f"column '{column}' holds complex numbers (dtype {col.dtype}) in {name}; their imaginary part "
                 "would be lost: store the real and imaginary parts as two columns"]
@@ -252,9 +289,9 @@ def _column_problems(name: str, column: str, col: Column, rows: int | None, nume
     if numeric and not col.numeric:
         return [f"column '{column}' is not numeric (dtype {col.dtype}) in {name}; encode it as numbers or leave "
                 "it out of data.features"]
-    if len(col.shape) > 2 or (rows is not None and col.shape and col.shape[0] != rows):
+    if (len(col.shape) > 2 and column_is_target) or (rows is not None and col.shape and col.shape[0] != rows):
         return [f"column '{column}' has shape {col.shape} in {name}, expected {rows} rows like the target "
-                "(and at most 2 dimensions)"]
+                f"(and at most 2 dimensions{'' if column_is_target else ' for the target'})"]
     return []
 
 
@@ -276,7 +313,7 @@ def file_problems(variant: Spec, info: FileInfo) -> list[tuple[tuple, str]]:
         missing(("data", "target"), "target", data.target)
     else:
         out += [(("data", "target"), m) for m in
-                _column_problems(name, data.target, target, info.rows, data.task == "regression")]
+                _column_problems(name, data.target, target, info.rows, data.task == "regression", True)]
         if data.task == "classification" and len(target.shape) > 1:
             out.append((("data", "target"), f"class target '{data.target}' must be one column in {name} "
                                             f"(shape {target.shape}); set data.task = \"regression\" for vectors"))
@@ -291,6 +328,12 @@ def file_problems(variant: Spec, info: FileInfo) -> list[tuple[tuple, str]]:
             missing(loc, "feature", column)
         else:
             out += [(loc, m) for m in _column_problems(name, column, columns[column], info.rows, True)]
+    found = [columns[c] for c, _ in names if c in columns]
+    if data.shape is not None and len(found) == len(names) and all(c.shape for c in found):
+        width = sum(math.prod(c.shape[1:]) for c in found)
+        if math.prod(data.shape) != width:
+            out.append((("data", "shape"), f"{data.shape} holds {math.prod(data.shape)} values but a row of {name} "
+                                           f"has {width} feature values; give a shape whose sizes multiply to {width}"))
     if info.rows is not None:
         n, n_train = info.rows, train_size(info.rows, data.validation, data.test)
         if not data.test and (n_train < 1 or n_train == n):
@@ -413,6 +456,13 @@ def _load_file(variant: Spec, base_dir: pathlib.Path):
             loc, message = problems[0]
             raise DataError(f"{path}: {dotted(loc)}: {message}")
     x = np.concatenate([_numeric(path, name, columns[name]).reshape(n, -1) for name in names], axis=1)
+    if data.shape is not None:
+        if math.prod(data.shape) != x.shape[1]:
+            raise DataError(f"{path}: data.shape: {data.shape} holds {math.prod(data.shape)} values but a row has "
+                            f"{x.shape[1]} feature values; give a shape whose sizes multiply to {x.shape[1]}")
+        x = x.reshape(n, *data.shape)
+    elif len(names) == 1 and columns[names[0]].ndim > 2:  # an NPZ array of images or signals
+        x = x.reshape(columns[names[0]].shape)
     if data.task == "classification":
         if np.issubdtype(target.dtype, np.floating) and not np.all(np.isfinite(target)):
             raise DataError(f"{path}: target column '{data.target}' has NaN or infinite values")
@@ -442,7 +492,9 @@ def load_data(variant: Spec, base_dir: pathlib.Path) -> Dataset:
         x, y, classes, data_hash = _load_file(variant, base_dir)
     else:
         rng = np.random.Generator(np.random.PCG64(data.seed))
-        x, y = GENERATORS[data.generator](rng, data.samples, data.features, data.classes, data.noise)
+        shape = example_shape(data)
+        size = shape if len(shape) > 1 else data.features
+        x, y = GENERATORS[data.generator](rng, data.samples, size, data.classes, data.noise)
         classes = classes_of(data)
         data_hash = None
     x = np.ascontiguousarray(x, np.float32)

@@ -36,7 +36,7 @@ from compiler.hashing import identity, knobs_of
 from compiler.labels import BASE_LABEL, axis_label, axis_names, format_value, grid_label, label_parts
 from compiler.paths import field_paths
 from compiler.problems import pydantic_problems
-from compiler.spec import NeuronBudget, Spec
+from compiler.spec import ChannelBudget, NeuronBudget, Spec
 
 __all__ = ["Variant", "expand", "arms", "max_variants", "MAX_VARIANTS"]
 
@@ -50,7 +50,7 @@ class Variant:
     index: int
     label: str
     changes: dict[str, Any]      # dotted key -> value, empty for the base
-    spec: Spec                   # resolved: no ablation, model.hidden an explicit list
+    spec: Spec                   # resolved: no ablation, model.hidden and model.blocks explicit lists
     hash: str = field(default="")
     structure: str = field(default="")
     # With [ablation.tune]: the arm this run of the tuning belongs to (an untuned variant) and the
@@ -96,9 +96,11 @@ def _deep_set(tree: dict, key: str, value: Any) -> None:
 # ── expansion ───────────────────────────────────────────────────────────────────────────────────
 def _resolve(raw: dict) -> Spec:
     spec = Spec.model_validate(raw)
-    hidden = spec.model.hidden
-    if isinstance(hidden, NeuronBudget):
-        spec = spec.model_copy(update={"model": spec.model.model_copy(update={"hidden": hidden.widths})})
+    net = spec.model
+    if isinstance(getattr(net, "hidden", None), NeuronBudget):
+        spec = spec.model_copy(update={"model": net.model_copy(update={"hidden": net.hidden.widths})})
+    if isinstance(getattr(net, "blocks", None), ChannelBudget):
+        spec = spec.model_copy(update={"model": net.model_copy(update={"blocks": net.blocks.blocks})})
     return spec
 
 

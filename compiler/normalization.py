@@ -5,9 +5,10 @@ scalars) and returns a :class:`Normalizer` (a stax-like pair plus one flag):
 
 - ``init(width) -> (params, state)``: learnable parameters (γ, β) and non-learned running
   statistics, both dicts of f32 arrays (empty when the layer has none);
-- ``apply(params, state, x, mask, train) -> (y, new_state)``: ``x`` is ``[batch, width]``;
-  ``mask`` is ``f32[batch]`` (1 for a real example, 0 for padding) and restricts batch
-  statistics to the real examples; ``train`` is a Python bool choosing the mode;
+- ``apply(params, state, x, mask, train) -> (y, new_state)``: ``x`` is ``[batch, width]`` or a
+  feature map ``[batch, *positions, channels]`` (channels last, ``width`` of them); ``mask`` is
+  ``f32[batch]`` (1 for a real example, 0 for padding) and restricts batch statistics to the
+  real examples; ``train`` is a Python bool choosing the mode;
 - ``uses_bias``: False when a preceding affine bias cannot change the output (it is then
   omitted, not merely left untrained).
 
@@ -22,7 +23,8 @@ from typing import Callable, NamedTuple
 import jax.numpy as jnp
 import numpy as np
 
-__all__ = ["Normalizer", "none", "batch", "layer", "REGISTRY", "diagnose", "BN_COLLAPSE_RATIO"]
+__all__ = ["Normalizer", "none", "batch", "layer", "batch_axes", "layer_axes", "REGISTRY", "diagnose",
+           "BN_COLLAPSE_RATIO"]
 
 # A batch-normalized layer whose gradient norm falls below this fraction of the output layer's
 # has stopped learning: its batch statistics have (nearly) no spread left.
@@ -40,6 +42,19 @@ def none() -> Normalizer:
     return Normalizer(lambda width: ({}, {}), lambda params, state, x, mask, train: (x, state), True)
 
 
+def batch_axes(rank: int) -> tuple[int, ...]:
+    """Axes of batch statistics: the batch and every position, so each channel (the last axis)
+    has one mean and variance (Ioffe & Szegedy 2015, §3.2: for convolutional layers the
+    statistics are shared by every location of a feature map)."""
+    return tuple(range(rank - 1))
+
+
+def layer_axes(rank: int) -> tuple[int, ...]:
+    """Axes of layer statistics: every axis but the batch, the units of a dense layer or the
+    positions and channels of a feature map (Ba, Kiros & Hinton 2016, §3 and §6.7)."""
+    return tuple(range(1, rank))
+
+
 def _affine_params(width):
     return {"gamma": jnp.ones((width,), jnp.float32), "beta": jnp.zeros((width,), jnp.float32)}
 
@@ -47,7 +62,8 @@ def _affine_params(width):
 def batch(momentum=0.9, epsilon=1e-5) -> Normalizer:
     """Batch normalization (Ioffe & Szegedy 2015).
 
-    Training (Alg. 1), per neuron over the ``m`` real examples of the mini-batch:
+    Training (Alg. 1), per neuron (per channel of a feature map, over the batch and every
+    position: :func:`batch_axes`) over the ``m`` real values of the mini-batch:
     ``μ = Σ x_i / m``, ``σ² = Σ (x_i − μ)² / m`` (biased), ``x̂ = (x − μ)/√(σ² + ε)``,
     ``y = γ x̂ + β``. Inference (Alg. 2) uses population statistics: here exponential running
     averages ``s ← momentum·s + (1 − momentum)·batch`` (``momentum`` weights the *old* value) of
@@ -61,10 +77,14 @@ def batch(momentum=0.9, epsilon=1e-5) -> Normalizer:
 
     def apply(params, state, x, mask, train):
         if train:
+            axes = batch_axes(x.ndim)
             w = jnp.ones(x.shape[:1], x.dtype) if mask is None else mask
+            w = w.reshape(w.shape + (1,) * (x.ndim - 1))
             m = jnp.sum(w)
-            mu = jnp.sum(w[:, None] * x, axis=0) / m
-            var = jnp.sum(w[:, None] * jnp.square(x - mu), axis=0) / m
+            if x.ndim > 2:  # every position of a real example is a value of its channel
+                m = m * (x.size // (x.shape[0] * x.shape[-1]))
+            mu = jnp.sum(w * x, axis=axes) / m
+            var = jnp.sum(w * jnp.square(x - mu), axis=axes) / m
             # A batch of one real example has no unbiased variance; keep the old estimate's scale.
             unbiased = var * m / jnp.maximum(m - 1.0, 1.0)
             new_state = {"mean": momentum * state["mean"] + (1.0 - momentum) * mu,
@@ -79,14 +99,17 @@ def batch(momentum=0.9, epsilon=1e-5) -> Normalizer:
 
 def layer(epsilon=1e-5) -> Normalizer:
     """Layer normalization (Ba, Kiros & Hinton 2016, eq. 4), per example over the ``H`` units of
-    the layer: ``μ = Σ a_j / H``, ``σ = √(Σ (a_j − μ)² / H + ε)``, ``y = g ⊙ (a − μ)/σ + b``.
+    the layer (every position and channel of a feature map: :func:`layer_axes`):
+    ``μ = Σ a_j / H``, ``σ = √(Σ (a_j − μ)² / H + ε)``, ``y = g ⊙ (a − μ)/σ + b`` with one gain and
+    bias per channel.
     The same computation in training and inference; no batch statistics, so padding rows do not
     matter. A preceding bias is kept: it shifts units differently, which the per-example mean
     does not cancel."""
 
     def apply(params, state, x, mask, train):
-        mu = jnp.mean(x, axis=-1, keepdims=True)
-        var = jnp.mean(jnp.square(x - mu), axis=-1, keepdims=True)
+        axes = layer_axes(x.ndim) if x.ndim > 2 else -1
+        mu = jnp.mean(x, axis=axes, keepdims=True)
+        var = jnp.mean(jnp.square(x - mu), axis=axes, keepdims=True)
         return params["gamma"] * (x - mu) / jnp.sqrt(var + epsilon) + params["beta"], state
 
     return Normalizer(lambda width: (_affine_params(width), {}), apply, True)

@@ -34,7 +34,9 @@ def pydantic_problems(err: ValidationError, prefix: tuple = ()) -> list[Problem]
         if message.startswith("@"):
             for line in message.splitlines():
                 key, _, text = line[1:].partition(": ")
-                problems.append(Problem(prefix + loc + tuple(key.split(".")), text))
+                # A digit is a list index ("blocks.2" is model.blocks[2]): no key is all digits.
+                parts = tuple(int(part) if part.isdigit() else part for part in key.split("."))
+                problems.append(Problem(prefix + loc + parts, text))
         else:
             problems.append(Problem(prefix + loc, message))
     return problems

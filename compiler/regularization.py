@@ -9,11 +9,12 @@ Contract:
 - :data:`REGISTRY` maps a dropout kind to a factory ``(rate) -> Dropout`` of two pure functions
   used on hidden layers only (never on the input, never on the output layer):
   ``dense(key, x, W, train) -> x W`` (the hidden layer's linear map, bias added by the caller)
-  and ``activation(key, h, train) -> h`` (on the hidden layer's activations). ``train`` is a
-  Python bool. Masks are drawn per example from ``key``; the caller gives a fresh key per
-  step and layer. ``masks_weights`` declares whether the masks cover the weights (a mask per
-  example the size of the layer: the network's cost counts it) rather than the activations (a
-  rate of 0 then makes ``activation`` the identity, which the compiler leaves out).
+  and ``activation(key, h, train) -> h`` (on the hidden layer's activations, ``[batch, width]``
+  or a feature map ``[batch, *positions, channels]``). ``train`` is a Python bool. Masks are
+  drawn per example from ``key``; the caller gives a fresh key per step and layer.
+  ``masks_weights`` declares whether the masks cover the weights (a mask per example the size
+  of the layer: the network's cost counts it) rather than the activations (a rate of 0 then
+  makes ``activation`` the identity, which the compiler leaves out).
 """
 
 from __future__ import annotations
@@ -24,7 +25,7 @@ import jax
 import jax.numpy as jnp
 import optax
 
-__all__ = ["l2_penalty", "decoupled_decay", "Dropout", "inverted", "scaled", "dropconnect", "REGISTRY"]
+__all__ = ["l2_penalty", "decoupled_decay", "Dropout", "inverted", "scaled", "dropconnect", "spatial", "REGISTRY"]
 
 
 def l2_penalty(params, mask, weight_decay):
@@ -95,4 +96,22 @@ def dropconnect(rate=0.0) -> Dropout:
     return Dropout(dense, lambda key, h, train: h, True)
 
 
-REGISTRY: dict[str, Callable[..., Dropout]] = {"inverted": inverted, "scaled": scaled, "dropconnect": dropconnect}
+def spatial(rate=0.0) -> Dropout:
+    """Spatial dropout (Tompson et al. 2015, §3.2): while training each channel of an example's
+    feature map is kept or dropped whole, at every position at once, with probability
+    ``p = 1 − rate``, and scaled by ``1/p`` as inverted dropout is. Neighbouring positions of a
+    feature map are strongly correlated, so dropping single units hardly regularizes it. On a
+    dense layer (no positions) it is inverted dropout, unit by unit, with the same masks."""
+    keep = 1.0 - rate
+
+    def activation(key, h, train):
+        if not train:
+            return h
+        shape = (h.shape[0],) + (1,) * (h.ndim - 2) + (h.shape[-1],)
+        return h * _keep_mask(key, rate, shape, h.dtype) / keep
+
+    return Dropout(_plain_dense, activation, False)
+
+
+REGISTRY: dict[str, Callable[..., Dropout]] = {"inverted": inverted, "scaled": scaled, "dropconnect": dropconnect,
+                                               "spatial": spatial}

@@ -19,14 +19,17 @@ from typing import Annotated, ClassVar, Literal, Union
 from pydantic import (BaseModel, ConfigDict, Discriminator, Field, SerializerFunctionWrapHandler, Tag, field_validator,
                       model_serializer, model_validator)
 
+from compiler import shapes
+
 __all__ = [
-    "Strict", "Study", "SyntheticData", "FileData", "Data", "NeuronBudget", "Model",
+    "Strict", "Study", "SyntheticData", "FileData", "Data", "NeuronBudget", "Model", "ConvBlock", "ChannelBudget",
+    "ConvModel", "Network",
     "DivergenceSection", "L2", "KL", "BCE", "Huber", "Divergence", "NoNorm", "BatchNorm", "LayerNorm", "Normalization",
     "Dropout", "Regularization", "Constant", "Exponential", "Cosine", "WarmupCosine", "Schedule",
     "SGD", "Adam", "AdamW", "RMSProp", "Optimizer", "Training", "Axis", "ListedVariant",
     "TunedKnob", "Tuning", "Ablation", "Spec", "METRICS", "PER_CLASS_METRICS", "RECALL", "MACRO_F1",
-    "CLASSIFICATION_GENERATORS", "task_of", "classes_of", "section_problems", "train_size", "split_sizes",
-    "class_of_metric", "direction", "known_metrics", "class_metrics", "metrics_of", "metric_problem",
+    "CLASSIFICATION_GENERATORS", "task_of", "classes_of", "example_shape", "section_problems", "train_size",
+    "split_sizes", "class_of_metric", "direction", "known_metrics", "class_metrics", "metrics_of", "metric_problem",
     "spelled_metrics",
 ]
 
@@ -117,7 +120,9 @@ def metric_problem(metric: str, task: str, classes: int | None, classes_from: st
     return None
 
 
-CLASSIFICATION_GENERATORS = ("rings", "spirals", "blobs")
+CLASSIFICATION_GENERATORS = ("rings", "spirals", "blobs", "glyphs")
+# The generators that draw shaped examples (images, signals), and the shape they draw by default.
+SHAPED_GENERATORS = {"glyphs": (12, 12, 1)}
 
 Rate = Annotated[float, Field(ge=0.0, lt=1.0, allow_inf_nan=False)]
 Positive = Annotated[float, Field(gt=0.0, allow_inf_nan=False)]
@@ -133,6 +138,9 @@ TestShare = Annotated[float, Field(ge=0.0, lt=1.0, allow_inf_nan=False, exclude_
 MAX_SAMPLES = 50_000_000
 MAX_WIDTH = 65_536
 MAX_EPOCHS = 100_000
+# Left out of every dump while unset, so specs written before shapes existed keep their hashes.
+Shape = Annotated[Union[Annotated[list[Annotated[int, Field(ge=1, le=MAX_WIDTH)]], Field(min_length=1, max_length=3)], None],
+                  Field(exclude_if=lambda v: v is None)]
 
 
 class Strict(BaseModel):
@@ -212,8 +220,8 @@ class SyntheticData(Strict):
 
     kind: Literal["synthetic"] = "synthetic"
     """A built-in generator (the default when kind is left out)."""
-    generator: Literal["rings", "spirals", "blobs", "friedman1", "sines"] = "rings"
-    """rings, spirals, blobs: classification; friedman1, sines: regression."""
+    generator: Literal["rings", "spirals", "blobs", "glyphs", "friedman1", "sines"] = "rings"
+    """rings, spirals, blobs: classification; glyphs: classification of images or signals (data.shape); friedman1, sines: regression."""
     samples: Annotated[int, Field(ge=8, le=MAX_SAMPLES)] = 2000
     """Rows generated, training and validation together."""
     features: Annotated[int, Field(ge=1, le=4096)] = 8
@@ -230,11 +238,20 @@ class SyntheticData(Strict):
     """Share of the rows held out for testing, apart from training and validation (0: no test split); test scores are stored once per run and never used for a choice."""
     standardize: Standardize = True
     """Standardize the inputs per run on its training rows (mean 0, sd 1; targets never); false feeds them as they are."""
+    shape: Shape = None
+    """glyphs: one example's shape, channels last: [height, width, channels] (images, default [12, 12, 1]) or [length, channels] (signals)."""
 
     @model_validator(mode="after")
     def _shape(self):
         # "@key: message" lines: problems.pydantic_problems locates each at its key.
         problems = []
+        if self.shape is not None and self.generator not in SHAPED_GENERATORS:
+            problems.append(f"@shape: the {self.generator!r} generator draws vectors of data.features values; "
+                            "data.shape applies to the glyphs generator and to files")
+        if self.generator == "glyphs" and self.shape is not None and (
+                len(self.shape) < 2 or min(self.shape[:-1]) < 4 or self.shape[-1] > 16):
+            problems.append(f"@shape: glyphs draws [height, width, channels] or [length, channels] with every "
+                            f"spatial size >= 4 and at most 16 channels (got {self.shape})")
         if self.generator == "friedman1" and self.features < 5:
             problems.append("@features: friedman1 needs features >= 5 (its target uses the first five)")
         if self.generator in ("rings", "spirals") and self.features < 2:
@@ -281,6 +298,8 @@ class FileData(Strict):
     """Share of the rows held out for testing, apart from training and validation (0: no test split); test scores are stored once per run and never used for a choice."""
     standardize: Standardize = True
     """Standardize the inputs per run on its training rows (mean 0, sd 1; targets never); false feeds them as they are."""
+    shape: Shape = None
+    """One example's shape, channels last (e.g. [8, 8, 1]): the feature values of a row, in order, are reshaped into it. Left out: an NPZ feature array's own shape, else a vector."""
 
     @field_validator("path")
     @classmethod
@@ -351,7 +370,7 @@ class Model(Strict):
     """The multilayer perceptron: hidden widths, activation and weight initialization."""
 
     kind: Literal["mlp"] = "mlp"
-    """The network family: mlp, the multilayer perceptron (the only family so far)."""
+    """The network family: mlp, the multilayer perceptron (the default), or conv."""
     hidden: Annotated[Union[Annotated[Annotated[list[Annotated[int, Field(ge=1, le=MAX_WIDTH)]], Field(max_length=64)], Tag("widths")],
                             Annotated[NeuronBudget, Tag("budget")]],
                       Discriminator(_hidden_form)] = [32, 32]
@@ -365,6 +384,10 @@ class Model(Strict):
     def widths(self) -> list[int]:
         return self.hidden.widths if isinstance(self.hidden, NeuronBudget) else list(self.hidden)
 
+    @property
+    def hidden_layers(self) -> int:
+        return len(self.widths)
+
     @model_serializer(mode="wrap")
     def _mlp_unwritten(self, handler: SerializerFunctionWrapHandler):
         # Specs older than the family choice were all MLPs: leaving the default family out of
@@ -373,6 +396,111 @@ class Model(Strict):
         if out.get("kind") == "mlp":
             del out["kind"]
         return out
+
+
+class ConvBlock(Strict):
+    """One convolution block: convolution, normalization, activation, dropout, then pooling."""
+
+    channels: Annotated[int, Field(ge=1, le=4096)]
+    """Output channels (feature maps) of the block."""
+    kernel: Annotated[int, Field(ge=1, le=64)] = 3
+    """Window of the convolution along every spatial axis."""
+    stride: Annotated[int, Field(ge=1, le=16)] = 1
+    """Step of the convolution along every spatial axis."""
+    padding: Literal["same", "valid"] = "same"
+    """same: zeros around the input keep its size at stride 1; valid: no padding."""
+    pool: Annotated[int, Field(ge=1, le=16)] = 1
+    """Pooling window (and stride) along every spatial axis after the block; 1: no pooling."""
+
+
+class ChannelBudget(Strict):
+    """A fixed number of channels spread evenly over ``depth`` blocks of one kind."""
+
+    channels: Annotated[int, Field(ge=1, le=4096 * 32)]
+    """Channels in total; must divide evenly by depth."""
+    depth: Annotated[int, Field(ge=1, le=32)]
+    """Number of convolution blocks."""
+    kernel: Annotated[int, Field(ge=1, le=64)] = 3
+    """Window of every block's convolution."""
+    stride: Annotated[int, Field(ge=1, le=16)] = 1
+    """Stride of every block's convolution."""
+    padding: Literal["same", "valid"] = "same"
+    """Padding of every block's convolution."""
+    pool: Annotated[int, Field(ge=1, le=16)] = 1
+    """Pooling window after every block; 1: no pooling."""
+
+    @model_validator(mode="after")
+    def _divides(self):
+        if self.channels % self.depth:
+            lo = self.channels // self.depth * self.depth
+            raise ValueError(f"@channels: a budget of {self.channels} channels does not divide into {self.depth} "
+                             f"equal blocks (try channels = {lo or self.depth} or {lo + self.depth})")
+        if self.channels // self.depth > 4096:
+            raise ValueError(f"@channels: {self.channels} channels over {self.depth} blocks make blocks of more than "
+                             f"4096 channels; use depth >= {-(-self.channels // 4096)}")
+        return self
+
+    @property
+    def blocks(self) -> list[ConvBlock]:
+        return [ConvBlock(channels=self.channels // self.depth, kernel=self.kernel, stride=self.stride,
+                          padding=self.padding, pool=self.pool)] * self.depth
+
+
+def _blocks_form(value) -> str:
+    return "budget" if isinstance(value, (dict, ChannelBudget)) else "blocks"
+
+
+class ConvModel(Strict):
+    """A convolutional network: convolution blocks, then dense hidden layers, then the output."""
+
+    kind: Literal["conv"]
+    """The network family: conv, a convolutional network (1-D or 2-D by the data's shape)."""
+    blocks: Annotated[Union[Annotated[Annotated[list[ConvBlock], Field(min_length=1, max_length=32)], Tag("blocks")],
+                            Annotated[ChannelBudget, Tag("budget")]],
+                      Discriminator(_blocks_form)] = [ConvBlock(channels=16, pool=2), ConvBlock(channels=32, pool=2)]
+    """Convolution blocks in order ([{ channels = 16, kernel = 3, pool = 2 }, …]), or a budget { channels = 48, depth = 3 }."""
+    pooling: Literal["max", "average"] = "max"
+    """How a block's pool window is summarized."""
+    hidden: Annotated[list[Annotated[int, Field(ge=1, le=MAX_WIDTH)]], Field(max_length=64)] = []
+    """Widths of the dense hidden layers after the flattened feature maps ([]: straight to the output)."""
+    activation: Literal["relu", "tanh", "sigmoid", "gelu", "identity"] = "relu"
+    """Activation of every block and hidden layer."""
+    init: Literal["he_normal", "he_uniform", "glorot_normal", "glorot_uniform"] = "he_normal"
+    """Initialization of the kernels and weight matrices (biases start at zero)."""
+
+    @property
+    def widths(self) -> list[int]:
+        return list(self.hidden)
+
+    @property
+    def resolved_blocks(self) -> list[ConvBlock]:
+        return self.blocks.blocks if isinstance(self.blocks, ChannelBudget) else list(self.blocks)
+
+    @property
+    def hidden_layers(self) -> int:
+        return len(self.resolved_blocks) + len(self.hidden)
+
+    def problems(self, spec):
+        # A file without data.shape is checked where its arrays are read (compiler.model).
+        shape = example_shape(spec.data)
+        wrong = None if shape is None else shapes.misfit(shape, self.resolved_blocks)
+        if wrong is None:
+            return []
+        index, message = wrong
+        if index is None:
+            return [("kind", f"'conv' {message}; set data.shape (a file) or use generator = 'glyphs', "
+                             "or use kind = 'mlp'")]
+        if isinstance(self.blocks, ChannelBudget):
+            return [("blocks.depth", f"block {index + 1} of {self.blocks.depth}: {message}")]
+        return [(f"blocks.{index}", message)]
+
+
+def _model_kind(value) -> str:
+    # [model] without a kind is the multilayer perceptron, as every spec before the families was.
+    return value.get("kind", "mlp") if isinstance(value, dict) else getattr(value, "kind", "mlp")
+
+
+Network = Annotated[Union[Annotated[Model, Tag("mlp")], Annotated[ConvModel, Tag("conv")]], Discriminator(_model_kind)]
 
 
 # ── divergence ──────────────────────────────────────────────────────────────────────────────────
@@ -499,8 +627,8 @@ class Dropout(Strict):
 
     rate: Rate = 0.0
     """Probability of dropping a unit (or, for dropconnect, a weight)."""
-    kind: Literal["inverted", "scaled", "dropconnect"] = "inverted"
-    """inverted: rescale while training; scaled: rescale at inference; dropconnect: DropConnect (Wan et al. 2013) on weights."""
+    kind: Literal["inverted", "scaled", "dropconnect", "spatial"] = "inverted"
+    """inverted: rescale while training; scaled: rescale at inference; dropconnect: DropConnect (Wan et al. 2013) on dense weights; spatial: whole channels of feature maps (inverted)."""
     knobs: ClassVar[tuple[str, ...]] = ("rate",)
 
 
@@ -850,8 +978,8 @@ class Spec(Strict):
     """Name, seeds and headline metric."""
     data: Data = SyntheticData()
     """The data set: a built-in generator or a file, selected by kind."""
-    model: Model = Model()
-    """The multilayer perceptron."""
+    model: Network = Model()
+    """The network: a multilayer perceptron (kind = "mlp", the default) or a convolutional network (kind = "conv")."""
     divergence: Divergence = KL(kind="kl")
     """The training loss and output activation, selected by kind."""
     normalization: Normalization = NoNorm(kind="none")
@@ -883,6 +1011,16 @@ class Spec(Strict):
         if tune is None:
             return self.study.metric, "last"
         return tune.metric or self.study.metric, tune.epoch
+
+
+def example_shape(data: SyntheticData | FileData) -> tuple[int, ...] | None:
+    """One example's shape as the spec declares it; None for a file without data.shape (its
+    arrays decide)."""
+    if isinstance(data, FileData):
+        return None if data.shape is None else tuple(data.shape)
+    if data.generator in SHAPED_GENERATORS:
+        return tuple(data.shape) if data.shape is not None else SHAPED_GENERATORS[data.generator]
+    return (data.features,)
 
 
 def split_sizes(samples: int, validation: float, test: float = 0.0) -> tuple[int, int, int]:

@@ -182,7 +182,7 @@ def execute_group(group: Group, dataset, environment: dict,
             test_epoch=int(judged_at[i]) if program.test_names and judged_at[i] > 0 else None,
             non_finite_epoch=int(at[i]) + 1 if bool(non_finite[i]) else None,
             param_hash=param_hash(lane_params),
-            warnings=diagnose(run.variant.spec.normalization.kind, len(run.variant.spec.model.widths), curves),
+            warnings=diagnose(run.variant.spec.normalization.kind, run.variant.spec.model.hidden_layers, curves),
             arrays=_lane_arrays(lane_params, carry, i) if keep_arrays else None,
         ))
     return GroupResult(group.group_id, group.lane_width, names, program.test_names, results, compile_seconds,

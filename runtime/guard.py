@@ -56,7 +56,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from compiler.errors import UserError
-from compiler.spec import train_size
+from compiler.spec import example_shape, train_size
 from runtime.plan import Group
 
 __all__ = ["Estimate", "ResourceError", "Calibration", "estimate", "schedule", "model_seconds", "lane_budget", "check",
@@ -299,9 +299,10 @@ def check_data(groups: list[Group], *, where: str, base_dir=".", available: int 
     for g in groups:
         data = g.runs[0].variant.spec.data
         if data.kind == "synthetic":
-            need = RUNTIME_BYTES + 12 * data.samples * (data.features + 1)
-            what = f"data.samples = {data.samples} × data.features = {data.features}"
-            fix = "lower data.samples or data.features"
+            shape = example_shape(data)
+            need = RUNTIME_BYTES + 12 * data.samples * (math.prod(shape) + 1)
+            size, value = ("data.shape", list(shape)) if len(shape) > 1 else ("data.features", data.features)
+            what, fix = f"data.samples = {data.samples} × {size} = {value}", f"lower data.samples or {size}"
         else:
             need = RUNTIME_BYTES + load_bytes(inspect_file(data, base_dir), data)
             what, fix = f"data.path = {data.path}", "use a sample of its rows or fewer columns"

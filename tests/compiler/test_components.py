@@ -8,6 +8,7 @@ declares about itself (a divergence's task and output width, a network's cost) i
 """
 
 import inspect
+import math
 import pathlib
 import sys
 
@@ -216,12 +217,12 @@ def test_schedule_dtype_jit_and_range(row):
 # ── model families ──────────────────────────────────────────────────────────────────────────────
 @pytest.fixture(scope="module", params=rows_of("model"))
 def family(request):
-    """The row's network with every normalizer and dropout, on 6 inputs as written and on 32
-    inputs with wide layers (where the multiply-accumulates outweigh the elementwise work), each
-    with the cost its family declares."""
+    """The row's network with every normalizer and dropout, on the row's small example shape as
+    written and on its wide one with wide dense layers (where the multiply-accumulates outweigh
+    the elementwise work), each with the cost its family declares."""
     row = request.param
     cases = {}
-    for shape, wide in (((6,), False), ((32,), True)):
+    for shape, wide in zip(row.shapes, (False, True)):
         section = section_of(row._replace(section={**row.section, **({"hidden": [48, 48]} if wide else {})}))
         fields = {name: getattr(section, name) for name in type(section).model_fields if name != "kind"}
         for norm in normalization.REGISTRY:
@@ -231,16 +232,16 @@ def family(request):
                 cost = model.FAMILIES[row.kind].cost(**{**fields, "hidden": section.widths}, in_shape=shape,
                                                      out_width=3, dropout=dropout)
                 cases[shape, norm, drop] = net, cost, dropout.masks_weights
-    return row, cases
+    return row, cases, row.shapes[1]
 
 
 def test_family_shapes_dtype_jit_and_progress(family):
-    _, cases = family
+    _, cases, _ = family
     rng = np.random.default_rng(3)
     y = jnp.asarray(rng.integers(0, 3, 16), jnp.int32)
     for (shape, norm, drop), (net, _, _) in cases.items():
         x = jnp.asarray(rng.normal(size=(16, *shape)), jnp.float32)
-        params, state = net.init(jax.random.key(0), shape[0])
+        params, state = net.init(jax.random.key(0), shape)
         assert all(leaf.dtype == jnp.float32 for leaf in jax.tree.leaves((params, state)))
         apply = lambda p, train: net.apply(p, state, x, jax.random.key(1), None, train)[0]
         z = apply(params, False)
@@ -252,19 +253,23 @@ def test_family_shapes_dtype_jit_and_progress(family):
 
 
 def test_family_declared_cost_is_what_it_builds(family):
-    _, cases = family
+    _, cases, wide = family
     for (shape, norm, drop), (net, cost, masks_weights) in cases.items():
-        params, state = net.init(jax.random.key(0), shape[0])
+        params, state = net.init(jax.random.key(0), shape)
         counted = sum(leaf.size for leaf in jax.tree.leaves(params))
+        # A unit is an output unit of a dense layer or an output channel of a convolution.
         units = sum(layer["W"].shape[-1] for layer in params.values())
         # The declared count is a bound (every unit with a bias, γ and β): never below what is
         # built, and above it by at most those three vectors.
         assert counted <= cost.parameters <= counted + 3 * units, (norm, drop)
         assert cost.layers == len(params)
-        assert cost.masks == (cost.parameters if masks_weights else 0)
+        # Weight masks (DropConnect) cover the dense layers' matrices, one per example: at least
+        # their weights, at most the whole bound.
+        dense = sum(layer["W"].size for layer in params.values() if layer["W"].ndim == 2)
+        assert (dense <= cost.masks <= cost.parameters) if masks_weights else cost.masks == 0, (norm, drop)
         # Activations kept per example: at least the input and every layer's output.
-        assert cost.activations >= shape[0] + units
-        if shape == (32,):
+        assert cost.activations >= math.prod(shape) + units
+        if shape == wide:
             # XLA's own operation count of the forward pass: 2 FLOPs per multiply-accumulate
             # (common practice), the elementwise work of normalization and activation besides.
             x = jnp.zeros((32, *shape), jnp.float32)
@@ -281,9 +286,11 @@ def test_family_memory_estimate_bounds_a_measured_training_step(family, tmp_path
     from runtime import guard
     from runtime.plan import plan
 
-    row, _ = family
+    row, _, _ = family
+    data = ({"generator": "glyphs", "shape": list(row.shapes[0])} if row.shaped
+            else {"generator": "blobs", "features": row.shapes[0][0]})
     raw = {"study": {"name": "mem", "seeds": 1}, "model": row.section,
-           "data": {"generator": "blobs", "samples": 512, "features": 6, "classes": 3},
+           "data": {**data, "samples": 512, "classes": 3},
            "training": {"epochs": 1, "batch_size": 64}}
     variant = expand(Spec.model_validate(raw))[0]
     ds = load_data(variant.spec, tmp_path)

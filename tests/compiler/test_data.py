@@ -42,7 +42,8 @@ def test_generators_are_deterministic_typed_and_seeded(generator):
     c = load_data(_synthetic(generator=generator, samples=200, features=6, seed=4), ".")
     assert a.data_hash == b.data_hash != c.data_hash
     np.testing.assert_array_equal(a.x, b.x)
-    assert a.x.dtype == np.float32 and a.x.shape == (200, 6)
+    shaped = {"glyphs": (12, 12, 1)}  # its default data.shape; the vector generators draw data.features
+    assert a.x.dtype == np.float32 and a.x.shape == (200, *shaped.get(generator, (6,)))
     if a.task == "classification":
         assert a.y.dtype == np.int32 and a.y.shape == (200,) and a.classes == 3
         assert np.bincount(a.y).tolist() == [67, 67, 66]  # balanced classes
@@ -68,6 +69,33 @@ def test_spirals_need_a_nonlinear_classifier():
     knn = KNeighborsClassifier(5).fit(d.x[:1500], d.y[:1500]).score(d.x[1500:], d.y[1500:])
     linear = LogisticRegression(max_iter=1000).fit(d.x[:1500], d.y[:1500]).score(d.x[1500:], d.y[1500:])
     assert knn > 0.95 and linear < 0.7
+
+
+def test_glyph_images_carry_their_class_in_the_bar_orientation():
+    # Image moments (common practice): a bar's orientation is ½·atan2(2μ₁₁, μ₂₀ − μ₀₂) of its
+    # intensity's central second moments; class k is drawn at angle πk/K.
+    d = load_data(_synthetic(generator="glyphs", samples=300, classes=4, noise=0.0, shape=[16, 16, 2]), ".")
+    assert d.x.shape == (300, 16, 16, 2)
+    img = d.x[..., 0].astype(np.float64)
+    yy, xx = np.meshgrid(np.arange(16), np.arange(16), indexing="ij")
+    m = img.sum((1, 2))
+    cy, cx = (img * yy).sum((1, 2)) / m, (img * xx).sum((1, 2)) / m
+    dy, dx = yy - cy[:, None, None], xx - cx[:, None, None]
+    mu20, mu02, mu11 = [(img * a * b).sum((1, 2)) / m for a, b in ((dx, dx), (dy, dy), (dx, dy))]
+    angle = 0.5 * np.arctan2(2 * mu11, mu20 - mu02)
+    gap = np.abs((angle - np.pi * d.y / 4 + np.pi / 2) % np.pi - np.pi / 2)
+    assert np.median(gap) < 0.1 and np.mean(gap < 0.3) > 0.9
+    # The second channel shows the same pattern at its own gain.
+    ratio = d.x[..., 1].sum((1, 2)) / d.x[..., 0].sum((1, 2))
+    assert 1 / 3 <= ratio.min() and ratio.max() <= 3
+
+
+def test_glyph_signals_carry_their_class_in_the_frequency():
+    # numpy's FFT: a packet of k + 1 cycles over a third of the length peaks near 3(k + 1) cycles
+    # per length.
+    d = load_data(_synthetic(generator="glyphs", samples=200, classes=3, noise=0.0, shape=[96, 1]), ".")
+    peak = np.abs(np.fft.rfft(d.x[:, :, 0], axis=1)).argmax(axis=1)
+    assert np.mean(np.abs(peak - 3 * (d.y + 1)) <= 1) > 0.9
 
 
 def test_friedman1_target_and_distribution():

@@ -67,8 +67,8 @@ def test_knob_marks_name_real_valued_fields_of_their_model():
 
 def test_the_bases_use_every_model_of_the_schema():
     used = {type(section) for raw in BASES.values() for _, section in sections(_variant(raw))}
-    # Expansion resolves a neuron budget into a list of widths: no variant holds one.
-    assert {m.__name__ for m in _schema_models() - used} == {"NeuronBudget"}
+    # Expansion resolves a budget into a list of widths or blocks: no variant holds one.
+    assert {m.__name__ for m in _schema_models() - used} == {"NeuronBudget", "ChannelBudget"}
 
 
 def test_knobs_are_derived_from_the_marks():
