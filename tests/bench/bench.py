@@ -75,10 +75,12 @@ def child(cmd: list[str], env: dict | None = None, cwd: Path = ROOT) -> dict:
 def result_set_numbers(path: str, w: dict) -> dict:
     import pyarrow.parquet as pq
 
+    from runtime.migrate import key_column
+
     runs = pq.read_table(Path(path) / "runs.parquet").to_pydict()
     groups = dict(zip(runs["group_id"], runs["compile_seconds"]))
     order = sorted(range(len(runs["run_id"])),
-                   key=lambda i: (w["learning_rates"].index(runs["optimizer.learning_rate"][i]), runs["seed"][i]))
+                   key=lambda i: (w["learning_rates"].index(runs[key_column("optimizer.learning_rate")][i]), runs["seed"][i]))
     return {"execution_seconds": float(sum(runs["run_seconds"])),
             "compile_seconds": float(sum(groups.values())),
             "final_train_loss": [float(runs["final_train_divergence"][i]) for i in order],
