@@ -102,32 +102,22 @@ def test_test_split_default_keeps_hash():
     assert load_text(BASE.format(samples=100, validation=0.25, test=0.2), "t.toml").study_hash != plain.study_hash
 
 
-def test_tuning_needs_a_test_split():
-    text = BASE.format(samples=100, validation=0.25, test=0) + TUNE.format(
-        tune="", key="optimizer.learning_rate", values="values = [0.1, 0.3]")
-    (loc, msg), = _problems(text)
-    assert loc == "ablation.tune" and "data.test" in msg
-
-
-def test_tuning_chooses_on_validation_only():
-    text = BASE.format(samples=100, validation=0.25, test=0.2) + TUNE.format(
-        tune='metric = "train_divergence"', key="optimizer.learning_rate", values="values = [0.1, 0.3]")
-    (loc, msg), = _problems(text)
-    assert loc == "ablation.tune.metric" and "validation" in msg
-
-
-def test_tuned_key_must_be_a_knob():
-    text = BASE.format(samples=100, validation=0.25, test=0.2) + TUNE.format(
-        tune="", key="training.epochs", values="values = [2, 4]")
-    (loc, msg), = _problems(text)
-    assert loc == "ablation.tune.knob.0.key" and "not a knob" in msg and "optimizer.learning_rate" in msg
-
-
-def test_tuned_key_must_not_be_varied_by_the_arms():
-    text = BASE.format(samples=100, validation=0.25, test=0.2) + TUNE.format(
-        tune="", key="optimizer.momentum", values="values = [0.0, 0.5]")
-    (loc, msg), = _problems(text)
-    assert loc == "ablation.tune.knob.0.key" and "varied by the ablation" in msg
+@pytest.mark.parametrize("test, tune, key, values, loc, words", [
+    # tuning compares arms on a test split: without one there is nothing to compare on
+    (0, "", "optimizer.learning_rate", "values = [0.1, 0.3]", "ablation.tune", ("data.test",)),
+    # settings are chosen on validation data only
+    (0.2, 'metric = "train_divergence"', "optimizer.learning_rate", "values = [0.1, 0.3]",
+     "ablation.tune.metric", ("validation",)),
+    # a tuned key must be a knob (lanes, not programs)
+    (0.2, "", "training.epochs", "values = [2, 4]", "ablation.tune.knob.0.key",
+     ("not a knob", "optimizer.learning_rate")),
+    # and not a key the arms themselves vary
+    (0.2, "", "optimizer.momentum", "values = [0.0, 0.5]", "ablation.tune.knob.0.key", ("varied by the ablation",)),
+], ids=["needs-a-test-split", "chooses-on-validation-only", "key-must-be-a-knob", "key-not-varied-by-the-arms"])
+def test_tuning_rules(test, tune, key, values, loc, words):
+    text = BASE.format(samples=100, validation=0.25, test=test) + TUNE.format(tune=tune, key=key, values=values)
+    (got_loc, msg), = _problems(text)
+    assert got_loc == loc and all(w in msg for w in words), (got_loc, msg)
 
 
 def test_log_range_and_equal_budget():
