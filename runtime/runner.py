@@ -424,9 +424,6 @@ def run_until_decided(loaded, out: Path, rule, *, axis: str | None = None, **kw)
     from runtime.diff import sequential_design
 
     spec = loaded.spec
-    if spec.ablation is not None and spec.ablation.tune is not None:
-        raise ResultSetError(f"{loaded.path}: --until-decided adds seeds to variants, and a tuned study compares "
-                             "arms (each its pick per seed); run it with a fixed number of seeds (study.seeds)")
     first = spec.study.seed_list
     record = {**rule.as_dict(), "first": first, "axis": axis, "metric": spec.study.metric}
     path = result_dir(out, spec.study.name, loaded.study_hash)
