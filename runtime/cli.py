@@ -169,12 +169,12 @@ def _check_report(study) -> dict:
         "study_hash": study.study_hash,
         "result_set": study.result_set,
         "seeds": study.seeds,
-        "programs": len({v.structure for v in study.variants}),
+        "programs": len({v.program for v in study.variants}),
         "runs": study.runs,
         "metric": study.spec.study.metric,
         "metrics": _study_metrics(study),
         "variants": [
-            {"label": v.label, "changes": v.changes, "variant_hash": v.hash, "program": v.structure,
+            {"label": v.label, "changes": v.changes, "variant_hash": v.hash, "program": v.program,
              "seeds": study.seeds}
             for v in study.variants
         ],
@@ -186,13 +186,13 @@ def _print_check_table(study, wide: bool) -> None:
     from compiler.spec import spelled_metrics
     from runtime.formats import Fit, render
 
-    structures = sorted({v.structure for v in study.variants}, key=[v.structure for v in study.variants].index)
+    keys = sorted({v.program for v in study.variants}, key=[v.program for v in study.variants].index)
     typer.echo(f"study       {study.spec.study.name}")
     typer.echo(f"study hash  {study.study_hash}")
     typer.echo(f"result set  {study.result_set}")
     _echo_fitted(f"metrics     {spelled_metrics(_study_metrics(study))} (headline: {study.spec.study.metric})", wide)
     typer.echo(f"{len(study.variants)} variants × {len(study.seeds)} seeds = {study.runs} runs, "
-               f"compiled as {len(structures)} program{'s' if len(structures) != 1 else ''}")
+               f"compiled as {len(keys)} program{'s' if len(keys) != 1 else ''}")
     tune = study.spec.ablation.tune if study.spec.ablation is not None else None
     if tune is not None:
         from compiler.expand import arms
@@ -215,7 +215,7 @@ def _print_check_table(study, wide: bool) -> None:
         # A generated label already tells its changes (with the line above); the column then
         # stays empty, and is left out when every label is generated.
         rows.append({"#": v.index, "label": v.label, "changes": "" if generated else changes,
-                     "variant hash": v.hash[:12], "seeds": seeds, "program": v.structure})
+                     "variant hash": v.hash[:12], "seeds": seeds, "program": v.program})
     typer.echo(render(rows, list(rows[0]), "table", width=_terminal_width(wide),
                       fit=Fit(keep=("#", "label"), drop=("program", "seeds"), wrap=("label", "changes"))))
 

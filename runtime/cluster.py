@@ -218,12 +218,12 @@ class DaskExecutor:
             pending[fut.key] = (g, fut)
             return fut
 
-        # One program per (structure, width, data): its first group goes out alone, the rest when
+        # One program per (program key, width, data): its first group goes out alone, the rest when
         # it is back, so workers sharing a compile cache load that program instead of all
         # compiling it at once. Different programs still start side by side.
         waiting: dict[tuple, list] = {}
         for g in groups:
-            waiting.setdefault((g.structure, g.lane_width, id(data[g.group_id])), []).append(g)
+            waiting.setdefault((g.program, g.lane_width, id(data[g.group_id])), []).append(g)
         program_of = {}
         for program, members in waiting.items():
             program_of[submit(members.pop(0)).key] = program

@@ -4,14 +4,14 @@ The seam is :func:`execute_group`: one :class:`~runtime.plan.Group` and its data
 :class:`GroupResult` out. It needs nothing else from the process, so a group can be executed in
 another process or on another machine and its result written here.
 
-Inside a group one program per structure is compiled (``vmap`` over lanes of (knobs, seed key)
+Inside a group one program per program key is compiled (``vmap`` over lanes of (knobs, seed key)
 of the compiler's per-epoch function, steps in ``lax.scan``) and called once per epoch from
 Python; the data stays on the device across epochs and only the per-epoch metrics come back.
-The program (:func:`compiler.build.compile_structure` of the group's variants) packs the lanes'
+The program (:func:`compiler.build.compile_program` of the group's variants) packs the lanes'
 knobs itself and decides which work its zero knobs let it leave out; programs compile with XLA's
 default options. With a test split, each lane's test rows are scored once, after the last epoch,
 with the weights of the epoch the study judges it at (``_Judge``). With the compile cache on, a
-structure's executables are loaded from and stored in :mod:`runtime.programs`; replay always
+program key's executables are loaded from and stored in :mod:`runtime.programs`; replay always
 compiles afresh.
 """
 
@@ -61,13 +61,13 @@ class GroupResult:
     environment: dict
 
 
-# Compiled (init, epoch) per (structure, lane width, data signature, knobs zero in every lane), reused
-# by every group of a structure within one process.
+# Compiled (init, epoch) per (program key, lane width, data signature, knobs zero in every lane), reused
+# by every group of a program key within one process.
 _programs: dict[tuple, tuple] = {}
 
 
 def _program_key(group: Group, dataset, zero: frozenset[str]) -> tuple:
-    return group.structure, group.lane_width, programs.data_signature(dataset), zero
+    return group.program, group.lane_width, programs.data_signature(dataset), zero
 
 
 def preparation(groups: list[Group], data: dict, environment: dict) -> dict[str, str]:
@@ -138,17 +138,17 @@ def execute_group(group: Group, dataset, environment: dict,
                   keep_arrays: bool = False) -> GroupResult:
     """Train every run of a group at the group's lane width and return its numbers.
 
-    ``reuse=False`` compiles afresh even when this process already compiled the structure
+    ``reuse=False`` compiles afresh even when this process already compiled the program
     (replay proves the bits with a new compile). ``keep_arrays`` returns each lane's trained
     arrays too (export); runs never store them."""
     import jax
 
-    from compiler.build import compile_structure, param_hash
+    from compiler.build import compile_program, param_hash
     from compiler.normalization import diagnose
 
     # Padding copies a real run, so it never adds a non-zero to a knob that is 0 in every run.
     lanes = list(group.runs) + [group.runs[0]] * group.padding
-    program = compile_structure([r.variant.spec for r in group.runs], dataset)
+    program = compile_program([r.variant.spec for r in group.runs], dataset)
     knobs = program.pack([r.variant.spec for r in lanes])
     seeds = np.array([r.seed for r in lanes], dtype=np.int32)
 

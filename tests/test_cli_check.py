@@ -63,7 +63,7 @@ def test_check_prints_the_study_hash_and_exits_0(spec):
     assert code == 0
     assert f"study hash  {study_hash(study.spec)}" in out
     for v in study.variants:
-        assert v.hash[:12] in out and v.structure in out
+        assert v.hash[:12] in out and v.program in out
 
 
 def test_check_json_form():
@@ -77,7 +77,7 @@ def test_check_json_form():
     assert report["runs"] == len(report["variants"]) * 4 == 16
     assert report["variants"][1] == {"label": "divergence huber", "changes": {"divergence.kind": "huber"},
                                      "variant_hash": study.variants[1].hash,
-                                     "program": study.variants[1].structure, "seeds": [11, 12, 13, 14]}
+                                     "program": study.variants[1].program, "seeds": [11, 12, 13, 14]}
 
 
 def test_check_and_schema_do_not_import_jax():

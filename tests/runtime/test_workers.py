@@ -157,7 +157,7 @@ def test_workers_report_each_group_when_it_is_back(one_and_two):
 
 
 def test_the_printed_estimate_is_for_the_workers_the_run_uses(one_and_two):
-    # Two groups of one structure on two workers: both compile side by side, so the wall time
+    # Two groups of one program on two workers: both compile side by side, so the wall time
     # is one compile and one group's execution, not the sum over groups.
     _, _, events, infos = one_and_two
     estimate = infos[events.index("plan")]["estimate"]
