@@ -260,7 +260,7 @@ class DaskExecutor:
                 if progress:
                     epochs = g.runs[0].variant.spec.training.epochs
                     progress("group", group=g, todo=len(g.runs))
-                    progress("epoch", done=epochs, total=epochs)
+                    progress("epoch", group=g, done=epochs, total=epochs)
                 yield g, result
         except KilledWorker as err:
             raise ClusterError(f"--cluster {self.address}: a task's workers kept dying ({err}); the groups "

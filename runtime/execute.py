@@ -250,8 +250,8 @@ class InProcess:
 
     An executor's contract: ``run(groups, data, environment, progress)`` yields
     ``(group, GroupResult)`` as groups finish, in any order; ``data`` maps a group id to its
-    Dataset; ``progress`` (or None) receives the ("group", group=…) and ("epoch", done=…, total=…)
-    events. The caller writes each result as it arrives.
+    Dataset; ``progress`` (or None) receives the ("group", group=…) and ("epoch", group=…, done=…,
+    total=…) events. The caller writes each result as it arrives.
 
     ``checkpoint()`` (optional) is called before each group and after each epoch, outside any
     jax call, so that it may raise to abandon the group in flight (Ctrl-C)."""
@@ -262,11 +262,13 @@ class InProcess:
     def run(self, groups, data, environment, progress=None):
         check = self.checkpoint
 
-        def on_epoch(done, total):
-            if progress:
-                progress("epoch", done=done, total=total)
-            if check:
-                check()
+        def on_epoch(g):
+            def told(done, total):
+                if progress:
+                    progress("epoch", group=g, done=done, total=total)
+                if check:
+                    check()
+            return told
 
         for g in groups:
             if check:
@@ -274,4 +276,4 @@ class InProcess:
             if progress:
                 progress("group", group=g, todo=len(g.runs))
             yield g, execute_group(g, data[g.group_id], environment,
-                                   on_epoch=on_epoch if check or progress else None)
+                                   on_epoch=on_epoch(g) if check or progress else None)

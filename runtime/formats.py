@@ -59,7 +59,8 @@ class Fit:
 
     Columns whose cells are all empty go first, then ``drop`` in its order, then every other column
     not in ``keep`` from the right; ``wrap`` columns break at spaces (labels such as
-    ``none · 0.15`` break between their parts) instead of being dropped.
+    ``none · 0.15`` break between their parts) instead of being dropped. A column both kept and
+    wrapped is wrapped only once no other column can go: a droppable one goes first.
     """
 
     keep: tuple[str, ...] = ()
@@ -123,7 +124,13 @@ def _table(rows, columns, cells, heads, title, width, fit) -> str:
     if width is not None:
         order = [c for c in fit.drop if c in columns] + [c for c in reversed(columns) if c not in fit.drop]
         order = [columns.index(c) for c in order if c not in fit.keep and columns.index(c) in shown]
-        while sum(map(need, shown)) + _GAP * (len(shown) - 1) > width and order:
+        # A column the report can spare goes before a kept one (its labels, its verdict) wraps: a
+        # row over three lines is harder to read than a column named on the last line. A column
+        # that may go anyway may also wrap first.
+        def room(i: int) -> int:
+            return longest(i, False) if columns[i] in fit.keep else need(i)
+
+        while sum(map(room, shown)) + _GAP * (len(shown) - 1) > width and order:
             i = order.pop(0)
             shown.remove(i)
             dropped.append(columns[i])
@@ -135,6 +142,7 @@ def _table(rows, columns, cells, heads, title, width, fit) -> str:
             give = [i for i in shown if columns[i] in fit.wrap and widths[i] > need(i)]
             if not give:
                 break
+            give = [i for i in give if columns[i] not in fit.keep] or give   # kept ones wrap last
             widths[max(give, key=widths.get)] -= 1
         for i in shown:
             if columns[i] in fit.wrap:

@@ -300,7 +300,7 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
     :func:`runtime.plan.plan`'s ``per_round``, the rule recorded in the metadata.
 
     ``progress(event, **info)`` receives ("plan", groups=…, runs=…, estimate=…), ("group", group=…,
-    todo=…), ("epoch", done=…, total=…), ("stored", group=…, result=…)."""
+    todo=…), ("epoch", group=…, done=…, total=…), ("stored", group=…, result=…)."""
     environment.single_threaded_xla()
     programs.enable_compile_cache()
     environment.check_settings()

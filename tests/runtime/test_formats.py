@@ -62,3 +62,21 @@ def test_labels_with_newlines_or_bidi_controls_are_escaped_in_show_diff_and_repl
     assert "fast\\u202eevil" in text and "two\\nlines\\x1b[31m [bold]x" in text and "a\\u202eb" in text
     assert len(text.splitlines()) == len(render(ESCAPE_ROWS[:1], ["variant", "mean"], fmt, title="t").splitlines()) + 1
 
+
+
+def test_a_kept_label_wraps_only_once_no_other_column_can_go():
+    # the diff's layout at 80 columns: a row over three lines is harder to read than a column
+    # named on the last line
+    row = {"variant": "layer · dropconnect · 0.2", "ci": "[-0.4163, 0.01185]", "p": 0.05596,
+           "verdict": "no detectable change", "extra": "an optional long column"}
+    fit = Fit(keep=("variant", "ci", "verdict"), wrap=("variant", "ci", "verdict"))
+    columns = list(row)
+    text = render([row], columns, "table", width=80, fit=fit)
+    lines = text.splitlines()
+    assert lines[2].split("  ")[0] == "layer · dropconnect · 0.2" and "no detectable change" in lines[2]
+    assert "extra" not in lines[0] and lines[3].startswith("not shown at 80 columns: extra")
+    narrow = render([row], columns, "table", width=50, fit=fit).splitlines()
+    # narrower than the kept columns: every droppable one is gone, then the kept ones wrap
+    assert max(map(len, narrow)) <= 50 and narrow[0].split() == ["variant", "ci", "verdict"]
+    assert " ".join(narrow[-2:]).startswith("not shown at 50 columns: p, extra")
+    assert narrow[2].split()[:2] == ["layer", "·"] and narrow[4].strip() == "0.2"

@@ -345,6 +345,23 @@ def test_curves_of_a_large_grid_are_small_multiples_one_panel_per_level(sets):
     assert legend == ["weight_decay=0.0", "weight_decay=0.001", "weight_decay=0.01"]
 
 
+def test_every_picture_of_grid_labels_says_which_axis_each_part_is(sets):
+    # a cell's label is its values alone ("0.03 · 0.0"): the picture names the axes in label order
+    key = "labels: learning_rate · weight_decay"
+    assert P.label_key(sets["grid"]) == "learning_rate · weight_decay"
+    assert P.plot_arms(sets["grid"]).axes[0].get_ylabel() == key
+    assert P.plot_diff(sets["grid"], sets["grid_b"]).axes[0].get_ylabel() == key
+    curves = P.plot_curves(sets["grid"])            # 4 variants: one panel, labels in the legend
+    assert curves.legends[0].get_title().get_text().splitlines()[0] == key
+    grid = P.plot_grid(sets["grid"]).axes[0]       # its axes are titled by their keys
+    assert (grid.get_ylabel(), grid.get_xlabel()) == ("optimizer.learning_rate", "regularization.weight_decay")
+    # tick values are written as the labels write them (0.0, not the stored JSON's 0)
+    assert [t.get_text() for t in grid.get_xticklabels()] == ["0.0", "0.01"]
+    # small multiples name the axis in each panel and legend entry instead
+    nine = P.plot_curves(sets["nine"])
+    assert not nine.legends[0].get_title().get_text().startswith("labels:")
+
+
 def test_one_seed_says_so_and_draws_no_spread(sets):
     rs = sets["single"]
     fig = P.plot_curves(rs)
