@@ -225,10 +225,13 @@ def _print_check_table(study, wide: bool) -> None:
     generated = abl is not None and abl.mode != "list"
     if generated:
         # A generated label is values alone: say once which keys they are, in label order.
+        # The short names are what pictures key their labels by (runtime.plot.label_key).
         names = axis_names([(a.key, a.name) for a in abl.axis])
-        what = " · ".join(a.key for a in abl.axis) if abl.mode == "grid" else \
-            ", ".join(f"{names[a.key]} = {a.key}" for a in abl.axis)
-        typer.echo(printable(f"labels      {what}"))
+        # no-break spaces (see _echo_fitted): a wrapped line never parts a name from its key
+        keys = ", ".join(f"{names[a.key]}\u00a0=\u00a0{a.key}" for a in abl.axis if names[a.key] != a.key)
+        what = keys if abl.mode != "grid" else \
+            " · ".join(names[a.key] for a in abl.axis) + (f" ({keys})" if keys else "")
+        _echo_fitted(printable(f"labels      {what}"), wide)
     rows = []
     for v in study.variants:
         changes = ", ".join(label_parts(v.changes)) or "(nothing: the base)"
@@ -255,7 +258,8 @@ def _echo_fitted(text: str, wide: bool = False) -> None:
     import textwrap
 
     width = _terminal_width(wide)
-    typer.echo(text if width is None else textwrap.fill(text, width, subsequent_indent="  "))
+    # a no-break space only keeps words together on one line; it is printed as a space
+    typer.echo((text if width is None else textwrap.fill(text, width, subsequent_indent="  ")).replace("\u00a0", " "))
 
 
 def _seeds_text(seeds: list[int]) -> str:
@@ -453,7 +457,7 @@ class _nothing:
 
 
 class _RunProgress:
-    """Progress on stderr: a bar per compile group that says when it is compiling, then counts
+    """Progress on stderr: a bar per group that says when it is compiling, then counts
     epochs as they finish; and a bar for the whole study, in runs, with the finishing estimate.
     Worker processes compute several groups at once: every event names its group."""
 

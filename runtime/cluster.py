@@ -1,4 +1,4 @@
-"""Scale-out: a study's compile groups executed on a Dask cluster, with the bits of one machine.
+"""Scale-out: a study's groups executed on a Dask cluster, with the bits of one machine.
 
 Contract: :class:`DaskExecutor` is an executor in the sense of :class:`runtime.execute.InProcess`
 — ``run(groups, data, environment, progress)`` yields ``(group, GroupResult)`` as groups finish,
@@ -98,7 +98,7 @@ def _execute_on_worker(group, dataset) -> GroupResult:
 
 
 class DaskExecutor:
-    """Runs each compile group as one task of a Dask scheduler (see the module docstring).
+    """Runs each group as one task of a Dask scheduler (see the module docstring).
 
     ``connect_seconds`` bounds reaching the scheduler, ``worker_seconds`` the wait for its first
     worker. Use as a context manager, or call :meth:`open` and :meth:`close`."""

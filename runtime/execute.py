@@ -1,4 +1,4 @@
-"""Execution: compile groups, run their lanes, turn the numbers into result-set rows.
+"""Execution: compile a group's program, run its lanes, turn the numbers into result-set rows.
 
 The seam is :func:`execute_group`: one :class:`~runtime.plan.Group` and its data in, a
 :class:`GroupResult` out. It needs nothing else from the process, so a group can be executed in

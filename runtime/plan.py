@@ -1,4 +1,5 @@
-"""Planning: a study's runs (variant × seed) grouped into compile groups of a fixed lane width.
+"""Planning: a study's runs (variant × seed) in groups — runs of one program computed together in
+one call — of a fixed lane width.
 
 Every variant with the same program key shares one XLA program, vmapped over lanes of
 (knobs, seed). The lane width is part of what decides a run's bits (XLA:CPU results depend on the

@@ -412,7 +412,7 @@ def run_until_decided(loaded, out: Path, rule, *, axis: str | None = None, **kw)
     (:mod:`runtime.sequential`, the questions of :func:`runtime.diff.sequential_design`).
 
     Each look is one :func:`run_study` of only the runs it needs (arms still open, the round's new
-    seeds), so settled arms stop consuming compute and open ones share compile groups; the next
+    seeds), so settled arms stop consuming compute and open ones share groups; the next
     look is found by replaying the rule over the stored runs. The rule's decisions at a look
     depend only on the runs of that look, so a killed procedure, run again, replays to where it
     stopped and continues with the same decisions and the same seeds. Returns the report of each

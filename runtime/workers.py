@@ -1,4 +1,4 @@
-"""Every core of this machine: a study's compile groups in worker processes, with one machine's bits.
+"""Every core of this machine: a study's groups in worker processes, with one machine's bits.
 
 Contract: :class:`LocalWorkers` is an executor in the sense of :class:`runtime.execute.InProcess`
 — ``run(groups, data, environment, progress)`` yields ``(group, GroupResult)`` as groups finish,
@@ -80,7 +80,7 @@ def _execute(group, dataset) -> GroupResult:
 
 
 class LocalWorkers:
-    """Runs compile groups in ``workers`` processes on this machine (see the module docstring)."""
+    """Runs groups in ``workers`` processes on this machine (see the module docstring)."""
 
     def __init__(self, workers: int | None = None, checkpoint: Callable[[], None] | None = None):
         self.workers = max(1, workers if workers is not None else usable_cores())
