@@ -193,7 +193,7 @@ def test_the_printed_estimate_is_for_the_workers_the_run_uses(one_and_two):
     # is one compile and one group's execution, not the sum over groups.
     _, _, events, infos = one_and_two
     estimate = infos[events.index("plan")]["estimate"]
-    assert estimate.workers == 2 and estimate.describe().endswith(" on 2 workers")
+    assert estimate.workers == 2 and " on 2 workers" in estimate.describe()
 
 
 def test_an_interrupt_keeps_what_was_stored_and_ends_the_workers(tiny_spec, tmp_path):
