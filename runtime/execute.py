@@ -1,17 +1,17 @@
-"""Execution: compile groups, run their lanes, turn the numbers into result-set rows.
+"""Execution: compile a group's program, run its lanes, turn the numbers into result-set rows.
 
 The seam is :func:`execute_group`: one :class:`~runtime.plan.Group` and its data in, a
 :class:`GroupResult` out. It needs nothing else from the process, so a group can be executed in
 another process or on another machine and its result written here.
 
-Inside a group one program per structure is compiled (``vmap`` over lanes of (knobs, seed key)
+Inside a group one program per program key is compiled (``vmap`` over lanes of (knobs, seed key)
 of the compiler's per-epoch function, steps in ``lax.scan``) and called once per epoch from
 Python; the data stays on the device across epochs and only the per-epoch metrics come back.
-The program (:func:`compiler.build.compile_structure` of the group's variants) packs the lanes'
+The program (:func:`compiler.build.compile_program` of the group's variants) packs the lanes'
 knobs itself and decides which work its zero knobs let it leave out; programs compile with XLA's
 default options. With a test split, each lane's test rows are scored once, after the last epoch,
 with the weights of the epoch the study judges it at (``_Judge``). With the compile cache on, a
-structure's executables are loaded from and stored in :mod:`runtime.programs`; replay always
+program key's executables are loaded from and stored in :mod:`runtime.programs`; replay always
 compiles afresh.
 """
 
@@ -65,13 +65,13 @@ class GroupResult:
     run_cpu_seconds: float = 0.0
 
 
-# Compiled (init, epoch) per (structure, lane width, data signature, knobs zero in every lane), reused
-# by every group of a structure within one process.
+# Compiled (init, epoch) per (program key, lane width, data signature, knobs zero in every lane), reused
+# by every group of a program key within one process.
 _programs: dict[tuple, tuple] = {}
 
 
 def _program_key(group: Group, dataset, zero: frozenset[str]) -> tuple:
-    return group.structure, group.lane_width, programs.data_signature(dataset), zero
+    return group.program, group.lane_width, programs.data_signature(dataset), zero
 
 
 def preparation(groups: list[Group], data: dict, environment: dict) -> dict[str, str]:
@@ -142,17 +142,17 @@ def execute_group(group: Group, dataset, environment: dict,
                   keep_arrays: bool = False) -> GroupResult:
     """Train every run of a group at the group's lane width and return its numbers.
 
-    ``reuse=False`` compiles afresh even when this process already compiled the structure
+    ``reuse=False`` compiles afresh even when this process already compiled the program
     (replay proves the bits with a new compile). ``keep_arrays`` returns each lane's trained
     arrays too (export); runs never store them."""
     import jax
 
-    from compiler.build import compile_structure, param_hash
+    from compiler.build import compile_program, param_hash
     from compiler.normalization import diagnose
 
     # Padding copies a real run, so it never adds a non-zero to a knob that is 0 in every run.
     lanes = list(group.runs) + [group.runs[0]] * group.padding
-    program = compile_structure([r.variant.spec for r in group.runs], dataset)
+    program = compile_program([r.variant.spec for r in group.runs], dataset)
     knobs = program.pack([r.variant.spec for r in lanes])
     seeds = np.array([r.seed for r in lanes], dtype=np.int32)
 
@@ -254,8 +254,8 @@ class InProcess:
 
     An executor's contract: ``run(groups, data, environment, progress)`` yields
     ``(group, GroupResult)`` as groups finish, in any order; ``data`` maps a group id to its
-    Dataset; ``progress`` (or None) receives the ("group", group=…) and ("epoch", done=…, total=…)
-    events. The caller writes each result as it arrives.
+    Dataset; ``progress`` (or None) receives the ("group", group=…) and ("epoch", group=…, done=…,
+    total=…) events. The caller writes each result as it arrives.
 
     ``checkpoint()`` (optional) is called before each group and after each epoch, outside any
     jax call, so that it may raise to abandon the group in flight (Ctrl-C)."""
@@ -266,11 +266,13 @@ class InProcess:
     def run(self, groups, data, environment, progress=None):
         check = self.checkpoint
 
-        def on_epoch(done, total):
-            if progress:
-                progress("epoch", done=done, total=total)
-            if check:
-                check()
+        def on_epoch(g):
+            def told(done, total):
+                if progress:
+                    progress("epoch", group=g, done=done, total=total)
+                if check:
+                    check()
+            return told
 
         for g in groups:
             if check:
@@ -278,4 +280,4 @@ class InProcess:
             if progress:
                 progress("group", group=g, todo=len(g.runs))
             yield g, execute_group(g, data[g.group_id], environment,
-                                   on_epoch=on_epoch if check or progress else None)
+                                   on_epoch=on_epoch(g) if check or progress else None)

@@ -6,8 +6,8 @@ Contract:
   wall seconds of executing ``groups`` (``data`` maps a group id to its
   :class:`compiler.data.Dataset`) in this process or side by side in ``workers`` processes,
   without compiling or running anything;
-- :func:`lane_budget` ``(groups, data, budget_bytes=None) -> {structure: lanes}``: for each
-  structure, the most lanes whose estimate fits in ``budget_bytes`` (default
+- :func:`lane_budget` ``(groups, data, budget_bytes=None) -> {program key: lanes}``: for each
+  program key, the most lanes whose estimate fits in ``budget_bytes`` (default
   :func:`memory_budget`), for :func:`runtime.plan.plan`'s ``lane_budget``;
 - :func:`check_data` ``(groups, where, base_dir, available=None)`` raises :class:`ResourceError`
   before a built-in data set too large to generate is drawn, or a data file too large to load (by
@@ -18,7 +18,7 @@ Contract:
 
 Memory model (float32 everywhere; a run's state is its lane's share of a vmapped program):
 
-- data: the host arrays and one device copy per (structure, data set), since compiled programs
+- data: the host arrays and one device copy per (program key, data set), since compiled programs
   keep theirs for the whole invocation;
 - per lane (:func:`per_lane_bytes`): from the network family's declared cost
   (``compiler.model.FAMILIES``: parameters, activations per example, weight masks), parameters,
@@ -45,7 +45,7 @@ estimates of later runs on an idle one. The machine's load now is applied on top
 (:func:`slowdown`), and the estimate says when it does.
 
 The lane budget is taken from a fixed share of the machine's *total* memory, not from what
-happens to be free, so the lane width of a structure (which decides a run's bits) is the same on
+happens to be free, so the lane width of a program (which decides a run's bits) is the same on
 every invocation on one machine; only the refusal looks at the memory free right now.
 """
 
@@ -225,7 +225,7 @@ def _parallel_seconds(groups: list[Group], data: dict, execute: list[float], act
     stored: dict = {}
     first: dict = {}
     for g, run, action in zip(groups, execute, actions):
-        key = (g.structure, g.lane_width, id(data[g.group_id]))
+        key = (g.program, g.lane_width, id(data[g.group_id]))
         first.setdefault(key, action)
         w = free.index(min(free))
         start = free[w]
@@ -247,12 +247,12 @@ def estimate(groups: list[Group], data: dict, *, preparation: dict[str, str] | N
     """Peak memory (per process) and rough wall time of executing ``groups``: one after another
     in this process, or handed out to ``workers`` worker processes side by side (more than one
     worker and one group). ``preparation`` (group id -> compile, load or reuse, from
-    :func:`runtime.execute.preparation`) defaults to one compile per structure and data set;
+    :func:`runtime.execute.preparation`) defaults to one compile per program and data set;
     ``calibration`` defaults to the idle-machine constants. ``load`` (the one-minute load
     average; ``None``: this machine's now) slows everything by :func:`slowdown`; the default
     0 estimates an idle machine."""
     host = {id(data[g.group_id]): data[g.group_id] for g in groups}
-    device = {(g.structure, id(data[g.group_id])): data[g.group_id] for g in groups}
+    device = {(g.program, id(data[g.group_id])): data[g.group_id] for g in groups}
     data_bytes = sum(d.x.nbytes + d.y.nbytes for d in [*host.values(), *device.values()])
     widest, lanes, lane = 0, 1, 0
     for g in groups:
@@ -265,7 +265,7 @@ def estimate(groups: list[Group], data: dict, *, preparation: dict[str, str] | N
         seen: set = set()
         actions = []
         for g in groups:
-            key = (g.structure, id(data[g.group_id]))
+            key = (g.program, id(data[g.group_id]))
             actions.append("reuse" if key in seen else "compile")
             seen.add(key)
     else:
@@ -286,8 +286,8 @@ def estimate(groups: list[Group], data: dict, *, preparation: dict[str, str] | N
 
 
 def lane_budget(groups: list[Group], data: dict, budget_bytes: int | None = None) -> dict[str, int]:
-    """Most lanes per structure (at least 1) whose estimate, with its own data set, fits
-    ``budget_bytes``. It depends on nothing but the structure, its data and the machine, so a
+    """Most lanes per program key (at least 1) whose estimate, with its own data set, fits
+    ``budget_bytes``. It depends on nothing but the program, its data and the machine, so a
     resumed study gets the widths its first invocation had."""
     budget = memory_budget() if budget_bytes is None else budget_bytes
     out: dict[str, int] = {}
@@ -295,7 +295,7 @@ def lane_budget(groups: list[Group], data: dict, budget_bytes: int | None = None
         d = data[g.group_id]
         room = budget - RUNTIME_BYTES - 2 * (d.x.nbytes + d.y.nbytes)
         fits = max(1, int(room // (XLA_SLACK * per_lane_bytes(g, d))))
-        out[g.structure] = min(out.get(g.structure, fits), fits)
+        out[g.program] = min(out.get(g.program, fits), fits)
     return out
 
 

@@ -1,6 +1,6 @@
 """The resource guard (runtime/guard.py): its time model against the grids measured on this
 machine, its memory model against the operating system's own accounting, narrower lanes when a
-structure would not fit, and a one-line refusal (exit 2) naming the knob to turn."""
+program would not fit, and a one-line refusal (exit 2) naming the knob to turn."""
 
 from __future__ import annotations
 
@@ -58,7 +58,7 @@ def test_groups_are_handed_out_to_the_first_free_worker():
 
 
 def test_the_time_estimate_with_workers_is_the_busiest_workers_wall_time():
-    # The 16-run grid at 4 lanes: 4 groups of one structure. One process compiles once and runs
+    # The 16-run grid at 4 lanes: 4 groups of one program. One process compiles once and runs
     # the groups one after another; on 2 workers each worker compiles (the cache is empty when
     # both start) and runs 2 groups; with the program cached, each worker loads it instead.
     groups, data = _grid(2048, 16, [32, 32], 4, 64, 20, lanes=4)
@@ -101,8 +101,8 @@ def test_lane_budget_gives_the_widest_that_fits():
     fixed = guard.RUNTIME_BYTES + 2 * (d.x.nbytes + d.y.nbytes)
     for lanes in (1, 3, 7):
         budget = fixed + int(guard.XLA_SLACK * per_lane * lanes) + 1
-        assert guard.lane_budget(groups, data, budget) == {g.structure: lanes}
-    assert guard.lane_budget(groups, data, 0) == {g.structure: 1}
+        assert guard.lane_budget(groups, data, budget) == {g.program: lanes}
+    assert guard.lane_budget(groups, data, 0) == {g.program: 1}
 
 
 def test_this_machines_memory_matches_the_operating_system():
@@ -127,7 +127,7 @@ def test_check_passes_what_fits_and_names_the_lanes_knob_otherwise():
 
 @pytest.fixture(scope="module")
 def narrowed(tmp_path_factory, tiny_spec):
-    """The tiny study (6 runs of one structure) run with a memory budget that fits 2 lanes."""
+    """The tiny study (6 runs of one program) run with a memory budget that fits 2 lanes."""
     tmp = tmp_path_factory.mktemp("narrow")
     loaded = load_study(tiny_spec(tmp, "narrow"))
     groups = plan(loaded.variants, loaded.seeds)
@@ -146,7 +146,7 @@ def narrowed(tmp_path_factory, tiny_spec):
     return loaded, first, again, events
 
 
-def test_a_structure_that_does_not_fit_gets_narrower_lanes(narrowed):
+def test_a_program_that_does_not_fit_gets_narrower_lanes(narrowed):
     loaded, first, again, events = narrowed
     rs = open_result_set(first.path)
     assert set(rs.runs.column("lane_width").to_pylist()) == {2}

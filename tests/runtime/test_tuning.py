@@ -127,7 +127,7 @@ def test_log_range_and_equal_budget():
     # the base and the listed arm, each with the same three rates (log-spaced: common practice)
     rates = Counter((v.arm.label, v.setting["optimizer.learning_rate"]) for v in loaded.variants)
     assert rates == {(a, r): 1 for a in ("base", "heavy") for r in (0.001, 0.01, 0.1)}
-    assert len({v.structure for v in loaded.variants}) == 1      # knobs: lanes, not programs
+    assert len({v.program for v in loaded.variants}) == 1      # knobs: lanes, not programs
 
 
 # ── a constructed study: a shared rate misleads, tuning inside arms does not ────────────────────
@@ -341,7 +341,7 @@ def test_until_decided_adds_seeds_to_every_setting_of_the_open_arms(shared, tmp_
 
 
 def test_test_rows_are_apart_and_standardization_ignores_them():
-    from compiler.build import compile_structure, seed_key
+    from compiler.build import compile_program, seed_key
     from compiler.data import load_data
 
     text = BASE.format(samples=200, validation=0.25, test=0.2)
@@ -350,7 +350,7 @@ def test_test_rows_are_apart_and_standardization_ignores_them():
     ds = load_data(held, Path("."))
     carries = {}
     for name, spec in (("held", held), ("plain", plain)):
-        prog = compile_structure([spec], ds)
+        prog = compile_program([spec], ds)
         knobs = {k: v[0] for k, v in prog.pack([spec]).items()}
         carries[name] = prog.init(knobs, seed_key(5), ds.x, ds.y)
         assert prog.test_names == (("test_divergence", "test_accuracy", "test_macro_f1", "test_recall_0", "test_recall_1",

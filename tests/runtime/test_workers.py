@@ -151,13 +151,45 @@ def test_runs_from_workers_record_a_one_thread_pool(one_and_two):
     assert envs == {1}
 
 
-def test_workers_report_each_group_when_it_is_back(one_and_two):
-    _, _, events, _ = one_and_two
+def test_workers_report_each_group_as_it_starts_then_its_epochs(one_and_two):
+    _, _, events, infos = one_and_two
     assert events.count("group") == events.count("stored") == 2
+    # every epoch event names its group, which has started and is not stored yet
+    running = set()
+    for event, info in zip(events, infos):
+        if event == "group":
+            running.add(info["group"].group_id)
+        elif event == "epoch":
+            assert info["group"].group_id in running and info["done"] == info["total"] == 1
+        elif event == "stored":
+            running.remove(info["group"].group_id)
+    assert events.count("epoch") == 2 and not running
+
+
+def test_worker_events_reach_progress_in_order_and_once():
+    import queue
+    from types import SimpleNamespace
+
+    from runtime.workers import _Relay
+
+    run = SimpleNamespace(variant=SimpleNamespace(spec=SimpleNamespace(training=SimpleNamespace(epochs=3))))
+    a, b = (SimpleNamespace(group_id=gid, runs=[run]) for gid in ("a", "b"))
+    told, events = [], queue.Queue()
+    relay = _Relay(lambda event, **info: told.append((event, info["group"].group_id, info.get("done"))),
+                   {"a": a, "b": b}, events)
+    events.put(("group", "a", 0, 0))
+    events.put(("epoch", "a", 1, 3))
+    relay.relay()
+    assert told == [("group", "a", None), ("epoch", "a", 1)]      # as the worker sends them
+    relay.finished(a)                                              # back before its last epochs
+    relay.finished(b)                                              # a group whose events never came
+    events.put(("epoch", "a", 2, 3))                               # late: already told whole
+    relay.relay()
+    assert told[2:] == [("epoch", "a", 3), ("group", "b", None), ("epoch", "b", 3)]
 
 
 def test_the_printed_estimate_is_for_the_workers_the_run_uses(one_and_two):
-    # Two groups of one structure on two workers: both compile side by side, so the wall time
+    # Two groups of one program on two workers: both compile side by side, so the wall time
     # is one compile and one group's execution, not the sum over groups.
     _, _, events, infos = one_and_two
     estimate = infos[events.index("plan")]["estimate"]
