@@ -313,12 +313,17 @@ def sequential_design(rs: ResultSet, rule: Rule, first: list[int], *, axis: str 
     stored: dict[str, set] = {}
     for h, seed in zip(cols["variant_hash"], cols["seed"]):
         stored.setdefault(h, set()).add(seed)
+    # A question names arms; a tuned arm's seed needs a run of every setting of the arm.
+    runs_of: dict[str, list[str]] = {}
+    for v in _loaded(rs).variants:
+        runs_of.setdefault((v.arm or v).hash, []).append(v.hash)
     p = Procedure(rule, first)
     judged: dict = {}
     needed = frozenset().union(*(start["uses"] for _, _, start, _ in contrasts))
     while True:
         keep = set(p.seeds)
-        missing = {h: sorted(keep - stored.get(h, set())) for h in sorted(needed) if keep - stored.get(h, set())}
+        members = sorted(h for arm in needed for h in runs_of.get(arm, [arm]))
+        missing = {h: sorted(keep - stored.get(h, set())) for h in members if keep - stored.get(h, set())}
         if missing:
             return Sequential(p, judged, missing)
         rows = []
@@ -460,7 +465,7 @@ def diff_design(rs: ResultSet, *, axis: str | None = None, metrics: list[str] | 
     the same pairs over each seed's mean across the other axes' combinations (seeds with a non-finite
     run among them are left out); and for each other axis L the K × L interaction
     (:func:`runtime.stats.interaction_test`, seeds as subjects, other axes averaged). One change
-    at a time and lists compare each variant with ``base``.
+    at a time and lists compare each variant with ``base`` (a list without it: with its first variant).
 
     A result set whose seeds a stopping rule chose (``lesion run --until-decided``) is judged by
     that rule, replayed over its runs (:func:`sequential_design`), for the questions it was run
@@ -494,10 +499,9 @@ def _design_families(rs: ResultSet, axis: str | None, metrics: list[str] | None)
         if axis is not None:
             raise ResultSetError(f"--axis applies to a grid; this study's ablation is {ablation['mode']!r}")
         labels = [v["label"] for v in _variants(rs)]
-        if "base" not in labels:
-            raise ResultSetError("this study has no 'base' variant to compare with: name the reference with "
-                                 f"--baseline LABEL (labels: {', '.join(labels)})")
-        return _baseline_families(rs, "base", metrics)
+        # Without a base (include_base = false), the first listed variant is the reference, as
+        # in the report; the question names it.
+        return _baseline_families(rs, "base" if "base" in labels else labels[0], metrics)
     # the axes as written (0.0 stays 0.0, as in the labels), not as canonical JSON
     axes = [(a.key, list(a.values)) for a in _loaded(rs).spec.ablation.axis]
     keys = [k for k, _ in axes]

@@ -59,6 +59,10 @@ class GroupResult:
     compile_seconds: float
     run_seconds: float
     environment: dict
+    # CPU seconds of the computing process (one XLA thread): what the group costs on an idle
+    # core, whatever else the machine was doing; the time estimate is calibrated by these.
+    compile_cpu_seconds: float = 0.0
+    run_cpu_seconds: float = 0.0
 
 
 # Compiled (init, epoch) per (structure, lane width, data signature, knobs zero in every lane), reused
@@ -100,8 +104,8 @@ def _compiled(group: Group, program, dataset, knobs, seeds, reuse: bool, environ
     zero = program.zero_knobs
     key = _program_key(group, dataset, zero)
     if reuse and key in _programs:
-        return _programs[key] + (0.0,)
-    t0 = time.perf_counter()
+        return _programs[key] + (0.0, 0.0)
+    t0, c0 = time.perf_counter(), time.process_time()
     # Programs see only the data's shapes: the rows are arguments, put on the device per group.
     x, y = (jax.ShapeDtypeStruct(a.shape, a.dtype) for a in (dataset.x, dataset.y))
     # With the compile cache on, the executables themselves are stored under a name derived
@@ -128,9 +132,9 @@ def _compiled(group: Group, program, dataset, knobs, seeds, reuse: bool, environ
             programs.store_programs(path, (init_c, epoch_c))
     # Picking fields of the carry needs no program: vmap without jit compiles nothing.
     status, params = jax.vmap(program.status), jax.vmap(program.params)
-    seconds = time.perf_counter() - t0
+    seconds, cpu = time.perf_counter() - t0, time.process_time() - c0
     _programs[key] = (program, init_c, epoch_c, status, params)
-    return _programs[key] + (seconds,)
+    return _programs[key] + (seconds, cpu)
 
 
 def execute_group(group: Group, dataset, environment: dict,
@@ -152,10 +156,10 @@ def execute_group(group: Group, dataset, environment: dict,
     knobs = program.pack([r.variant.spec for r in lanes])
     seeds = np.array([r.seed for r in lanes], dtype=np.int32)
 
-    program, init_c, epoch_c, status_fn, params_fn, compile_seconds = _compiled(
+    program, init_c, epoch_c, status_fn, params_fn, compile_seconds, compile_cpu = _compiled(
         group, program, dataset, knobs, seeds, reuse, environment)
     x, y = jax.device_put(dataset.x), jax.device_put(dataset.y)
-    t0 = time.perf_counter()
+    t0, c0 = time.perf_counter(), time.process_time()
     carry = init_c(knobs, seeds, x, y)
     judge = _Judge(program, group, len(lanes), carry)
     per_epoch = []
@@ -168,7 +172,7 @@ def execute_group(group: Group, dataset, environment: dict,
             on_epoch(e + 1, program.epochs)
     tested, judged_at = judge.scores(carry, x, y)
     per_epoch, (non_finite, at), params = jax.device_get((per_epoch, status_fn(carry), params_fn(carry)))
-    run_seconds = time.perf_counter() - t0
+    run_seconds, run_cpu = time.perf_counter() - t0, time.process_time() - c0
 
     names = program.metric_names
     stacked = {m: np.stack([np.asarray(ep[m], dtype=np.float32) for ep in per_epoch]) for m in names}
@@ -186,7 +190,7 @@ def execute_group(group: Group, dataset, environment: dict,
             arrays=_lane_arrays(lane_params, carry, i) if keep_arrays else None,
         ))
     return GroupResult(group.group_id, group.lane_width, names, program.test_names, results, compile_seconds,
-                       run_seconds, environment)
+                       run_seconds, environment, compile_cpu, run_cpu)
 
 
 class _Judge:

@@ -362,7 +362,7 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
             preparation = execute.preparation(todo, data, env)
             calibration = guard.Calibration.load(_timing_path())
             estimate = guard.estimate(todo, data, preparation=preparation, calibration=calibration,
-                                      workers=workers)
+                                      workers=workers, load=None)
         planned = sum(len(g.runs) for g in groups)
         if progress:
             progress("plan", groups=len(todo), runs=sum(len(g.runs) for g in todo), planned=planned,
@@ -372,11 +372,11 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
         compile_s = run_s = 0.0
         current = stored
         started = time.perf_counter()
-        compiled, loaded_s, busy = [], [], {}
+        compiled, loaded_s, busy, run_cpu = [], [], {}, 0.0
         check()
         for g, result in (executor or LocalWorkers(workers, checkpoint=checkpoint)).run(todo, data, env, progress):
             if estimate is not None and preparation[g.group_id] != "reuse":
-                (compiled if preparation[g.group_id] == "compile" else loaded_s).append(result.compile_seconds)
+                (compiled if preparation[g.group_id] == "compile" else loaded_s).append(result.compile_cpu_seconds)
             runs_t, curves_t = group_tables(result, g, loaded.study_hash, headline, key_columns,
                                             data[g.group_id].data_hash)
             current = write_results(target, meta, runs_t, curves_t, previous=current)
@@ -384,17 +384,20 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
             warnings += [f"{lane.run_id}: {w}" for lane in result.lanes for w in lane.warnings]
             compile_s += result.compile_seconds
             run_s += result.run_seconds
+            run_cpu += result.run_cpu_seconds
             busy[g.group_id] = result.compile_seconds + result.run_seconds
             if progress:
                 progress("stored", group=g, result=result)
             check()
         if estimate is not None and todo:
-            # What this invocation measured calibrates the next estimate on this machine.
-            # Groups that computed side by side overlap: what is left besides them is the
-            # elapsed time less the busiest worker's.
+            # What this invocation measured calibrates the next estimate on this machine, as
+            # an idle core would have taken it: CPU seconds of the computing processes. Groups
+            # that computed side by side overlap: what is left besides them is the elapsed time
+            # less the busiest worker's, taken back to an idle machine by the load seen now.
             rest = time.perf_counter() - started - guard.schedule([busy[g.group_id] for g in todo], workers)
+            rest /= guard.slowdown(processes=0)
             modelled = sum(guard.model_seconds(g, data[g.group_id]) for g in todo)
-            calibration.updated(compiled=compiled, loaded=loaded_s, executed=(run_s, modelled),
+            calibration.updated(compiled=compiled, loaded=loaded_s, executed=(run_cpu, modelled),
                                 other=(rest, len(todo))).save(_timing_path())
         if current is None:  # nothing to compute and nothing stored: an empty study cannot happen
             raise ResultSetError(f"{path}: nothing was computed")
@@ -421,9 +424,6 @@ def run_until_decided(loaded, out: Path, rule, *, axis: str | None = None, **kw)
     from runtime.diff import sequential_design
 
     spec = loaded.spec
-    if spec.ablation is not None and spec.ablation.tune is not None:
-        raise ResultSetError(f"{loaded.path}: --until-decided adds seeds to variants, and a tuned study compares "
-                             "arms (each its pick per seed); run it with a fixed number of seeds (study.seeds)")
     first = spec.study.seed_list
     record = {**rule.as_dict(), "first": first, "axis": axis, "metric": spec.study.metric}
     path = result_dir(out, spec.study.name, loaded.study_hash)

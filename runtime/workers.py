@@ -29,11 +29,16 @@ group at a time with :func:`runtime.execute.execute_group`; the caller stays the
 
 from __future__ import annotations
 
+import atexit
 import ctypes
 import multiprocessing
+import shlex
+import shutil
 import signal
 import sys
-import threading
+import tempfile
+from multiprocessing import spawn
+from pathlib import Path
 from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 from concurrent.futures.process import BrokenProcessPool
 from typing import Callable
@@ -69,6 +74,23 @@ def _start_worker() -> None:
     _worker_env = capture()
 
 
+def _launcher() -> Path:
+    """An executable that starts this Python with SIGINT ignored, made once per process in a
+    private temporary folder (removed at exit)."""
+    global _launch_path
+    if _launch_path is None or not _launch_path.exists():
+        folder = Path(tempfile.mkdtemp(prefix="lesion-workers-"))
+        atexit.register(shutil.rmtree, folder, True)
+        path = folder / "python"
+        path.write_text(f"#!/bin/sh\ntrap '' INT\nexec {shlex.quote(sys.executable)} \"$@\"\n")
+        path.chmod(0o700)
+        _launch_path = path
+    return _launch_path
+
+
+_launch_path: Path | None = None
+
+
 def _execute(group, dataset) -> GroupResult:
     return execute_group(group, dataset, _worker_env)
 
@@ -87,19 +109,28 @@ class LocalWorkers:
             yield from InProcess(checkpoint=self.checkpoint).run(groups, data, environment, progress)
             return
         check = self.checkpoint or (lambda: None)
-        # Workers inherit an ignored SIGINT from the moment they exist (an ignored signal stays
-        # ignored across exec, and Python keeps it so): a Ctrl-C at a terminal reaches the whole
-        # process group, and a worker still importing jax would otherwise die of it.
-        main = threading.current_thread() is threading.main_thread()
-        previous = signal.signal(signal.SIGINT, signal.SIG_IGN) if main else None
+        context = multiprocessing.get_context("spawn")
+        # A Ctrl-C at a terminal reaches the whole process group, and a worker still importing
+        # jax would die of it: workers start through a launcher that ignores SIGINT before
+        # Python does anything (an ignored signal stays ignored across exec, and Python keeps it
+        # so). This process never ignores it, so a Ctrl-C pressed while the workers are being
+        # started is not lost (it was, when this process ignored SIGINT to pass that on).
+        spawn.set_executable(str(_launcher()))
+        pool = ProcessPoolExecutor(n, mp_context=context, initializer=_start_worker)
+        pending: dict = {}
+        finished = False
         try:
-            pool = ProcessPoolExecutor(n, mp_context=multiprocessing.get_context("spawn"),
-                                       initializer=_start_worker)
-            pending = {pool.submit(_execute, g, data[g.group_id]): g for g in groups}
-        finally:
-            if main:
-                signal.signal(signal.SIGINT, previous)
-        try:
+            try:
+                for g in groups:
+                    pending[pool.submit(_execute, g, data[g.group_id])] = g
+            except (BrokenProcessPool, OSError):
+                # A worker that died while others were still being started (a Ctrl-C before its
+                # launcher ignored SIGINT) leaves the pool unusable.
+                check()
+                raise WorkerError("a worker process ended while the workers were starting; nothing was "
+                                  "computed: run the same command again") from None
+            finally:
+                spawn.set_executable(sys.executable)
             while pending:
                 check()
                 done, _ = wait(pending, timeout=_POLL_SECONDS, return_when=FIRST_COMPLETED)
@@ -108,6 +139,7 @@ class LocalWorkers:
                     try:
                         result = fut.result()
                     except BrokenProcessPool:
+                        check()  # a worker ended by a Ctrl-C before its launcher ignored it
                         raise WorkerError(f"a worker process died while computing group {g.group_id} "
                                           "(killed, or out of memory?); the groups finished so far are "
                                           "stored: run the same command again to resume") from None
@@ -116,8 +148,9 @@ class LocalWorkers:
                         progress("group", group=g, todo=len(g.runs))
                         progress("epoch", done=epochs, total=epochs)
                     yield g, result
+            finished = True
         finally:
-            if pending:
+            if not finished:
                 # Groups still running would finish unseen (their results are dropped), so the
                 # workers end now instead of keeping the interrupted study alive.
                 # ProcessPoolExecutor only gains terminate_workers() in Python 3.14.

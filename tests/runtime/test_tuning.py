@@ -311,14 +311,33 @@ def test_report_of_a_tuned_study(shared):
     assert "arms tuned inside" in page and "budget:momentum" in page and "budget:plain" in page
 
 
-def test_until_decided_refuses_a_tuned_study(shared, tmp_path):
+def test_until_decided_adds_seeds_to_every_setting_of_the_open_arms(shared, tmp_path):
+    # The stopping rule judges the arms as diff does (each its pick per seed); a look's new seed
+    # is a new replicate of the whole tune-then-test procedure, so every setting of an open arm
+    # runs on it. A narrow margin keeps the question open past the first look.
+    from runtime.diff import sequential_design
     from runtime.runner import run_until_decided
     from runtime.sequential import Rule
-    from runtime.store import ResultSetError
 
     loaded = study_of(shared)
-    with pytest.raises(ResultSetError, match="tuned study compares arms"):
-        run_until_decided(loaded, tmp_path, Rule(margin=0.05, max_seeds=16, round=4, alpha=0.05))
+    rule = Rule(margin=0.005, max_seeds=12, round=4)
+    reports, seq = run_until_decided(loaded, tmp_path, rule)
+    rs = open_result_set(reports[-1].path)
+    cols = rs.runs.to_pydict()
+    seeds = {}
+    for label, seed in zip(cols["variant_label"], cols["seed"]):
+        seeds.setdefault(label, set()).add(seed)
+    assert len(reports) > 1 and max(cols["seed"]) >= 8              # seeds beyond the spec's were added
+    assert len({frozenset(s) for s in seeds.values()}) == 1          # every setting of both arms, same seeds
+    assert len(seeds) == 4
+    # the values judged at the last look are the arms' picks on those seeds, on the test split
+    (question, start, comparison, (a, b)), = seq.judged.values()
+    picks = {p.arm.label: p.picks for p in arm_picks(rs, study_of(rs))}
+    assert start["metric"] == "val_accuracy" and comparison.n_a == len(a) == len(seq.procedure.seeds)
+    assert a == {s: picks[start["variant_a"]][s].tests["test_accuracy"] for s in a}
+    assert b == {s: picks[start["variant_b"]][s].tests["test_accuracy"] for s in b}
+    again = sequential_design(rs, rule, loaded.spec.study.seed_list)
+    assert again.done and again.procedure.settled == seq.procedure.settled
 
 
 def test_test_rows_are_apart_and_standardization_ignores_them():

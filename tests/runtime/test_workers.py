@@ -161,7 +161,7 @@ def test_the_printed_estimate_is_for_the_workers_the_run_uses(one_and_two):
     # is one compile and one group's execution, not the sum over groups.
     _, _, events, infos = one_and_two
     estimate = infos[events.index("plan")]["estimate"]
-    assert estimate.workers == 2 and estimate.describe().endswith(" on 2 workers")
+    assert estimate.workers == 2 and " on 2 workers" in estimate.describe()
 
 
 def test_an_interrupt_keeps_what_was_stored_and_ends_the_workers(tiny_spec, tmp_path):
@@ -179,6 +179,29 @@ def test_an_interrupt_keeps_what_was_stored_and_ends_the_workers(tiny_spec, tmp_
     assert stored.runs.num_rows == 2
     again = run_study(loaded, tmp_path / "out", lanes=2, workers=2)
     assert (again.computed, again.reused) == (4, 2)
+
+
+def test_a_ctrl_c_while_the_workers_start_stops_the_run(tiny_spec, tmp_path, monkeypatch):
+    # A Ctrl-C at a terminal goes to the whole process group: here to this process and to the
+    # worker just started, from inside the start of each worker. This process once ignored SIGINT
+    # while it started its workers, and such a Ctrl-C was lost: the run went on and exited 0.
+    import multiprocessing.util
+    import signal
+
+    loaded = load_study(tiny_spec(tmp_path, "starting", seeds=2, epochs=2))  # 4 runs: 2 groups of 2
+    start = multiprocessing.util.spawnv_passfds
+
+    def start_then_ctrl_c(path, args, passfds):
+        pid = start(path, args, passfds)
+        os.kill(pid, signal.SIGINT)
+        os.kill(os.getpid(), signal.SIGINT)
+        return pid
+
+    monkeypatch.setattr(multiprocessing.util, "spawnv_passfds", start_then_ctrl_c)
+    with interrupt_guard() as ctrl_c, pytest.raises(Interrupted):
+        run_study(loaded, tmp_path / "out", lanes=2, workers=2, checkpoint=ctrl_c.check)
+    assert ctrl_c.requested and multiprocessing.active_children() == []
+    assert not (tmp_path / "out" / loaded.result_set / "runs.parquet").exists()
 
 
 def test_a_study_of_one_group_stays_in_this_process(tiny_spec, tmp_path):
