@@ -26,6 +26,7 @@ and the weight norm act on).
 
 from __future__ import annotations
 
+import itertools
 import math
 from typing import Callable, NamedTuple
 
@@ -168,22 +169,40 @@ def mlp(hidden, out_width, activation, init, normalizer, dropout) -> Network:
 def convolve(x, kernel, stride: int, padding: str):
     """Cross-correlation of ``x`` (``[batch, *positions, in_channels]``) with ``kernel``
     (``[*window, in_channels, out_channels]``) along every spatial axis at ``stride``, ``"valid"``
-    (no padding) or ``"same"`` (zeros around the input, so stride 1 keeps its size)."""
+    (no padding) or ``"same"`` (zeros around the input, so stride 1 keeps its size).
+
+    Written as im2col: the input's window taps as static strided slices side by side (tap-major,
+    then input channel, the kernel's C order), then one matrix product. ``lax.conv_general_dilated``
+    computes the same, but XLA:CPU runs a convolution inside a loop body (the epoch's scan) far
+    more slowly than at the top of a program (jax-ml/jax#12868), and vmapped over lanes' kernels
+    it becomes a grouped convolution: measured on the benchmark's conv workload, one training step
+    of 16 lanes inside a scan took about 14× longer than this form, whose product vmaps into one
+    lane-batched ``dot_general``."""
     spatial = x.ndim - 2
-    layout = ("NWC", "WIO", "NWC") if spatial == 1 else ("NHWC", "HWIO", "NHWC")
-    pads = [shapes.padding(k, padding) for k in kernel.shape[:spatial]]
-    return jax.lax.conv_general_dilated(x, kernel, (stride,) * spatial, pads, dimension_numbers=layout)
+    window = kernel.shape[:spatial]
+    pads = [shapes.padding(k, padding) for k in window]
+    x = jnp.pad(x, ((0, 0), *pads, (0, 0)))
+    out = [(n - k) // stride + 1 for n, k in zip(x.shape[1:-1], window)]
+    taps = [x[(slice(None), *(slice(o, o + stride * (m - 1) + 1, stride) for o, m in zip(offset, out)))]
+            for offset in itertools.product(*(range(k) for k in window))]
+    columns = taps[0] if len(taps) == 1 else jnp.concatenate(taps, axis=-1)
+    return columns @ kernel.reshape(-1, kernel.shape[-1])
 
 
 def pool(x, window: int, pooling: str):
     """Non-overlapping ``window``×… pooling over every spatial axis of ``x`` (``[batch,
     *positions, channels]``): the maximum or the mean of each window; positions left over at
-    the end of an axis are dropped."""
+    the end of an axis are dropped.
+
+    A reshape into windows and a reduction over them, not ``lax.reduce_window``: its gradient
+    (``select_and_scatter``) vmapped over lanes measured about 6× slower than the reduction's.
+    The maximum's gradient goes to the window's largest entry, split evenly among equal ones."""
     spatial = x.ndim - 2
-    dims = (1, *(window,) * spatial, 1)
-    if pooling == "max":
-        return jax.lax.reduce_window(x, -jnp.inf, jax.lax.max, dims, dims, "VALID")
-    return jax.lax.reduce_window(x, 0.0, jax.lax.add, dims, dims, "VALID") / window ** spatial
+    kept = [n // window for n in x.shape[1:-1]]
+    x = x[(slice(None), *(slice(0, m * window) for m in kept))]
+    x = x.reshape(x.shape[0], *(d for m in kept for d in (m, window)), x.shape[-1])
+    axes = tuple(range(2, 2 + 2 * spatial, 2))
+    return jnp.max(x, axis=axes) if pooling == "max" else jnp.mean(x, axis=axes)
 
 
 def feature_shapes(in_shape, blocks) -> list[tuple[int, ...]]:
@@ -295,9 +314,10 @@ def conv_cost(in_shape, out_width, blocks, hidden, dropout, **fields) -> Cost:
     parameters = macs = 0
     activations, channels = math.prod(in_shape), in_shape[-1]
     maps = feature_shapes(in_shape, blocks)
-    for block, shape in zip(blocks, maps):
+    for block, shape in zip(blocks, [in_shape, *maps]):
         kernel = block.kernel ** spatial * channels * block.channels
-        positions = math.prod(shape[:-1]) * block.pool ** spatial
+        # Every position the convolution computes, also those a pooling window leaves over.
+        positions = math.prod(shapes.convolved(n, block) for n in shape[:-1])
         parameters += kernel + 3 * block.channels
         macs += positions * kernel
         activations += positions * block.channels

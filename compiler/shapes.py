@@ -6,6 +6,8 @@ Contract: a block is anything with ``channels``, ``kernel``, ``stride``, ``paddi
 or ``"valid"``) and ``pool`` (the spec's ``ConvBlock``); a shape is one example's, channels last.
 
 - :func:`padding` ``(kernel, padding) -> (before, after)`` zeros along one axis;
+- :func:`convolved` ``(n, block)``: positions along one axis after the block's convolution,
+  before its pooling (what the convolution computes and the backward pass keeps);
 - :func:`misfit` ``(in_shape, blocks) -> (index, message) | None``: why the blocks cannot take
   examples of ``in_shape`` (index None: no convolution takes that shape; else the first block
   that leaves no position), None when they fit;
@@ -14,7 +16,7 @@ or ``"valid"``) and ``pool`` (the spec's ``ConvBlock``); a shape is one example'
 
 from __future__ import annotations
 
-__all__ = ["padding", "misfit", "feature_shapes"]
+__all__ = ["padding", "convolved", "misfit", "feature_shapes"]
 
 
 def padding(kernel: int, padding: str) -> tuple[int, int]:
@@ -23,13 +25,18 @@ def padding(kernel: int, padding: str) -> tuple[int, int]:
     return (kernel // 2, (kernel - 1) // 2) if padding == "same" else (0, 0)
 
 
-def _positions(n: int, block) -> int:
-    """Positions along one axis after ``block``: a convolution of window ``k``, stride ``s`` and
-    padding ``(lo, hi)`` gives ``⌊(n + lo + hi − k)/s⌋ + 1``, then pooling of window ``p``
-    (stride ``p``, no padding) ``⌊·/p⌋``; 0 when the window does not fit."""
+def convolved(n: int, block) -> int:
+    """Positions along one axis after ``block``'s convolution, before its pooling: a window
+    ``k``, stride ``s`` and padding ``(lo, hi)`` give ``⌊(n + lo + hi − k)/s⌋ + 1``; 0 when the
+    window does not fit."""
     lo, hi = padding(block.kernel, block.padding)
-    m = (n + lo + hi - block.kernel) // block.stride + 1 if n + lo + hi >= block.kernel else 0
-    return m // block.pool
+    return (n + lo + hi - block.kernel) // block.stride + 1 if n + lo + hi >= block.kernel else 0
+
+
+def _positions(n: int, block) -> int:
+    """Positions along one axis after ``block``: its convolution, then pooling of window ``p``
+    (stride ``p``, no padding) ``⌊·/p⌋``."""
+    return convolved(n, block) // block.pool
 
 
 def misfit(in_shape, blocks) -> tuple[int | None, str] | None:

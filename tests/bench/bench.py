@@ -98,6 +98,19 @@ def lesion(spec: Path, cache: Path, out: Path, fresh: bool, w: dict, extra: tupl
     return r
 
 
+def with_torch(no_torch: bool) -> bool:
+    """Whether the PyTorch baseline runs; says why not on stderr. torch is not a dependency of
+    lesion, only of this benchmark."""
+    if no_torch:
+        print("PyTorch baseline skipped (--no-torch)", file=sys.stderr)
+    elif importlib.util.find_spec("torch") is None:
+        print("PyTorch baseline skipped: torch is not installed "
+              "(.venv/bin/pip install torch==2.13.0, or pip install -e '.[bench]')", file=sys.stderr)
+    else:
+        return True
+    return False
+
+
 def baseline(script: str, spec: Path) -> dict:
     r = child([PYTHON, str(HERE / script), str(spec)])
     r.update(json.loads(r.pop("stdout").strip().splitlines()[-1]))
@@ -227,12 +240,7 @@ def main() -> None:
     ways = ["lesion_cold", "lesion_warm", "lesion_warm_1w", "hand_jax", "import_jax"]
     if args.before:
         ways += ["before_cold", "before_warm", "before_warm_1w"]
-    if args.no_torch:
-        print("PyTorch baseline skipped (--no-torch)", file=sys.stderr)
-    elif importlib.util.find_spec("torch") is None:
-        print("PyTorch baseline skipped: torch is not installed "
-              "(.venv/bin/pip install torch==2.13.0, or pip install -e '.[bench]')", file=sys.stderr)
-    else:
+    if with_torch(args.no_torch):
         ways.append("hand_torch")
 
     started = datetime.now(timezone.utc)

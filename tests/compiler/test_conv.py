@@ -60,6 +60,36 @@ def test_pooling_is_the_numpy_window_reduction(pooling, window):
     np.testing.assert_allclose(model.pool(jnp.asarray(signal), window, pooling), ref1, rtol=1e-6, atol=1e-6)
 
 
+@pytest.mark.parametrize("pooling", ["max", "average"])
+def test_convolution_and_pooling_gradients_are_finite_differences(pooling):
+    # The gradient training takes, with respect to the input and the kernel, against central
+    # differences of the float64 references above (scipy.signal.correlate, NumPy windows) on a
+    # strided "same" convolution whose 2 × 2 pooling leaves a column over.
+    rng = np.random.default_rng(7)
+    x = rng.standard_normal((2, 7, 6, 2))
+    w = rng.standard_normal((3, 3, 2, 3))
+    c = rng.standard_normal((2, 2, 1, 3))
+
+    def reference(x, w):
+        u = _reference_correlation(x, w, 2, "same")[:, :4, :2]
+        u = u.reshape(2, 2, 2, 1, 2, 3)
+        return np.sum(c * (u.max(axis=(2, 4)) if pooling == "max" else u.mean(axis=(2, 4))))
+
+    def loss(x, w):
+        return jnp.sum(jnp.asarray(c, jnp.float32) * model.pool(model.convolve(x, w, 2, "same"), 2, pooling))
+
+    got = jax.grad(loss, (0, 1))(jnp.asarray(x, jnp.float32), jnp.asarray(w, jnp.float32))
+    h = 1e-6
+    for i, (arg, g) in enumerate(zip((x, w), got)):
+        fd = np.zeros_like(arg)
+        for idx in np.ndindex(*arg.shape):
+            e = np.zeros_like(arg)
+            e[idx] = h
+            plus, minus = [(arg + s * e, w) if i == 0 else (x, arg + s * e) for s in (1, -1)]
+            fd[idx] = (reference(*plus) - reference(*minus)) / (2 * h)
+        np.testing.assert_allclose(np.asarray(g), fd, rtol=1e-4, atol=1e-4)
+
+
 def _feature_map(rng, shape=(4, 5, 6, 3)):
     return (rng.normal(size=shape) * np.array([1.0, 3.0, 0.5]) + np.array([2.0, -1.0, 0.0])).astype(np.float32)
 
@@ -233,13 +263,13 @@ def test_families_and_tables_match_the_spec():
     assert set(typing.get_args(spec.ConvModel.model_fields["init"].annotation)) == set(model.INITIALIZERS)
 
 
-@pytest.mark.parametrize("padding, low", [("valid", 1.0), ("same", 0.8)])
-def test_the_guards_multiply_accumulates_are_xlas_own_count(padding, low):
+@pytest.mark.parametrize("padding", ["valid", "same"])
+def test_the_guards_multiply_accumulates_are_xlas_own_count(padding):
     # XLA's cost analysis of the compiled forward pass (jax's Compiled.cost_analysis) counts
-    # 2 FLOPs per multiply-accumulate of the convolutions and products, plus the element-wise
-    # work (bias, activation, pooling) the guard leaves out: within 15 % above. With "same"
-    # padding XLA does not count the taps that fall on the padding zeros (here about 15 % of the
-    # convolutions'), which the guard does: it may then count up to 20 % more than XLA.
+    # 2 FLOPs per multiply-accumulate of the convolutions (one product each, padding zeros
+    # included) and dense products, plus the element-wise work (bias, activation, pooling) the
+    # guard leaves out: within 15 % above. The second block's 7 × 7 map ("same") loses a row and
+    # a column to the 2 × 2 pooling: its convolution computes them all the same, and both count them.
     blocks = _blocks(8, 16, kernel=3, pool=2, padding=padding)
     net = model.conv(blocks, "max", (32,), 10, "relu", "he_normal", normalization.none(), regularization.inverted(0.0))
     params, state = net.init(jax.random.key(0), (14, 14, 1))
@@ -249,7 +279,7 @@ def test_the_guards_multiply_accumulates_are_xlas_own_count(padding, low):
     flops = (analysis[0] if isinstance(analysis, list) else analysis)["flops"]
     cost = model.conv_cost(in_shape=(14, 14, 1), out_width=10, blocks=blocks, hidden=[32],
                            dropout=regularization.inverted(0.0))
-    assert low <= flops / (2 * 16 * cost.macs) <= 1.15, flops / (2 * 16 * cost.macs)
+    assert 1.0 <= flops / (2 * 16 * cost.macs) <= 1.15, flops / (2 * 16 * cost.macs)
 
 
 def test_the_spec_check_and_the_network_agree_on_what_fits():
@@ -267,3 +297,31 @@ def test_the_spec_check_and_the_network_agree_on_what_fits():
     assert model.feature_shapes((8, 8, 1), fits.model.resolved_blocks)[-1] == (1, 1, 4)
     with pytest.raises(ValueError, match=r"@model\.kind: 'conv' needs examples of shape"):
         spec.Spec.model_validate({"study": {"name": "t"}, "data": {"generator": "blobs"}, "model": {"kind": "conv"}})
+
+
+def test_a_lanes_bits_do_not_depend_on_its_position_or_neighbours():
+    # Lanes of one width are computed independently (the im2col product is batched over lanes):
+    # a run's parameters are bit for bit the same whichever lane it sits in and whatever runs
+    # beside it, so a study's bits do not depend on how its runs are grouped at a fixed width.
+    from compiler import build
+    from compiler.data import load_data
+    from compiler.expand import expand
+
+    raw = {"study": {"name": "lanes"}, "data": {"generator": "glyphs", "samples": 160, "shape": [8, 8, 1],
+                                                "classes": 4},
+           "model": {"kind": "conv", "blocks": [{"channels": 4, "stride": 2, "pool": 2}]},
+           "normalization": {"kind": "batch"}, "training": {"epochs": 2, "batch_size": 16}}
+    v = expand(spec.Spec.model_validate(raw))[0].spec
+    ds = load_data(v, ".")
+    prog = build.compile_structure([v], ds)
+    train = jax.jit(jax.vmap(prog.train, in_axes=(0, 0, None, None)))
+    rates = [0.01, 0.1, 0.03]
+
+    def hashes(order):
+        knobs = prog.pack([v] * 3)
+        knobs = {**knobs, "optimizer.learning_rate": jnp.asarray([rates[i] for i in order], jnp.float32)}
+        keys = jax.vmap(build.seed_key)(np.asarray(order, np.uint32))
+        params = jax.vmap(prog.params)(train(knobs, keys, ds.x, ds.y)[0])
+        return {i: build.param_hash(jax.tree.map(lambda a: a[k], params)) for k, i in enumerate(order)}
+
+    assert hashes([0, 1, 2]) == hashes([2, 0, 1])
