@@ -313,7 +313,7 @@ def test_a_lanes_bits_do_not_depend_on_its_position_or_neighbours():
            "normalization": {"kind": "batch"}, "training": {"epochs": 2, "batch_size": 16}}
     v = expand(spec.Spec.model_validate(raw))[0].spec
     ds = load_data(v, ".")
-    prog = build.compile_structure([v], ds)
+    prog = build.compile_program([v], ds)
     train = jax.jit(jax.vmap(prog.train, in_axes=(0, 0, None, None)))
     rates = [0.01, 0.1, 0.03]
 
