@@ -79,6 +79,7 @@ CGROUP_ROOT = "/sys/fs/cgroup"
 
 
 CALIBRATION_WEIGHT = 0.5   # of a new measurement against the stored one: recent load counts most
+CALIBRATION_BASIS = "cpu"  # what the stored seconds are: CPU seconds of the computing processes
 
 
 @dataclass(frozen=True)
@@ -97,6 +98,8 @@ class Calibration:
         try:
             with open(path) as fh:
                 stored = json.load(fh)
+            if stored.get("basis") != CALIBRATION_BASIS:   # wall seconds of an older lesion: not comparable
+                return cls()
             return cls(**{f: float(stored[f]) for f in ("compile_seconds", "load_seconds", "execute_ratio",
                                                         "group_seconds")}, runs=int(stored["runs"]))
         except (OSError, ValueError, TypeError, KeyError):
@@ -109,7 +112,7 @@ class Calibration:
             path.parent.mkdir(parents=True, exist_ok=True)
             fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=".tmp-timing-")
             with os.fdopen(fd, "w") as fh:
-                json.dump(dataclasses.asdict(self), fh)
+                json.dump({**dataclasses.asdict(self), "basis": CALIBRATION_BASIS}, fh)
             os.replace(tmp, path)
         except OSError:
             pass

@@ -291,6 +291,10 @@ def test_the_time_estimate_is_calibrated_by_what_runs_measured_on_this_machine(t
     assert est.seconds == pytest.approx(stored.execute_ratio * modelled + stored.load_seconds
                                         + stored.group_seconds * len(groups))
     assert guard.Calibration.load(tmp_path / "cache" / "timing.json").runs == 2
+    # A calibration in wall seconds (an older lesion's, learned on a busy machine) is not used.
+    (tmp_path / "old.json").write_text('{"compile_seconds": 60, "load_seconds": 1, "execute_ratio": 30, '
+                                       '"group_seconds": 3, "runs": 40}')
+    assert guard.Calibration.load(tmp_path / "old.json") == guard.Calibration()
 
 
 def test_a_busy_machine_lengthens_the_estimate_and_says_so():
