@@ -1,13 +1,13 @@
 """From a resolved variant to pure JAX training functions: where the spec meets the components.
 
-Contract (what the runtime relies on): :func:`compile_structure` ``(variants, dataset) -> Program``
-builds — but does not jit — the program of variants sharing one structure key: pure, vmappable
+Contract (what the runtime relies on): :func:`compile_program` ``(variants, dataset) -> Program``
+builds — but does not jit — the program of variants sharing one program key: pure, vmappable
 functions of
 
 - ``knobs``: ``{name: f32 scalar}`` for the names in ``Program.knob_names`` (the variant's knob
   fields, :func:`compiler.hashing.knobs_of`); ``Program.pack(lanes)`` gives them as
   ``f32[lanes]`` for a list of variants. Every knob is traced, so one XLA program serves every
-  variant of a structure key;
+  variant of a program key;
 - ``key``: the run's root key :func:`seed_key` ``(seed)``;
 - ``data_x``, ``data_y``: the whole :class:`compiler.data.Dataset` arrays, shared by all lanes.
 
@@ -36,7 +36,7 @@ training (the runtime passes the weights of the epoch the study judges its runs 
 Components are built from their spec sections by their family's registry under the section's
 ``kind``, with every field of the section as an argument of the same name: knobs as the traced
 values, the other fields as Python values (what a knob-free section field changes, such as
-``nesterov`` or ``warmup_epochs``, is part of the program's structure).
+``nesterov`` or ``warmup_epochs``, is part of the program key).
 
 ``Program.zero_knobs`` are the knobs that are 0 in every variant the program was built for;
 ``pack`` refuses lanes where one is not. Where a zero knob makes a component exactly the
@@ -70,10 +70,10 @@ import optax
 
 from compiler import divergences, model, normalization, optimizers, regularization
 from compiler.data import Dataset
-from compiler.hashing import knobs_of, structure_key
+from compiler.hashing import knobs_of, program_key
 from compiler.spec import MACRO_F1, RECALL, Spec, Strict, class_metrics, split_sizes
 
-__all__ = ["Program", "Carry", "compile_structure", "class_scores", "zero_knobs", "fit_standardization", "knob_vector",
+__all__ = ["Program", "Carry", "compile_program", "class_scores", "zero_knobs", "fit_standardization", "knob_vector",
            "seed_key", "param_hash", "permutation",
            "SPLIT", "INIT", "SHUFFLE", "DROPOUT"]
 
@@ -82,7 +82,7 @@ SPLIT, INIT, SHUFFLE, DROPOUT = 1, 2, 3, 4
 
 
 class Program(NamedTuple):
-    structure: str
+    key: str                # the program key its variants share
     knob_names: tuple[str, ...]
     zero_knobs: frozenset[str]
     metric_names: tuple[str, ...]
@@ -233,13 +233,13 @@ def zero_knobs(variants: Sequence[Spec]) -> frozenset[str]:
     return frozenset(name for name in vectors[0] if not any(vec[name] for vec in vectors))
 
 
-def compile_structure(variants: Sequence[Spec], dataset: Dataset) -> Program:
-    """Pure training functions for resolved variants (``model.hidden`` a list) of one structure
+def compile_program(variants: Sequence[Spec], dataset: Dataset) -> Program:
+    """Pure training functions for resolved variants (``model.hidden`` a list) of one program
     key and their data; the program's ``zero_knobs`` are those 0 in every one of them."""
     variant = variants[0]
-    structure = structure_key(variant)
-    if any(structure_key(v) != structure for v in variants):
-        raise ValueError(f"variants of several structures in one program: {sorted({structure_key(v) for v in variants})}")
+    shared = program_key(variant)
+    if any(program_key(v) != shared for v in variants):
+        raise ValueError(f"variants of several program keys in one program: {sorted({program_key(v) for v in variants})}")
     knob_names = tuple(knob_vector(variant))
     zero = zero_knobs(variants)
     n, shape = dataset.x.shape[0], dataset.x.shape[1:]
@@ -274,10 +274,10 @@ def compile_structure(variants: Sequence[Spec], dataset: Dataset) -> Program:
         return _Parts(divergence, network, tx, schedule, weight_decay)
 
     def pack(lanes: Sequence[Spec]) -> dict[str, jax.Array]:
-        """The knobs of ``lanes`` (variants of this structure), ``f32[len(lanes)]`` per name."""
-        strangers = sorted({structure_key(v) for v in lanes} - {structure})
+        """The knobs of ``lanes`` (variants of this program key), ``f32[len(lanes)]`` per name."""
+        strangers = sorted({program_key(v) for v in lanes} - {shared})
         if strangers:
-            raise ValueError(f"lanes of structure {strangers} packed for a program of structure {structure}")
+            raise ValueError(f"lanes of program keys {strangers} packed for the program of key {shared}")
         lane_vectors = [knob_vector(v) for v in lanes]
         packed = {name: np.array([vec[name] for vec in lane_vectors], dtype=np.float32) for name in knob_names}
         # The program may have left out work these knobs do when they are not 0.
@@ -398,6 +398,6 @@ def compile_structure(variants: Sequence[Spec], dataset: Dataset) -> Program:
                     "grad_norm",
                     *(model.layer_metric(name) for name in names), "weight_norm", "learning_rate")
     test_names = tuple(f"test_{m.removeprefix('val_')}" for m in metric_names if m.startswith("val_")) if n_test else ()
-    return Program(structure, knob_names, zero, metric_names, test_names, epochs, init, epoch, train, evaluate,
+    return Program(shared, knob_names, zero, metric_names, test_names, epochs, init, epoch, train, evaluate,
                    lambda carry: {"params": carry.params, "state": carry.state},
                    lambda carry: (carry.non_finite, carry.non_finite_epoch), pack, test)

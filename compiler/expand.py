@@ -52,7 +52,7 @@ class Variant:
     changes: dict[str, Any]      # dotted key -> value, empty for the base
     spec: Spec                   # resolved: no ablation, model.hidden and model.blocks explicit lists
     hash: str = field(default="")
-    structure: str = field(default="")
+    program: str = field(default="")      # the program key (compiler.hashing.program_key)
     # With [ablation.tune]: the arm this run of the tuning belongs to (an untuned variant) and the
     # tuned knobs' values; None and {} otherwise.
     arm: "Variant | None" = field(default=None, compare=False)
@@ -193,8 +193,8 @@ def _tuned(spec: Spec, arm_list: list[Variant]) -> list[Variant]:
                     at = ("ablation", "tune", "knob", [k.key for k in tune.knob].index(key)) if key else ("ablation",)
                     problems.append(Problem(at, f"variant '{label}' is invalid: {dotted(p.loc)}: {p.message}"))
                 continue
-            vhash, structure = identity(resolved, memo)
-            out.append(Variant(len(out), label, {**arm.changes, **setting}, resolved, vhash, structure, arm, setting,
+            vhash, program = identity(resolved, memo)
+            out.append(Variant(len(out), label, {**arm.changes, **setting}, resolved, vhash, program, arm, setting,
                                spec.selection))
     if problems:
         raise SpecError(problems[:20])
@@ -277,7 +277,7 @@ def _expand(spec: Spec) -> list[Variant]:
                                 "does not have: remove it from the base or set it only in the variants that use it")
                 problems.append(Problem(origins.get(cause, where), message))
             continue
-        vhash, structure = identity(resolved, memo)
+        vhash, program = identity(resolved, memo)
         if vhash in by_hash:
             first = by_hash[vhash]
             if abl is not None and abl.mode == "one_at_a_time" and first.label == BASE_LABEL:
@@ -285,7 +285,7 @@ def _expand(spec: Spec) -> list[Variant]:
             problems.append(Problem(where, f"variant {_named(label, changes, abl)} is the same configuration as '{first.label}' "
                                            "(remove one of them)"))
             continue
-        v = Variant(len(variants), label, changes, resolved, vhash, structure)
+        v = Variant(len(variants), label, changes, resolved, vhash, program)
         by_hash[vhash] = v
         variants.append(v)
     counts = collections.Counter(v.label for v in variants)

@@ -1,4 +1,4 @@
-"""Identity of studies, variants and runs, and the split of a variant into structure and knobs.
+"""Identity of studies, variants and runs, and the split of a variant into program key and knobs.
 
 - canonical JSON: RFC 8785 (JSON Canonicalization Scheme) of the normalized model, via the
   ``rfc8785`` package (ECMAScript number form, UTF-16 key order, NaN/±Inf refused);
@@ -8,8 +8,8 @@
 - run id: ``<variant hash>-s<seed>``;
 - every hash is taken over the dump in its identity form (:func:`compiler.vocabulary.identity_form`:
   the words of result-set format 1), so renaming a word of the spec language changes no hash;
-- structure key: the variant with every *knob* removed. Knobs are the continuous values the
-  compiled program takes as traced inputs, so all variants with one structure key share one
+- program key: the variant with every *knob* removed. Knobs are the continuous values the
+  compiled program takes as traced inputs, so all variants with one program key share one
   XLA program. Each spec model names its knob fields (``knobs``, a class attribute); a variant's
   knobs are those of the models it is made of (:func:`knobs_of`), and :data:`KNOBS`, every knob
   path a variant can have, is derived from the schema.
@@ -28,7 +28,7 @@ from compiler.spec import Spec
 from compiler.vocabulary import identity_form
 
 __all__ = ["canonical_json", "sha256_hex", "study_json", "study_hash", "variant_hash", "run_id",
-           "sections", "KNOBS", "knobs_of", "structure_key", "identity", "variant_payload", "lookup"]
+           "sections", "KNOBS", "knobs_of", "program_key", "identity", "variant_payload", "lookup"]
 
 # Sections that do not decide a run's numbers (and have no knobs).
 _NOT_RUN = {"study", "ablation"}
@@ -135,12 +135,12 @@ def knobs_of(variant: Spec) -> dict[str, float]:
     return {path: found[path] for path in KNOBS if path in found}
 
 
-def structure_key(variant: Spec) -> str:
+def program_key(variant: Spec) -> str:
     return identity(variant)[1]
 
 
 def identity(variant: Spec, memo: dict[str, bytes] | None = None) -> tuple[str, str]:
-    """(variant hash, structure key) from one dump of the variant; ``memo`` as in
+    """(variant hash, program key) from one dump of the variant; ``memo`` as in
     :func:`canonical_json`, shared across the variants of a study."""
     tree = identity_form(variant_payload(variant))
     vhash = sha256_hex(canonical_json(tree, memo))

@@ -14,7 +14,7 @@ Contract:
   ``warmup_epochs`` are static ints, rates and fractions may be traced.
 
 A momentum of 0 is the plain method (optax's ``trace`` with decay 0 passes the gradient
-through), so momentum stays a knob rather than a structural switch.
+through), so momentum stays a knob rather than a switch that needs a program of its own.
 """
 
 from __future__ import annotations

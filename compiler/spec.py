@@ -151,7 +151,7 @@ class Strict(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True, strict=True, use_attribute_docstrings=True)
 
     # The fields a compiled program takes as traced inputs (one program serves every value);
-    # every other field is structure, passed to its component as a Python value.
+    # every other field is part of the program key, passed to its component as a Python value.
     knobs: ClassVar[tuple[str, ...]] = ()
 
     def problems(self, spec: "Spec") -> list[tuple[str, str]]:
@@ -391,7 +391,7 @@ class Model(Strict):
     @model_serializer(mode="wrap")
     def _mlp_unwritten(self, handler: SerializerFunctionWrapHandler):
         # Specs older than the family choice were all MLPs: leaving the default family out of
-        # every dump keeps their canonical JSON, hence their study, variant and structure hashes.
+        # every dump keeps their canonical JSON, hence their study, variant hashes and program keys.
         out = handler(self)
         if out.get("kind") == "mlp":
             del out["kind"]

@@ -2,7 +2,7 @@
 
 A spec file may still use an old word: :func:`respell` reads it as the current word (the loader
 reports each as a notice). Identities never follow a rename: the study hash, the variant hash and
-the structure key are computed over :func:`identity_form`, the dump spelled with the words of
+the program key are computed over :func:`identity_form`, the dump spelled with the words of
 result-set format 1, so a study keeps its hash, its folder and its run ids when a word changes,
 and result sets written before the rename stay replayable (``runtime.migrate`` renames their
 columns and values the same way).

@@ -39,7 +39,25 @@ class UsageError(UserError):
     """Arguments that do not fit together (a one-line message, exit 2)."""
 
 
-class _Group(TyperGroup):
+def _examples_kept(text: str | None) -> str | None:
+    """Help text whose example paragraphs (``lesion ...``) click prints as written: rewrapped to a
+    narrow terminal, an option's name or a comment would be broken onto a line of its own."""
+    if not text:
+        return text
+    return "\n\n".join(f"\b\n{p}" if p.lstrip().startswith("lesion ") else p for p in text.split("\n\n"))
+
+
+class _Examples:
+    def format_help_text(self, ctx, formatter) -> None:
+        written = self.help
+        self.help = _examples_kept(written)
+        try:
+            super().format_help_text(ctx, formatter)
+        finally:
+            self.help = written
+
+
+class _Group(_Examples, TyperGroup):
     """Turns a user error raised by any command into its printed problems and exit code 2, and
     Ctrl-C into exit 130."""
 
@@ -56,7 +74,7 @@ class _Group(TyperGroup):
             raise typer.Exit(2) from None
 
 
-class _Command(TyperCommand):
+class _Command(_Examples, TyperCommand):
     """Usage lines name a required argument as its help does (SPEC), not in braces ({SPEC})."""
 
     def collect_usage_pieces(self, ctx):
@@ -77,15 +95,17 @@ app = typer.Typer(
          "A study is one TOML file: a base configuration and an [ablation] that derives variants from it.\n\n"
          "Examples:\n\n"
          "  lesion check specs/cold-chain.toml\n\n"
-         "  lesion run specs/cold-chain.toml            # prints the result set's path last\n\n"
+         "  lesion run specs/cold-chain.toml     # prints the result set's path last\n\n"
          "  lesion show results/cold-chain-af23c1abfa5f\n\n"
          "  lesion replay results/cold-chain-af23c1abfa5f\n\n"
-         "  lesion diff results/cold-chain-af23c1abfa5f --axis normalization.kind --margin 0.005\n\n"
-         "  lesion seeds results/cold-chain-af23c1abfa5f --margin 0.005   # plan seeds from a pilot\n\n"
-         "  lesion run specs/cold-chain.toml --until-decided --margin 0.005   # add seeds until decided\n\n"
+         "  lesion diff results/cold-chain-af23c1abfa5f --axis normalization.kind \\\n"
+         "    --margin 0.005\n\n"
+         "  lesion seeds results/cold-chain-af23c1abfa5f --margin 0.005   # plan seeds\n\n"
+         "  lesion run specs/cold-chain.toml --until-decided --margin 0.005  # add seeds\n\n"
          "  lesion diff results/A results/B --fail-on worse\n\n"
-         "  lesion report results/cold-chain-<hash>      # one HTML page for a review\n\n"
-         "  lesion export results/cold-chain-<hash> --run RUN_ID -o best.npz\n\n"
+         "  lesion report results/cold-chain-af23c1abfa5f   # one HTML page for a review\n\n"
+         "  lesion export results/cold-chain-af23c1abfa5f --run d7126c08adb5b38b-s2 \\\n"
+         "    -o best.npz\n\n"
          "  lesion schema > lesion.schema.json",
     no_args_is_help=True,
     add_completion=False,
@@ -169,12 +189,12 @@ def _check_report(study) -> dict:
         "study_hash": study.study_hash,
         "result_set": study.result_set,
         "seeds": study.seeds,
-        "programs": len({v.structure for v in study.variants}),
+        "programs": len({v.program for v in study.variants}),
         "runs": study.runs,
         "metric": study.spec.study.metric,
         "metrics": _study_metrics(study),
         "variants": [
-            {"label": v.label, "changes": v.changes, "variant_hash": v.hash, "program": v.structure,
+            {"label": v.label, "changes": v.changes, "variant_hash": v.hash, "program": v.program,
              "seeds": study.seeds}
             for v in study.variants
         ],
@@ -186,13 +206,13 @@ def _print_check_table(study, wide: bool) -> None:
     from compiler.spec import spelled_metrics
     from runtime.formats import Fit, render
 
-    structures = sorted({v.structure for v in study.variants}, key=[v.structure for v in study.variants].index)
+    keys = sorted({v.program for v in study.variants}, key=[v.program for v in study.variants].index)
     typer.echo(f"study       {study.spec.study.name}")
     typer.echo(f"study hash  {study.study_hash}")
     typer.echo(f"result set  {study.result_set}")
     _echo_fitted(f"metrics     {spelled_metrics(_study_metrics(study))} (headline: {study.spec.study.metric})", wide)
     typer.echo(f"{len(study.variants)} variants × {len(study.seeds)} seeds = {study.runs} runs, "
-               f"compiled as {len(structures)} program{'s' if len(structures) != 1 else ''}")
+               f"compiled as {len(keys)} program{'s' if len(keys) != 1 else ''}")
     tune = study.spec.ablation.tune if study.spec.ablation is not None else None
     if tune is not None:
         from compiler.expand import arms
@@ -205,17 +225,20 @@ def _print_check_table(study, wide: bool) -> None:
     generated = abl is not None and abl.mode != "list"
     if generated:
         # A generated label is values alone: say once which keys they are, in label order.
+        # The short names are what pictures key their labels by (runtime.plot.label_key).
         names = axis_names([(a.key, a.name) for a in abl.axis])
-        what = " · ".join(a.key for a in abl.axis) if abl.mode == "grid" else \
-            ", ".join(f"{names[a.key]} = {a.key}" for a in abl.axis)
-        typer.echo(printable(f"labels      {what}"))
+        # no-break spaces (see _echo_fitted): a wrapped line never parts a name from its key
+        keys = ", ".join(f"{names[a.key]}\u00a0=\u00a0{a.key}" for a in abl.axis if names[a.key] != a.key)
+        what = keys if abl.mode != "grid" else \
+            " · ".join(names[a.key] for a in abl.axis) + (f" ({keys})" if keys else "")
+        _echo_fitted(printable(f"labels      {what}"), wide)
     rows = []
     for v in study.variants:
         changes = ", ".join(label_parts(v.changes)) or "(nothing: the base)"
         # A generated label already tells its changes (with the line above); the column then
         # stays empty, and is left out when every label is generated.
         rows.append({"#": v.index, "label": v.label, "changes": "" if generated else changes,
-                     "variant hash": v.hash[:12], "seeds": seeds, "program": v.structure})
+                     "variant hash": v.hash[:12], "seeds": seeds, "program": v.program})
     typer.echo(render(rows, list(rows[0]), "table", width=_terminal_width(wide),
                       fit=Fit(keep=("#", "label"), drop=("program", "seeds"), wrap=("label", "changes"))))
 
@@ -235,7 +258,8 @@ def _echo_fitted(text: str, wide: bool = False) -> None:
     import textwrap
 
     width = _terminal_width(wide)
-    typer.echo(text if width is None else textwrap.fill(text, width, subsequent_indent="  "))
+    # a no-break space only keeps words together on one line; it is printed as a space
+    typer.echo((text if width is None else textwrap.fill(text, width, subsequent_indent="  ")).replace("\u00a0", " "))
 
 
 def _seeds_text(seeds: list[int]) -> str:
@@ -306,7 +330,8 @@ def run(
 
       lesion run specs/cold-chain.toml --cluster local:4
 
-      lesion run specs/cold-chain.toml --until-decided --margin 0.005 --max-seeds 40 --round 5
+      lesion run specs/cold-chain.toml --until-decided --margin 0.005 \\
+        --max-seeds 40 --round 5
     """
     from runtime.interrupt import Interrupted, interrupt_guard
 
@@ -432,8 +457,9 @@ class _nothing:
 
 
 class _RunProgress:
-    """Progress on stderr: a bar per compile group that says when it is compiling, then counts
-    epochs as they finish; and a bar for the whole study, in runs, with the finishing estimate."""
+    """Progress on stderr: a bar per group that says when it is compiling, then counts
+    epochs as they finish; and a bar for the whole study, in runs, with the finishing estimate.
+    Worker processes compute several groups at once: every event names its group."""
 
     def __init__(self, study, console=None):
         from rich.console import Console
@@ -442,14 +468,13 @@ class _RunProgress:
         self.progress = Progress(TextColumn("{task.description}"), BarColumn(), TextColumn("{task.fields[count]}"),
                                  TimeElapsedColumn(), TextColumn("{task.fields[left]}"),
                                  console=console or Console(stderr=True), transient=False)
-        self.task = None
         self.study = None
-        self.label = ""
-        self.runs_done = 0
-        self.group_runs = 0
         self.groups = 0
         self.index = 0
-        self.started = self.first_epoch = 0.0
+        self.runs_done = 0
+        self.started = 0.0
+        # per group id: its task, label, runs, epochs done of its total, and when its first epoch ended
+        self.bars: dict[str, dict] = {}
 
     def __enter__(self):
         self.progress.__enter__()
@@ -462,6 +487,7 @@ class _RunProgress:
         if event == "plan":
             # `--until-decided` plans once per look: each look counts its own runs and groups.
             self.groups, self.index, self.runs_done = info["groups"], 0, 0
+            self.bars = {}
             if info["runs"] == 0:
                 self.progress.console.print(f"all {info['planned']} runs already stored")
                 return
@@ -472,31 +498,38 @@ class _RunProgress:
         elif event == "group":
             g = info["group"]
             self.index += 1
-            self.group_runs = len(g.runs)
-            self.label = f"group {self.index}/{self.groups} ({len(g.runs)} runs, width {g.lane_width})"
+            label = f"group {self.index}/{self.groups} ({len(g.runs)} runs, width {g.lane_width})"
             epochs = g.runs[0].variant.spec.training.epochs
             # Until the first epoch ends the program is being compiled (or loaded from the cache).
-            self.task = self.progress.add_task(f"{self.label} compiling", total=epochs, count=f"0/{epochs} epochs",
-                                               left="")
+            task = self.progress.add_task(f"{label} compiling", total=epochs, count=f"0/{epochs} epochs", left="")
+            self.bars[g.group_id] = {"task": task, "label": label, "runs": len(g.runs), "done": 0,
+                                     "total": epochs, "first": 0.0}
         elif event == "epoch":
+            bar = self.bars.get(info["group"].group_id)
+            if bar is None:
+                return
             done, total = info["done"], info["total"]
             if done == 1:
-                self.first_epoch = time.monotonic()
+                bar["first"] = time.monotonic()
+            bar["done"], bar["total"] = done, total
             # Epochs after the first take alike; the first also pays for loading the program.
-            left = (time.monotonic() - self.first_epoch) / (done - 1) * (total - done) if done > 1 else None
-            self.progress.update(self.task, description=self.label, completed=done, total=total,
+            left = (time.monotonic() - bar["first"]) / (done - 1) * (total - done) if done > 1 and bar["first"] else None
+            self.progress.update(bar["task"], description=bar["label"], completed=done, total=total,
                                  count=f"{done}/{total} epochs", left=_left(left))
-            self._study(self.runs_done + self.group_runs * done / total)
+            self._study()
         elif event == "stored":
-            self.runs_done += len(info["group"].runs)
-            if self.task is not None:
-                task = self.progress.tasks[self.task]
-                self.progress.update(self.task, description=self.label, completed=task.total,
-                                     count=f"{int(task.total)}/{int(task.total)} epochs", left="")
-            self._study(self.runs_done)
+            g = info["group"]
+            self.runs_done += len(g.runs)
+            bar = self.bars.pop(g.group_id, None)
+            if bar is not None:
+                self.progress.update(bar["task"], description=bar["label"], completed=bar["total"],
+                                     count=f"{bar['total']}/{bar['total']} epochs", left="")
+            self._study()
 
-    def _study(self, runs: float) -> None:
+    def _study(self) -> None:
         if self.study is not None:
+            # stored runs, and the part of each group under way that its epochs say is done
+            runs = self.runs_done + sum(b["runs"] * b["done"] / b["total"] for b in self.bars.values())
             total = self.progress.tasks[self.study].total
             # Compiles included: the time so far per run done, times the runs still to do.
             left = (time.monotonic() - self.started) / runs * (total - runs) if runs else None
@@ -531,7 +564,8 @@ def show(
 
       lesion show results/cold-chain-af23c1abfa5f
 
-      lesion show results/cold-chain-af23c1abfa5f --metric val_accuracy --metric val_divergence
+      lesion show results/cold-chain-af23c1abfa5f --metric val_accuracy \\
+        --metric val_macro_f1
 
       lesion show results/cold-chain-af23c1abfa5f --runs
 
@@ -586,10 +620,15 @@ def show(
                   f"{rule['round']} a round): lesion diff gives the stopping rule's verdicts")
         extra["sequential"] = rule
     if format in (Output.json, Output.csv):
-        # Programs get the varied keys' values as fields of their own, not only inside the label.
+        # Programs get the varied keys' values as fields of their own, named as the Parquet columns
+        # they would query, not only inside the label; a CSV has no header block, so each of its rows
+        # names the study it came from (CSVs of several studies can then be concatenated).
         keys, values = axis_values(rs)
-        rows = [{**r, **values.get(r["variant"], {})} for r in rows]
+        rows = [{**r, **values.get(r.get("variant", r.get("arm")), {})} for r in rows]
         columns = [*columns, *keys]
+        if format is Output.csv:
+            rows = [{"study_hash": rs.study_hash, **r} for r in rows]
+            columns = ["study_hash", *columns]
         extra.update(study=name, study_hash=rs.study_hash, metrics=metrics, axes=keys)
     if is_tuned and not (curves or runs or budget):
         arms = tuning.arm_rows(rs, tuning.study_of(rs), metrics[0])
@@ -597,7 +636,7 @@ def show(
         arm_title = (f"arms: per seed the setting with the best {chooser} at the {epoch} epoch; "
                      f"{tuning.test_metric(metrics[0])} of the picks (mean, sd, 95% CI)")
         if format in (Output.json, Output.csv):
-            extra["arms"] = arms
+            extra["arms"] = [{**arm, **values.get(arm["arm"], {})} for arm in arms]
         else:
             typer.echo(render(rows, columns, format.value, title=title, width=_terminal_width(wide), fit=fit))
             typer.echo()
@@ -636,7 +675,7 @@ def replay(
 
       lesion replay results/cold-chain-af23c1abfa5f
 
-      lesion replay results/cold-chain-af23c1abfa5f --variant "normalization.kind=batch, regularization.dropout.rate=0.15"
+      lesion replay results/cold-chain-af23c1abfa5f --variant "batch · 0.15"
     """
     if run is not None and variant is not None:
         raise UsageError("give --run or --variant, not both")
@@ -685,7 +724,7 @@ def replay(
         raise typer.Exit(1)
 
 
-@app.command()
+@app.command(cls=_Command)
 def export(
     result: Path = typer.Argument(..., help="A result set folder written by 'lesion run'.", show_default=False),
     run: str = typer.Option(..., "--run", help="The run id to export (a unique prefix is enough).", show_default=False),
@@ -698,7 +737,8 @@ def export(
 
     Examples:
 
-      lesion export results/cold-chain-7da471c81b78 --run 3f0c9a1e27d4b8c5-s2 -o winner.npz
+      lesion export results/cold-chain-af23c1abfa5f --run d7126c08adb5b38b-s2 \\
+        -o winner.npz
     """
     from runtime.export import export_run
 
@@ -749,7 +789,8 @@ def diff(
 
     Examples:
 
-      lesion diff results/cold-chain-af23c1abfa5f --axis normalization.kind --margin 0.01
+      lesion diff results/cold-chain-af23c1abfa5f --axis normalization.kind \\
+        --margin 0.01
 
       lesion diff results/cold-chain-af23c1abfa5f results/cold-chain-<other hash>
 
@@ -824,8 +865,19 @@ def _decide(a, b, baseline, axis, metric, margin, correction, alpha, power):
         return diff_result_sets(rs_a, rs_b, **kw), findings
     findings = _print_audit(audit(rs_a))
     if baseline is not None:
-        return diff_baseline(rs_a, baseline, **kw), findings
+        return diff_baseline(rs_a, _baseline(rs_a, baseline), **kw), findings
     return diff_design(rs_a, axis=axis, **kw), findings
+
+
+def _baseline(rs, given: str) -> str:
+    """The full label of the variant ``--baseline`` names; an older form of it is read with a
+    notice on stderr saying today's label."""
+    from runtime.diff import baseline_label
+
+    label, notice = baseline_label(rs, given)
+    if notice:
+        _err(f"notice: {notice}")
+    return label
 
 
 def _family_title(question: str, rows: list[dict], method: str, sequential: bool = False) -> str:
@@ -850,6 +902,7 @@ def _compact_diff(rows: list[dict], within: bool) -> tuple[list[dict], list[str]
 
     out = []
     for r in rows:
+        need = r.get("seeds_needed")
         same = r["variant_a"] == r["variant_b"]
         variant = r["contrast"] or (r["variant_b"] if within or same else f"{r['variant_a']} → {r['variant_b']}")
         ci = "" if r.get("ci_low") is None else f"[{fmt_number(r['ci_low'])}, {fmt_number(r['ci_high'])}]"
@@ -860,7 +913,9 @@ def _compact_diff(rows: list[dict], within: bool) -> tuple[list[dict], list[str]
                     "A": r.get("mean_a"), "B": r.get("mean_b"), "B − A": r.get("diff"), "CI": ci,
                     "p": r["p"], "p adj": r["p_adjusted"], "p flip": r.get("p_sign_flip"),
                     "P(B better)": improve, "B − A in sd": r.get("effect_sd"), "detectable": r.get("detectable"),
-                    "seeds needed": r.get("seeds_needed") if open_ else None, "verdict": r["verdict"]})
+                    # no margin, no count: an empty column, left out of the table
+                    "seeds needed": need if open_ and need is not None and math.isfinite(need) else None,
+                    "verdict": r["verdict"]})
     return out, ["variant", "metric", "test", "n", "A", "B", "B − A", "CI", "p", "p adj", "p flip", "P(B better)",
                  "B − A in sd", "detectable", "seeds needed", "verdict"]
 
@@ -883,7 +938,8 @@ def seeds(
 
     Examples:
 
-      lesion seeds results/cold-chain-af23c1abfa5f --axis normalization.kind --margin 0.005
+      lesion seeds results/cold-chain-af23c1abfa5f --axis normalization.kind \\
+        --margin 0.005
     """
     from runtime.diff import SEEDS_COLUMNS
     from runtime.formats import render
@@ -930,7 +986,8 @@ def plot(
 
       lesion plot results/cold-chain-af23c1abfa5f --kind grid -o grid.svg
 
-      lesion plot results/kiln-drift-4f765a63c96a --kind arms --metric val_rmse --metric val_divergence
+      lesion plot results/kiln-drift-4f765a63c96a --kind arms \\
+        --metric val_rmse --metric val_divergence
 
       lesion plot results/A --against results/B
     """
@@ -946,12 +1003,14 @@ def plot(
         fig = plot_diff(rs, open_result_set(against), metrics=metric or None, margin=margin)
         target = out or rs.path / "plots" / f"diff-{Path(against).resolve().name}.png"
     else:
-        fig = draw(rs, kind.value, metrics=metric or None, baseline=baseline)
+        # Named as diff names it, once the kind is known to take one (plot refuses it otherwise).
+        mark = _baseline(rs, baseline) if baseline is not None and kind.value == "arms" else baseline
+        fig = draw(rs, kind.value, metrics=metric or None, baseline=mark)
         target = out or default_path(rs, kind.value)
     typer.echo(str(save_figure(fig, target)))
 
 
-@app.command()
+@app.command(cls=_Command)
 def report(
     result: Path = typer.Argument(..., help="A result set folder written by 'lesion run'.", show_default=False),
     out: Path = typer.Option(None, "--out", "-o", help="The HTML file to write (default: <result set>/report.html)."),
@@ -963,9 +1022,10 @@ def report(
 
     Examples:
 
-      lesion report results/cold-chain-7da471c81b78
+      lesion report results/cold-chain-af23c1abfa5f
 
-      lesion report results/cold-chain-7da471c81b78 --baseline "normalization.kind=none, regularization.dropout.rate=0.0" -o review.html
+      lesion report results/cold-chain-af23c1abfa5f --baseline "none · 0.0" \\
+        -o review.html
     """
     from runtime.report import render_report  # imports matplotlib
     from runtime.store import open_result_set
@@ -974,7 +1034,7 @@ def report(
     target = out or rs.path / "report.html"
     if target.suffix.lower() not in (".html", ".htm"):
         raise UsageError(f"-o {target}: expected a file ending in .html")
-    page = render_report(rs, baseline)
+    page = render_report(rs, baseline and _baseline(rs, baseline))
     try:
         target.parent.mkdir(parents=True, exist_ok=True)
         target.write_text(page, encoding="utf-8")

@@ -1,4 +1,4 @@
-"""Scale-out: a study's compile groups executed on a Dask cluster, with the bits of one machine.
+"""Scale-out: a study's groups executed on a Dask cluster, with the bits of one machine.
 
 Contract: :class:`DaskExecutor` is an executor in the sense of :class:`runtime.execute.InProcess`
 — ``run(groups, data, environment, progress)`` yields ``(group, GroupResult)`` as groups finish,
@@ -98,7 +98,7 @@ def _execute_on_worker(group, dataset) -> GroupResult:
 
 
 class DaskExecutor:
-    """Runs each compile group as one task of a Dask scheduler (see the module docstring).
+    """Runs each group as one task of a Dask scheduler (see the module docstring).
 
     ``connect_seconds`` bounds reaching the scheduler, ``worker_seconds`` the wait for its first
     worker. Use as a context manager, or call :meth:`open` and :meth:`close`."""
@@ -218,12 +218,12 @@ class DaskExecutor:
             pending[fut.key] = (g, fut)
             return fut
 
-        # One program per (structure, width, data): its first group goes out alone, the rest when
+        # One program per (program key, width, data): its first group goes out alone, the rest when
         # it is back, so workers sharing a compile cache load that program instead of all
         # compiling it at once. Different programs still start side by side.
         waiting: dict[tuple, list] = {}
         for g in groups:
-            waiting.setdefault((g.structure, g.lane_width, id(data[g.group_id])), []).append(g)
+            waiting.setdefault((g.program, g.lane_width, id(data[g.group_id])), []).append(g)
         program_of = {}
         for program, members in waiting.items():
             program_of[submit(members.pop(0)).key] = program
@@ -260,7 +260,7 @@ class DaskExecutor:
                 if progress:
                     epochs = g.runs[0].variant.spec.training.epochs
                     progress("group", group=g, todo=len(g.runs))
-                    progress("epoch", done=epochs, total=epochs)
+                    progress("epoch", group=g, done=epochs, total=epochs)
                 yield g, result
         except KilledWorker as err:
             raise ClusterError(f"--cluster {self.address}: a task's workers kept dying ({err}); the groups "

@@ -36,6 +36,7 @@ from compiler.expand import arms, expand
 from compiler.labels import BASE_LABEL, SEPARATOR, format_value, label_parts, old_label
 from compiler.hashing import variant_payload
 from compiler.spec import direction, known_metrics
+from compiler.vocabulary import VALUE_WORDS
 from runtime.sequential import Procedure, Row, Rule
 from runtime.specdiff import Change, canonical_leaf, match_variants, spec_diff
 from runtime.stats import (POWER, Comparison, adjust, compare, decide, detectable_difference, family_alpha,
@@ -43,7 +44,7 @@ from runtime.stats import (POWER, Comparison, adjust, compare, decide, detectabl
 from runtime.store import SEQUENTIAL, ResultSet, ResultSetError
 from runtime.tuning import arm_picks, study_of, test_metric, tuned
 
-__all__ = ["DiffReport", "diff_result_sets", "diff_baseline", "diff_design", "resolve_variant", "sequential_design",
+__all__ = ["DiffReport", "diff_result_sets", "diff_baseline", "diff_design", "resolve_variant", "name_variant", "baseline_label", "sequential_design",
            "Sequential", "decided_summary", "DECIDED_COLUMNS", "DIFF_COLUMNS", "SEEDS_COLUMNS"]
 
 DIFF_COLUMNS = ["variant_a", "variant_b", "metric", "test", "n_a", "n_b", "mean_a", "mean_b", "diff",
@@ -95,7 +96,57 @@ def resolve_variant(loaded, given: str, option: str = "--baseline") -> int:
     the variant whose configuration equals the spec's base (a grid cell included); the label
     format 1 gave it (``key=value, key=value``); or a short label: parts separated by ``·`` or
     ``,``, each naming one of the variant's values, or one of its changes whole, by its key's last
-    dotted pieces or by value ("kind=batch, 0.0"), or a prefix of the label, matching one variant alone."""
+    dotted pieces or by value ("kind=batch, 0.0"), or a prefix of the label, matching one variant
+    alone. A value word renamed since (``connect``) is read as today's (``dropconnect``) when the
+    label as given names no variant."""
+    return name_variant(loaded, given, option)[0]
+
+
+def name_variant(loaded, given: str, option: str = "--baseline") -> tuple[int, str | None]:
+    """:func:`resolve_variant`'s index, and a one-line notice when ``given`` is an old form of the
+    label (format 1's, or one with a renamed word), so that a person learns today's label."""
+    labels = [v.label for v in arms(loaded.variants)]
+    try:
+        return _resolve(loaded, given, option), _old_form(loaded, given, labels, option)
+    except ResultSetError:
+        respelled = _respelled(given)
+        if respelled == given:
+            raise
+        # still no single variant: the refusal lists what the renamed word does name
+        index = _resolve(loaded, respelled, option)
+        return index, (f"{option} {printable(repr(given))}: read as {printable(repr(labels[index]))} "
+                       f"({', '.join(f'{o!r} is now {n!r}' for o, n in _renamed_in(given))})")
+
+
+def baseline_label(rs: ResultSet, given: str, option: str = "--baseline") -> tuple[str, str | None]:
+    """The full label of the variant (a tuned study's arm) ``given`` names in ``rs``, and
+    :func:`name_variant`'s notice: what the CLI hands on, so every reader marks the same arm."""
+    loaded = _loaded(rs)
+    index, notice = name_variant(loaded, given, option)
+    return arms(loaded.variants)[index].label, notice
+
+
+def _old_form(loaded, given: str, labels: list[str], option: str) -> str | None:
+    old = [old_label(v.changes) for v in arms(loaded.variants)]
+    if given in labels or old.count(given) != 1:
+        return None
+    return (f"{option} {printable(repr(given))}: read as {printable(repr(labels[old.index(given)]))} "
+            "(the label result-set format 1 gave it)")
+
+
+def _renamed_in(given: str) -> list[tuple[str, str]]:
+    """(old, current) for every renamed value word written as a whole token of ``given``."""
+    tokens = set(re.split(r"[\s,·=]+", given))
+    return [(o, n) for words in VALUE_WORDS.values() for o, n in words.items() if o in tokens]
+
+
+def _respelled(given: str) -> str:
+    for o, n in _renamed_in(given):
+        given = re.sub(rf"(?<![\w.-]){re.escape(o)}(?![\w.-])", n, given)
+    return given
+
+
+def _resolve(loaded, given: str, option: str) -> int:
     variants = arms(loaded.variants)   # a tuned study is named by its arms
     labels = [v.label for v in variants]
     if given in labels:
@@ -313,12 +364,17 @@ def sequential_design(rs: ResultSet, rule: Rule, first: list[int], *, axis: str 
     stored: dict[str, set] = {}
     for h, seed in zip(cols["variant_hash"], cols["seed"]):
         stored.setdefault(h, set()).add(seed)
+    # A question names arms; a tuned arm's seed needs a run of every setting of the arm.
+    runs_of: dict[str, list[str]] = {}
+    for v in _loaded(rs).variants:
+        runs_of.setdefault((v.arm or v).hash, []).append(v.hash)
     p = Procedure(rule, first)
     judged: dict = {}
     needed = frozenset().union(*(start["uses"] for _, _, start, _ in contrasts))
     while True:
         keep = set(p.seeds)
-        missing = {h: sorted(keep - stored.get(h, set())) for h in sorted(needed) if keep - stored.get(h, set())}
+        members = sorted(h for arm in needed for h in runs_of.get(arm, [arm]))
+        missing = {h: sorted(keep - stored.get(h, set())) for h in members if keep - stored.get(h, set())}
         if missing:
             return Sequential(p, judged, missing)
         rows = []
@@ -460,7 +516,7 @@ def diff_design(rs: ResultSet, *, axis: str | None = None, metrics: list[str] | 
     the same pairs over each seed's mean across the other axes' combinations (seeds with a non-finite
     run among them are left out); and for each other axis L the K × L interaction
     (:func:`runtime.stats.interaction_test`, seeds as subjects, other axes averaged). One change
-    at a time and lists compare each variant with ``base``.
+    at a time and lists compare each variant with ``base`` (a list without it: with its first variant).
 
     A result set whose seeds a stopping rule chose (``lesion run --until-decided``) is judged by
     that rule, replayed over its runs (:func:`sequential_design`), for the questions it was run
@@ -494,10 +550,9 @@ def _design_families(rs: ResultSet, axis: str | None, metrics: list[str] | None)
         if axis is not None:
             raise ResultSetError(f"--axis applies to a grid; this study's ablation is {ablation['mode']!r}")
         labels = [v["label"] for v in _variants(rs)]
-        if "base" not in labels:
-            raise ResultSetError("this study has no 'base' variant to compare with: name the reference with "
-                                 f"--baseline LABEL (labels: {', '.join(labels)})")
-        return _baseline_families(rs, "base", metrics)
+        # Without a base (include_base = false), the first listed variant is the reference, as
+        # in the report; the question names it.
+        return _baseline_families(rs, "base" if "base" in labels else labels[0], metrics)
     # the axes as written (0.0 stays 0.0, as in the labels), not as canonical JSON
     axes = [(a.key, list(a.values)) for a in _loaded(rs).spec.ablation.axis]
     keys = [k for k, _ in axes]

@@ -1,17 +1,17 @@
-"""Execution: compile groups, run their lanes, turn the numbers into result-set rows.
+"""Execution: compile a group's program, run its lanes, turn the numbers into result-set rows.
 
 The seam is :func:`execute_group`: one :class:`~runtime.plan.Group` and its data in, a
 :class:`GroupResult` out. It needs nothing else from the process, so a group can be executed in
 another process or on another machine and its result written here.
 
-Inside a group one program per structure is compiled (``vmap`` over lanes of (knobs, seed key)
+Inside a group one program per program key is compiled (``vmap`` over lanes of (knobs, seed key)
 of the compiler's per-epoch function, steps in ``lax.scan``) and called once per epoch from
 Python; the data stays on the device across epochs and only the per-epoch metrics come back.
-The program (:func:`compiler.build.compile_structure` of the group's variants) packs the lanes'
+The program (:func:`compiler.build.compile_program` of the group's variants) packs the lanes'
 knobs itself and decides which work its zero knobs let it leave out; programs compile with XLA's
 default options. With a test split, each lane's test rows are scored once, after the last epoch,
 with the weights of the epoch the study judges it at (``_Judge``). With the compile cache on, a
-structure's executables are loaded from and stored in :mod:`runtime.programs`; replay always
+program key's executables are loaded from and stored in :mod:`runtime.programs`; replay always
 compiles afresh.
 """
 
@@ -59,15 +59,19 @@ class GroupResult:
     compile_seconds: float
     run_seconds: float
     environment: dict
+    # CPU seconds of the computing process (one XLA thread): what the group costs on an idle
+    # core, whatever else the machine was doing; the time estimate is calibrated by these.
+    compile_cpu_seconds: float = 0.0
+    run_cpu_seconds: float = 0.0
 
 
-# Compiled (init, epoch) per (structure, lane width, data signature, knobs zero in every lane), reused
-# by every group of a structure within one process.
+# Compiled (init, epoch) per (program key, lane width, data signature, knobs zero in every lane), reused
+# by every group of a program key within one process.
 _programs: dict[tuple, tuple] = {}
 
 
 def _program_key(group: Group, dataset, zero: frozenset[str]) -> tuple:
-    return group.structure, group.lane_width, programs.data_signature(dataset), zero
+    return group.program, group.lane_width, programs.data_signature(dataset), zero
 
 
 def preparation(groups: list[Group], data: dict, environment: dict) -> dict[str, str]:
@@ -100,8 +104,8 @@ def _compiled(group: Group, program, dataset, knobs, seeds, reuse: bool, environ
     zero = program.zero_knobs
     key = _program_key(group, dataset, zero)
     if reuse and key in _programs:
-        return _programs[key] + (0.0,)
-    t0 = time.perf_counter()
+        return _programs[key] + (0.0, 0.0)
+    t0, c0 = time.perf_counter(), time.process_time()
     # Programs see only the data's shapes: the rows are arguments, put on the device per group.
     x, y = (jax.ShapeDtypeStruct(a.shape, a.dtype) for a in (dataset.x, dataset.y))
     # With the compile cache on, the executables themselves are stored under a name derived
@@ -128,9 +132,9 @@ def _compiled(group: Group, program, dataset, knobs, seeds, reuse: bool, environ
             programs.store_programs(path, (init_c, epoch_c))
     # Picking fields of the carry needs no program: vmap without jit compiles nothing.
     status, params = jax.vmap(program.status), jax.vmap(program.params)
-    seconds = time.perf_counter() - t0
+    seconds, cpu = time.perf_counter() - t0, time.process_time() - c0
     _programs[key] = (program, init_c, epoch_c, status, params)
-    return _programs[key] + (seconds,)
+    return _programs[key] + (seconds, cpu)
 
 
 def execute_group(group: Group, dataset, environment: dict,
@@ -138,24 +142,24 @@ def execute_group(group: Group, dataset, environment: dict,
                   keep_arrays: bool = False) -> GroupResult:
     """Train every run of a group at the group's lane width and return its numbers.
 
-    ``reuse=False`` compiles afresh even when this process already compiled the structure
+    ``reuse=False`` compiles afresh even when this process already compiled the program
     (replay proves the bits with a new compile). ``keep_arrays`` returns each lane's trained
     arrays too (export); runs never store them."""
     import jax
 
-    from compiler.build import compile_structure, param_hash
+    from compiler.build import compile_program, param_hash
     from compiler.normalization import diagnose
 
     # Padding copies a real run, so it never adds a non-zero to a knob that is 0 in every run.
     lanes = list(group.runs) + [group.runs[0]] * group.padding
-    program = compile_structure([r.variant.spec for r in group.runs], dataset)
+    program = compile_program([r.variant.spec for r in group.runs], dataset)
     knobs = program.pack([r.variant.spec for r in lanes])
     seeds = np.array([r.seed for r in lanes], dtype=np.int32)
 
-    program, init_c, epoch_c, status_fn, params_fn, compile_seconds = _compiled(
+    program, init_c, epoch_c, status_fn, params_fn, compile_seconds, compile_cpu = _compiled(
         group, program, dataset, knobs, seeds, reuse, environment)
     x, y = jax.device_put(dataset.x), jax.device_put(dataset.y)
-    t0 = time.perf_counter()
+    t0, c0 = time.perf_counter(), time.process_time()
     carry = init_c(knobs, seeds, x, y)
     judge = _Judge(program, group, len(lanes), carry)
     per_epoch = []
@@ -168,7 +172,7 @@ def execute_group(group: Group, dataset, environment: dict,
             on_epoch(e + 1, program.epochs)
     tested, judged_at = judge.scores(carry, x, y)
     per_epoch, (non_finite, at), params = jax.device_get((per_epoch, status_fn(carry), params_fn(carry)))
-    run_seconds = time.perf_counter() - t0
+    run_seconds, run_cpu = time.perf_counter() - t0, time.process_time() - c0
 
     names = program.metric_names
     stacked = {m: np.stack([np.asarray(ep[m], dtype=np.float32) for ep in per_epoch]) for m in names}
@@ -186,7 +190,7 @@ def execute_group(group: Group, dataset, environment: dict,
             arrays=_lane_arrays(lane_params, carry, i) if keep_arrays else None,
         ))
     return GroupResult(group.group_id, group.lane_width, names, program.test_names, results, compile_seconds,
-                       run_seconds, environment)
+                       run_seconds, environment, compile_cpu, run_cpu)
 
 
 class _Judge:
@@ -250,8 +254,8 @@ class InProcess:
 
     An executor's contract: ``run(groups, data, environment, progress)`` yields
     ``(group, GroupResult)`` as groups finish, in any order; ``data`` maps a group id to its
-    Dataset; ``progress`` (or None) receives the ("group", group=…) and ("epoch", done=…, total=…)
-    events. The caller writes each result as it arrives.
+    Dataset; ``progress`` (or None) receives the ("group", group=…) and ("epoch", group=…, done=…,
+    total=…) events. The caller writes each result as it arrives.
 
     ``checkpoint()`` (optional) is called before each group and after each epoch, outside any
     jax call, so that it may raise to abandon the group in flight (Ctrl-C)."""
@@ -262,11 +266,13 @@ class InProcess:
     def run(self, groups, data, environment, progress=None):
         check = self.checkpoint
 
-        def on_epoch(done, total):
-            if progress:
-                progress("epoch", done=done, total=total)
-            if check:
-                check()
+        def on_epoch(g):
+            def told(done, total):
+                if progress:
+                    progress("epoch", group=g, done=done, total=total)
+                if check:
+                    check()
+            return told
 
         for g in groups:
             if check:
@@ -274,4 +280,4 @@ class InProcess:
             if progress:
                 progress("group", group=g, todo=len(g.runs))
             yield g, execute_group(g, data[g.group_id], environment,
-                                   on_epoch=on_epoch if check or progress else None)
+                                   on_epoch=on_epoch(g) if check or progress else None)

@@ -59,7 +59,8 @@ class Fit:
 
     Columns whose cells are all empty go first, then ``drop`` in its order, then every other column
     not in ``keep`` from the right; ``wrap`` columns break at spaces (labels such as
-    ``none · 0.15`` break between their parts) instead of being dropped.
+    ``none · 0.15`` break between their parts) instead of being dropped; once the table fits, a
+    droppable column still goes if that puts the rows on fewer lines.
     """
 
     keep: tuple[str, ...] = ()
@@ -118,29 +119,60 @@ def _table(rows, columns, cells, heads, title, width, fit) -> str:
         # Narrowest a column can be: its longest cell, or its longest word when it may wrap.
         return longest(c, width is not None and columns[c] in fit.wrap)
 
+    def wrapped(c: int, w: int, text: str) -> list[str]:
+        return textwrap.wrap(text, w, break_long_words=False) or [""] if columns[c] in fit.wrap else [text]
+
+    def widths_of(shown: list[int]) -> dict[int, int]:
+        # Widths are decided here, not by rich: it would squeeze any column, and the narrow layout
+        # promises that only the wrapping ones give way (the widest first, never below a word;
+        # kept ones last).
+        widths = {i: longest(i, False) for i in shown}
+        if width is None:
+            return widths
+        while sum(widths.values()) + _GAP * (len(shown) - 1) > width:
+            give = [i for i in shown if columns[i] in fit.wrap and widths[i] > need(i)]
+            if not give:
+                break
+            give = [i for i in give if columns[i] not in fit.keep] or give
+            widths[max(give, key=widths.get)] -= 1
+        # No wider than the longest line its cells actually wrap to.
+        return {i: max(cell_len(line) for t in [heads[i]] + [row[i] for row in cells] for line in wrapped(i, w, t))
+                for i, w in widths.items()}
+
+    def height(shown: list[int]) -> int:
+        widths = widths_of(shown)
+        return sum(max(len(wrapped(i, widths[i], row[i])) for i in shown) for row in cells)
+
     shown = [i for i, c in enumerate(columns) if any(row[i] for row in cells) or not cells]
     dropped = []
     if width is not None:
         order = [c for c in fit.drop if c in columns] + [c for c in reversed(columns) if c not in fit.drop]
         order = [columns.index(c) for c in order if c not in fit.keep and columns.index(c) in shown]
-        while sum(map(need, shown)) + _GAP * (len(shown) - 1) > width and order:
-            i = order.pop(0)
+        def fits(kept: list[int]) -> bool:
+            return sum(map(need, kept)) + _GAP * (len(kept) - 1) <= width
+
+        k = 0
+        while not fits([i for i in shown if i not in order[:k]]) and k < len(order):
+            k += 1
+        # Then a column goes only if that shortens the rows: a row over three lines is harder to
+        # read than a column named on the last line, but a column that saves no line stays ...
+        lines = height([i for i in shown if i not in order[:k]])
+        for more in range(k + 1, len(order) + 1):
+            fewer = height([i for i in shown if i not in order[:more]])
+            if fewer < lines:
+                k, lines = more, fewer
+        gone = order[:k]
+        # ... and one dropped on the way comes back if it fits in the room the others leave.
+        for i in reversed(gone):
+            now = widths_of([j for j in shown if j not in gone])
+            back = widths_of(sorted([*now, i]))
+            if (all(back[j] == w for j, w in now.items()) and sum(back.values()) + _GAP * (len(back) - 1) <= width
+                    and height(list(back)) <= lines):
+                gone.remove(i)
+        for i in gone:
             shown.remove(i)
             dropped.append(columns[i])
-    # Widths are decided here, not by rich: it would squeeze any column, and the narrow layout
-    # promises that only the wrapping ones give way (the widest first, never below a word).
-    widths = {i: longest(i, False) for i in shown}
-    if width is not None:
-        while sum(widths.values()) + _GAP * (len(shown) - 1) > width:
-            give = [i for i in shown if columns[i] in fit.wrap and widths[i] > need(i)]
-            if not give:
-                break
-            widths[max(give, key=widths.get)] -= 1
-        for i in shown:
-            if columns[i] in fit.wrap:
-                # No wider than the longest line its cells actually wrap to.
-                widths[i] = max(cell_len(line) for t in [heads[i]] + [row[i] for row in cells]
-                                for line in textwrap.wrap(t, widths[i], break_long_words=False) or [""])
+    widths = widths_of(shown)
     table = Table(box=box.SIMPLE_HEAD, show_edge=False, pad_edge=False, padding=(0, 1, 0, 0), header_style="bold")
     for i in shown:
         table.add_column(heads[i], justify="right" if _numeric(rows, columns[i]) else "left",

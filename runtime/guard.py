@@ -6,8 +6,8 @@ Contract:
   wall seconds of executing ``groups`` (``data`` maps a group id to its
   :class:`compiler.data.Dataset`) in this process or side by side in ``workers`` processes,
   without compiling or running anything;
-- :func:`lane_budget` ``(groups, data, budget_bytes=None) -> {structure: lanes}``: for each
-  structure, the most lanes whose estimate fits in ``budget_bytes`` (default
+- :func:`lane_budget` ``(groups, data, budget_bytes=None) -> {program key: lanes}``: for each
+  program key, the most lanes whose estimate fits in ``budget_bytes`` (default
   :func:`memory_budget`), for :func:`runtime.plan.plan`'s ``lane_budget``;
 - :func:`check_data` ``(groups, where, base_dir, available=None)`` raises :class:`ResourceError`
   before a built-in data set too large to generate is drawn, or a data file too large to load (by
@@ -18,7 +18,7 @@ Contract:
 
 Memory model (float32 everywhere; a run's state is its lane's share of a vmapped program):
 
-- data: the host arrays and one device copy per (structure, data set), since compiled programs
+- data: the host arrays and one device copy per (program key, data set), since compiled programs
   keep theirs for the whole invocation;
 - per lane (:func:`per_lane_bytes`): from the network family's declared cost
   (``compiler.model.FAMILIES``: parameters, activations per example, weight masks), parameters,
@@ -38,10 +38,14 @@ program, for each program it has not made itself: the estimate is the busiest wo
 time plus the parent's writes, not the sum over groups. The
 constants start as rounded facts of an idle machine and are then *calibrated*: every
 ``lesion run`` in this process stores what it measured (:class:`Calibration`, in the compile
-cache folder) and the next estimate uses it, so a slower or busier machine gets a larger one.
+cache folder) and the next estimate uses it, so a slower machine gets a larger one. What is
+stored is what an idle core would take: the computing processes' CPU seconds (one XLA thread
+each), not their wall time, so a study run while the machine was busy does not inflate the
+estimates of later runs on an idle one. The machine's load now is applied on top
+(:func:`slowdown`), and the estimate says when it does.
 
 The lane budget is taken from a fixed share of the machine's *total* memory, not from what
-happens to be free, so the lane width of a structure (which decides a run's bits) is the same on
+happens to be free, so the lane width of a program (which decides a run's bits) is the same on
 every invocation on one machine; only the refusal looks at the memory free right now.
 """
 
@@ -57,11 +61,12 @@ from pathlib import Path
 
 from compiler.errors import UserError
 from compiler.spec import example_shape, train_size
+from runtime.environment import usable_cores
 from runtime.plan import Group
 
 __all__ = ["Estimate", "ResourceError", "Calibration", "estimate", "schedule", "model_seconds", "lane_budget", "check",
            "check_data", "available_bytes", "memory_budget", "total_bytes", "data_room", "XLA_SLACK", "RUNTIME_BYTES",
-           "FLOPS_PER_SECOND"]
+           "FLOPS_PER_SECOND", "slowdown"]
 
 XLA_SLACK = 1.5
 RUNTIME_BYTES = 512 * 2**20
@@ -129,6 +134,15 @@ class ResourceError(UserError):
     """A study that cannot fit this machine as asked; the message says what to change."""
 
 
+def slowdown(processes: int = 1, load: float | None = None, cores: int | None = None) -> float:
+    """How many times longer than on an idle machine ``processes`` single-threaded processes
+    take while ``load`` (the one-minute load average: runnable processes) competes for ``cores``:
+    at least 1, and the share of a core each gets when more want one than there are."""
+    load = os.getloadavg()[0] if load is None else load
+    cores = usable_cores() if cores is None else cores
+    return max(1.0, (load + processes) / cores)
+
+
 @dataclass(frozen=True)
 class Estimate:
     peak_bytes: int
@@ -137,10 +151,16 @@ class Estimate:
     lanes: int             # that group's lane width
     seconds: float         # wall time
     workers: int = 1       # processes the groups are handed out to
+    busy: float = 1.0      # the machine's load now: seconds is this many times the idle estimate
+    load: float = 0.0
+    cores: int = 1
 
     def describe(self) -> str:
         side = f" on {self.workers} workers" if self.workers > 1 else ""
-        return f"about {_size(self.peak_bytes)} of memory and {_duration(self.seconds)}{side}"
+        text = f"about {_size(self.peak_bytes)} of memory and {_duration(self.seconds)}{side}"
+        if self.busy >= 1.5:
+            text += f" (the machine is busy: load average {self.load:.1f} on {self.cores} cores)"
+        return text
 
 
 def _shape(group: Group, dataset):
@@ -205,7 +225,7 @@ def _parallel_seconds(groups: list[Group], data: dict, execute: list[float], act
     stored: dict = {}
     first: dict = {}
     for g, run, action in zip(groups, execute, actions):
-        key = (g.structure, g.lane_width, id(data[g.group_id]))
+        key = (g.program, g.lane_width, id(data[g.group_id]))
         first.setdefault(key, action)
         w = free.index(min(free))
         start = free[w]
@@ -222,14 +242,17 @@ def _parallel_seconds(groups: list[Group], data: dict, execute: list[float], act
 
 
 def estimate(groups: list[Group], data: dict, *, preparation: dict[str, str] | None = None,
-             calibration: Calibration | None = None, workers: int = 1) -> Estimate:
+             calibration: Calibration | None = None, workers: int = 1, load: float | None = 0.0,
+             cores: int | None = None) -> Estimate:
     """Peak memory (per process) and rough wall time of executing ``groups``: one after another
     in this process, or handed out to ``workers`` worker processes side by side (more than one
     worker and one group). ``preparation`` (group id -> compile, load or reuse, from
-    :func:`runtime.execute.preparation`) defaults to one compile per structure and data set;
-    ``calibration`` defaults to the idle-machine constants."""
+    :func:`runtime.execute.preparation`) defaults to one compile per program and data set;
+    ``calibration`` defaults to the idle-machine constants. ``load`` (the one-minute load
+    average; ``None``: this machine's now) slows everything by :func:`slowdown`; the default
+    0 estimates an idle machine."""
     host = {id(data[g.group_id]): data[g.group_id] for g in groups}
-    device = {(g.structure, id(data[g.group_id])): data[g.group_id] for g in groups}
+    device = {(g.program, id(data[g.group_id])): data[g.group_id] for g in groups}
     data_bytes = sum(d.x.nbytes + d.y.nbytes for d in [*host.values(), *device.values()])
     widest, lanes, lane = 0, 1, 0
     for g in groups:
@@ -242,7 +265,7 @@ def estimate(groups: list[Group], data: dict, *, preparation: dict[str, str] | N
         seen: set = set()
         actions = []
         for g in groups:
-            key = (g.structure, id(data[g.group_id]))
+            key = (g.program, id(data[g.group_id]))
             actions.append("reuse" if key in seen else "compile")
             seen.add(key)
     else:
@@ -256,12 +279,15 @@ def estimate(groups: list[Group], data: dict, *, preparation: dict[str, str] | N
         seconds = (sum(execute) + cal.compile_seconds * actions.count("compile")
                    + cal.load_seconds * actions.count("load") + other)
     peak = RUNTIME_BYTES + data_bytes + int(XLA_SLACK * widest)
-    return Estimate(peak, data_bytes, lane, lanes, seconds, workers)
+    load = os.getloadavg()[0] if load is None else load
+    cores = usable_cores() if cores is None else cores
+    busy = slowdown(min(workers, len(groups)), load, cores)
+    return Estimate(peak, data_bytes, lane, lanes, seconds * busy, workers, busy, load, cores)
 
 
 def lane_budget(groups: list[Group], data: dict, budget_bytes: int | None = None) -> dict[str, int]:
-    """Most lanes per structure (at least 1) whose estimate, with its own data set, fits
-    ``budget_bytes``. It depends on nothing but the structure, its data and the machine, so a
+    """Most lanes per program key (at least 1) whose estimate, with its own data set, fits
+    ``budget_bytes``. It depends on nothing but the program, its data and the machine, so a
     resumed study gets the widths its first invocation had."""
     budget = memory_budget() if budget_bytes is None else budget_bytes
     out: dict[str, int] = {}
@@ -269,7 +295,7 @@ def lane_budget(groups: list[Group], data: dict, budget_bytes: int | None = None
         d = data[g.group_id]
         room = budget - RUNTIME_BYTES - 2 * (d.x.nbytes + d.y.nbytes)
         fits = max(1, int(room // (XLA_SLACK * per_lane_bytes(g, d))))
-        out[g.structure] = min(out.get(g.structure, fits), fits)
+        out[g.program] = min(out.get(g.program, fits), fits)
     return out
 
 

@@ -58,13 +58,13 @@ from matplotlib.ticker import FuncFormatter  # noqa: E402
 from matplotlib.transforms import blended_transform_factory  # noqa: E402
 
 from compiler.errors import UserError  # noqa: E402
-from compiler.labels import axis_names, format_value, label_parts  # noqa: E402
+from compiler.labels import SEPARATOR, axis_names, format_value, label_parts  # noqa: E402
 from compiler.spec import direction  # noqa: E402
 from runtime.show import curve_rows, summary_rows  # noqa: E402
 from runtime.stats import summarize  # noqa: E402
 from runtime.store import ResultSet  # noqa: E402
 
-__all__ = ["PlotError", "PALETTE", "SEQUENTIAL", "KINDS", "DPI", "LOG_SPAN",
+__all__ = ["PlotError", "label_key", "PALETTE", "SEQUENTIAL", "KINDS", "DPI", "LOG_SPAN",
            "GAP_SCALE", "FACET_OVER", "plot", "plot_curves", "plot_arms", "plot_grid", "plot_diff", "save_figure", "svg_markup", "default_path",
            "short_labels"]
 
@@ -96,6 +96,29 @@ def short_labels(rs: ResultSet) -> dict[str, str]:
     already: a grid cell's values, an axis's short name and value)."""
     return {label: "\n".join(textwrap.wrap(label, _LABEL_WIDTH)) or label
             for label in dict.fromkeys(rs.runs.column("variant_label").to_pylist())}
+
+
+def label_key(rs: ResultSet) -> str | None:
+    """What each part of a grid cell's label is (``normalization · dropout.rate`` for
+    ``none · 0.15``): the axes' short names in label order, as ``lesion check`` names them. None
+    where labels say it themselves (one change at a time: ``dropout.rate 0.15``; listed variants)."""
+    ab = rs.tree.get("ablation") or {}
+    axes = ab.get("axis") or []
+    if ab.get("mode") != "grid" or not axes:
+        return None
+    short = axis_names([(a["key"], a.get("name")) for a in axes])
+    return SEPARATOR.join(short[a["key"]] for a in axes)
+
+
+def _label_title(*sets: ResultSet) -> str | None:
+    """The picture's key to its labels, ``labels: normalization · dropout.rate``; of two result
+    sets whose labels read differently, each one's."""
+    keys = [label_key(rs) for rs in sets]
+    if not any(keys):
+        return None
+    if len(set(keys)) == 1:
+        return f"labels: {keys[0]}"
+    return "; ".join(f"labels of {side}: {key}" for side, key in zip("AB", keys) if key)
 
 
 def _one_line(label: str, name: str) -> str:
@@ -167,7 +190,7 @@ def _legend_below(fig: Figure, handles: list, ncols: int, title: str | None = No
     longest = max(len(line) for h in handles for line in h.get_label().split("\n"))
     fit = max(1, int(fig.get_figwidth() // (0.8 + 0.07 * longest)))
     if title:
-        title = "\n".join(textwrap.wrap(title, int(fig.get_figwidth() / 0.07)))
+        title = "\n".join(w for line in title.split("\n") for w in textwrap.wrap(line, int(fig.get_figwidth() / 0.07)))
     fig.legend(handles=handles, loc="outside lower center", ncols=max(1, min(ncols, fit, len(handles))),
                frameon=False, fontsize=8.5, title=title, title_fontsize=8.5)
 
@@ -307,7 +330,9 @@ def plot_curves(rs: ResultSet, metrics: list[str] | None = None) -> Figure:
         key.append("shaded band = ±1 sd across ok seeds")
     if non_finite:
         key.append("× = a non-finite run, at the epoch it stopped")
-    _legend_below(fig, handles, 3 if not faceted else len(handles), title="   ·   ".join(key) or None)
+    # Faceted, the panels and the legend name their axes; otherwise the labels need their key.
+    title = "\n".join(t for t in (None if faceted else _label_title(rs), "   ·   ".join(key)) if t)
+    _legend_below(fig, handles, 3 if not faceted else len(handles), title=title or None)
     one = _seed_counts(runs) == "one seed per variant"
     what = ("lines are single runs (one seed per variant: no spread to show)" if one else
             f"mean over ok seeds with a ±1 sd band; {_seed_counts(runs)}")
@@ -320,11 +345,13 @@ def plot_curves(rs: ResultSet, metrics: list[str] | None = None) -> Figure:
 
 # ── arms ────────────────────────────────────────────────────────────────────────────────────────
 def _baseline(rs: ResultSet, baseline: str | None, labels: list[str]) -> str | None:
+    """The arm to mark: named as ``lesion diff --baseline`` names it (short labels, an index,
+    ``base``, older forms; an unknown one lists the labels one per line)."""
+    from runtime.diff import baseline_label
+
     if baseline is None:
         return "base" if "base" in labels else None
-    if baseline not in labels:
-        raise PlotError(f"--baseline {baseline!r}: no such variant (labels: {'; '.join(labels)})")
-    return baseline
+    return baseline_label(rs, baseline)[0]
 
 
 def _order(rows: list[dict], metric: str) -> list[str]:
@@ -389,6 +416,8 @@ def plot_arms(rs: ResultSet, metrics: list[str] | None = None, baseline: str | N
     for tick, label in zip(axes[0].get_yticklabels(), order):
         if label == base:
             tick.set_fontweight("bold")
+    if _label_title(rs):
+        axes[0].set_ylabel(_label_title(rs), fontsize=9)
     handles = [Line2D([], [], color=PALETTE[0], marker="D", linestyle="none", label="mean over ok seeds"),
                Line2D([], [], color=PALETTE[0], linewidth=2.2, label="95 % t interval of the mean"),
                Line2D([], [], color=PALETTE[0], marker="o", markerfacecolor="none", linestyle="none",
@@ -417,6 +446,12 @@ def _grid_axes(rs: ResultSet) -> list[dict]:
         raise PlotError(f"{rs.path}: --kind grid needs a grid study over exactly two axes; "
                         f"'{study['study']['name']}' has {what} (try --kind arms)")
     return axes
+
+
+def _as_labelled(changes: list[dict], key: str, value) -> str:
+    """``value`` of axis ``key`` as the labels write it: the stored spec's canonical JSON writes
+    0.0 as 0, the runs' changes keep what the spec said."""
+    return next((format_value(c[key]) for c in changes if key in c and c[key] == value), format_value(value))
 
 
 def _cell_text(r: dict) -> str:
@@ -458,8 +493,10 @@ def plot_grid(rs: ResultSet, metrics: list[str] | None = None) -> Figure:
     metrics = _metrics_of(rs, metrics)
     runs = _runs_by_variant(rs)
     cell_of = {}
+    stored = []
     for label, rr in runs.items():
         ch = json.loads(rr[0]["changes"])
+        stored.append(ch)
         i = next(i for i, v in enumerate(ax_y["values"]) if v == ch.get(ax_y["key"]))
         j = next(j for j, v in enumerate(ax_x["values"]) if v == ch.get(ax_x["key"]))
         cell_of[label] = (i, j)
@@ -498,8 +535,8 @@ def plot_grid(rs: ResultSet, metrics: list[str] | None = None) -> Figure:
             bi, bj = cell_of[best]
             ax.add_patch(Rectangle((bj - 0.5, bi - 0.5), 1, 1, fill=False, edgecolor=PALETTE[1], linewidth=2.5,
                                    gid=f"best:{m}:{best}"))
-        ax.set_xticks(range(nx), [format_value(v) for v in ax_x["values"]])
-        ax.set_yticks(range(ny), [format_value(v) for v in ax_y["values"]])
+        ax.set_xticks(range(nx), [_as_labelled(stored, ax_x["key"], v) for v in ax_x["values"]])
+        ax.set_yticks(range(ny), [_as_labelled(stored, ax_y["key"], v) for v in ax_y["values"]])
         ax.set_xlabel(ax_x["key"])
         ax.set_ylabel(ax_y["key"])
         ax.set_title(f"final {m} ({_direction_text(m)})", fontsize=9.5)
@@ -558,6 +595,8 @@ def plot_diff(rs_a: ResultSet, rs_b: ResultSet, metrics: list[str] | None = None
             ax.spines[side].set_visible(False)
     ticks = [names[b] if a == b else f"{names[a]}\n→ {names[b]}" for a, b in pairs]
     axes[0].set_yticks([len(pairs) - 1 - k for k in range(len(pairs))], ticks, fontsize=8.5)
+    if _label_title(rs_a, rs_b):
+        axes[0].set_ylabel(_label_title(rs_a, rs_b), fontsize=9)
     used = list(dict.fromkeys(r["verdict"] for r in report.rows))
     handles = [Line2D([], [], color=VERDICT_COLOURS[v], marker="D", linewidth=2.2, label=v) for v in used]
     level = next((r["ci_level"] for r in report.rows if r["ci_level"] is not None), 1 - alpha)
@@ -605,7 +644,7 @@ def plot_budget(rs: ResultSet) -> Figure:
     ax.grid(True, alpha=0.25, linewidth=0.6)
     for side in ("top", "right"):
         ax.spines[side].set_visible(False)
-    ax.legend(fontsize=8.5, frameon=False)
+    ax.legend(fontsize=8.5, frameon=False, title=_label_title(rs), title_fontsize=8.5)
     _suptitle(fig, _title(rs, "expected best validation score vs tuning budget"),
               f"{metric} ({_direction_text(metric)}) at the judged epoch; band: ± one sd of the best of n "
               "draws (Dodge et al. 2019)")

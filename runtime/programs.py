@@ -1,6 +1,6 @@
 """The program store: compiled executables kept in the user's cache folder between invocations.
 
-A structure's compiled (init, epoch) executables are stored under a name hashed from everything
+A program's compiled (init, epoch) executables are stored under a name hashed from everything
 they depend on (:func:`program_path`), so a later invocation neither traces, lowers nor compiles
 them; it is a speed-up only — a stored program computes the same bits as a fresh compile (tested
 across processes), and replay never loads one. Writes are atomic; the folder is kept under
@@ -75,23 +75,23 @@ def enabled() -> bool:
 
 
 def data_signature(dataset) -> tuple:
-    """What a structure's programs know of its data: shapes, dtypes, task and class count (the
+    """What a program key's programs know of its data: shapes, dtypes, task and class count (the
     rows themselves are arguments, so data of the same signature share the programs)."""
     return (dataset.x.shape, str(dataset.x.dtype), dataset.y.shape, str(dataset.y.dtype), dataset.task,
             dataset.classes)
 
 
 def program_path(group: Group, dataset, zero: frozenset[str], environment: dict) -> Path:
-    """Where the compiled programs of a structure live in the compile cache. The name hashes
+    """Where the compiled programs of a program key live in the compile cache. The name hashes
     everything the programs are a function of: the numerics environment (lesion's sources among
-    them), jax's configuration, the structure, the lane width, the data's signature and the knobs
+    them), jax's configuration, the program key, the lane width, the data's signature and the knobs
     that are zero in every lane."""
     import jax
 
     from runtime import environment as env
 
     config = {k: repr(v) for k, v in sorted(jax.config.values.items()) if "cache" not in k}
-    parts = [env.env_hash(environment), config, group.structure, group.lane_width,
+    parts = [env.env_hash(environment), config, group.program, group.lane_width,
              data_signature(dataset), sorted(zero)]
     digest = hashlib.sha256(json.dumps(parts, sort_keys=True, default=str).encode()).hexdigest()
     return cache_dir() / "programs" / f"{digest}.pkl"

@@ -168,13 +168,13 @@ def replay(path: str | Path, *, run: str | None = None, variant: str | None = No
     batches: dict[tuple, list[int]] = {}
     for i in chosen:
         v = by_hash[cols["variant_hash"][i]]
-        key = (cols["group_id"][i], cols["finished_at"][i], cols["lane_width"][i], v.structure)
+        key = (cols["group_id"][i], cols["finished_at"][i], cols["lane_width"][i], v.program)
         batches.setdefault(key, []).append(i)
     plans = []
-    for (gid, _, width, structure), members in batches.items():
+    for (gid, _, width, program), members in batches.items():
         runs = [Run(cols["run_id"][i], by_hash[cols["variant_hash"][i]], cols["seed"][i]) for i in members]
         for k in range(0, len(runs), width):
-            plans.append(Group(gid, structure, width, tuple(runs[k:k + width])))
+            plans.append(Group(gid, program, width, tuple(runs[k:k + width])))
     base = Path(rs.meta["spec_path"]).parent if rs.meta["spec_path"] else Path.cwd()
     data = datasets_for(plans, base)
     key_columns = typed_key_columns(loaded.variants, varied_keys(loaded.variants))

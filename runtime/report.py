@@ -39,6 +39,7 @@ h1 { font-size: 1.5rem; margin-bottom: .2rem; } h2 { font-size: 1.15rem; margin-
 table { border-collapse: collapse; font-size: .88rem; margin: .6rem 0; }
 th, td { padding: .25rem .6rem; border-bottom: 1px solid #e4e6ea; text-align: left; vertical-align: top; }
 td.n { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
+td:first-child { white-space: nowrap; }
 tr.base td:first-child { font-weight: 600; }
 tr.better td:last-child { color: #1f6f69; font-weight: 600; }
 tr.worse td:last-child { color: #b3224f; font-weight: 600; }
@@ -109,11 +110,13 @@ def _pictures(rs: ResultSet, baseline: str) -> list[tuple[str, str]]:
 
 def render_report(rs: ResultSet, baseline: str | None = None) -> str:
     """The page for result set ``rs``; verdicts against ``baseline`` (default: :func:`default_baseline`)."""
-    from runtime.diff import diff_baseline
+    from runtime.diff import baseline_label, diff_baseline
+    from runtime.plot import label_key
     from runtime.show import SUMMARY_COLUMNS, summary_rows
     from runtime.tuning import tuned
 
-    baseline = baseline or default_baseline(rs)
+    # The full label, however it was given: the page marks and names the arm by it.
+    baseline = baseline_label(rs, baseline)[0] if baseline else default_baseline(rs)
     tree = rs.tree
     study = tree["study"]
     metric = rs.headline
@@ -128,6 +131,7 @@ def render_report(rs: ResultSet, baseline: str | None = None) -> str:
     best_run = next((rid for rid, label, status in zip(runs["run_id"], runs["variant_label"], runs["status"])
                      if best and label == best["variant"] and status == "ok"), runs["run_id"][0])
     verdict_rows = [{**r, "variant": r["variant_b"]} for r in report.rows]
+    key = label_key(rs)   # which axis each part of a grid cell's label is
     counts = {v: sum(r["verdict"] == v for r in report.rows) for v in ("better", "worse")}
 
     parts = [
@@ -146,7 +150,8 @@ def render_report(rs: ResultSet, baseline: str | None = None) -> str:
         f"{len(runs['run_id'])} runs, {sum(s != 'ok' for s in runs['status'])} non-finite.</p></section>",
         '<section id="summary"><h2>Summary</h2>',
         f'<p class="note">Final {escape(metric)} across seeds: mean, sample sd and 95 % t interval; '
-        "non-finite runs are counted and left out (as <code>lesion show</code>).</p>",
+        "non-finite runs are counted and left out (as <code>lesion show</code>)."
+        + (f" Labels: {escape(key)}.</p>" if key else "</p>"),
         _table(rows, SUMMARY_COLUMNS, set(SUMMARY_COLUMNS[1:-1]),
                row_class=lambda r: "base" if r["variant"] == baseline else ""),
         "</section>",

@@ -1,7 +1,7 @@
 """``lesion run``: a loaded study planned, executed group by group, and stored.
 
 Order of work: hold the result set's writer lock; read what is already stored; plan every run of
-the study (so lane widths never depend on what is missing, and a structure with stored runs keeps
+the study (so lane widths never depend on what is missing, and a program with stored runs keeps
 their width); skip runs stored with the same run id and the same numerics environment; execute
 the rest group by group, writing each finished group atomically before starting the next. An
 interruption loses at most the group in flight. ``--fresh`` writes into a staging folder inside
@@ -144,7 +144,7 @@ def group_tables(result: GroupResult, group: Group, study_hash: str, headline: s
         cols["lane_width"].append(result.lane_width)
         cols["lane"].append(lane.lane)
         cols["group_id"].append(result.group_id)
-        cols["program"].append(group.structure)
+        cols["program"].append(group.program)
         cols["status"].append("non_finite" if lane.non_finite_epoch is not None else "ok")
         cols["non_finite_epoch"].append(lane.non_finite_epoch)
         cols["epochs"].append(epochs)
@@ -223,27 +223,27 @@ def _missing(groups: list[Group], done: set) -> list[Group]:
     for g in groups:
         missing = tuple(r for r in g.runs if r.run_id not in done)
         if missing:
-            todo.append(Group(g.group_id, g.structure, g.lane_width, missing))
+            todo.append(Group(g.group_id, g.program, g.lane_width, missing))
     return todo
 
 
 def _recorded_widths(stored: ResultSet | None, done: set) -> dict[str, int]:
-    """structure -> the lane width its reused runs were computed at (bits depend on the width, so
-    the rest of the structure is computed at that width too)."""
+    """program key -> the lane width its reused runs were computed at (bits depend on the width, so
+    the rest of the program.s runs are computed at that width too)."""
     if stored is None or not done:
         return {}
     found: dict[str, set] = {}
     cols = stored.runs.select(["run_id", "program", "lane_width"]).to_pydict()
-    for rid, structure, width in zip(cols["run_id"], cols["program"], cols["lane_width"]):
+    for rid, program, width in zip(cols["run_id"], cols["program"], cols["lane_width"]):
         if rid in done:
-            found.setdefault(structure, set()).add(width)
+            found.setdefault(program, set()).add(width)
     return {s: next(iter(w)) for s, w in found.items() if len(w) == 1}
 
 
 def _refuse_other_width(todo: list[Group], widths: dict[str, int], lanes: int | None, where: Path, fresh: bool):
-    """A ``--lanes`` that differs from the width of a structure's stored runs would mix widths in
-    that structure: refused, rather than silently overridden, when runs of it are still missing."""
-    clash = sorted({widths[g.structure] for g in todo if g.structure in widths and lanes not in (None, widths[g.structure])})
+    """A ``--lanes`` that differs from the width of a program's stored runs would mix widths in
+    that program: refused, rather than silently overridden, when runs of it are still missing."""
+    clash = sorted({widths[g.program] for g in todo if g.program in widths and lanes not in (None, widths[g.program])})
     if clash:
         raise ResultSetError(
             f"{where}: runs stored there were computed at lane width {', '.join(map(str, clash))}; --lanes {lanes} "
@@ -282,10 +282,10 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
     run's bits do not depend on the number of workers (XLA:CPU computes with one thread in each:
     :func:`runtime.environment.single_threaded_xla`, called here first).
 
-    In this process (no ``executor``), the resource guard sees every group first: structures
+    In this process (no ``executor``), the resource guard sees every group first: programs
     whose lanes would not fit the machine get a narrower width (unless ``lanes`` forces one), and
     a study that still does not fit raises :class:`runtime.guard.ResourceError` before anything
-    is compiled. Structures with reused runs keep the width those were computed at.
+    is compiled. Programs with reused runs keep the width those were computed at.
 
     ``fresh`` recomputes every run without touching the stored ones until the whole study is
     computed: the new runs are written group by group into the staging folder
@@ -300,7 +300,7 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
     :func:`runtime.plan.plan`'s ``per_round``, the rule recorded in the metadata.
 
     ``progress(event, **info)`` receives ("plan", groups=…, runs=…, estimate=…), ("group", group=…,
-    todo=…), ("epoch", done=…, total=…), ("stored", group=…, result=…)."""
+    todo=…), ("epoch", group=…, done=…, total=…), ("stored", group=…, result=…)."""
     environment.single_threaded_xla()
     programs.enable_compile_cache()
     environment.check_settings()
@@ -318,7 +318,7 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
     where = loaded.path or loaded.spec.study.name
     # Everything that can refuse the study (data, memory) is decided before the result set's
     # folder exists, from all runs (never from what is missing, so widths stay a function of
-    # the structure).
+    # the program).
     shape = dict(seeds_of=seeds_of, per_round=sequential["round"] if sequential else None)
     groups = plan(loaded.variants, seeds, lanes=lanes, **shape)
     if executor is None:  # the memory checked is this machine's
@@ -328,7 +328,7 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
     budget = None
     if executor is None:
         budget = guard.lane_budget(groups, data)
-        if lanes is None and any(g.lane_width > budget[g.structure] for g in groups):
+        if lanes is None and any(g.lane_width > budget[g.program] for g in groups):
             groups = plan(loaded.variants, seeds, lane_budget=budget, **shape)
             data = datasets_for(groups, base_dir, loaded_data)
         one = guard.estimate(groups, data)
@@ -350,7 +350,7 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
                                stored.runs.column("env_hash").to_pylist()):
                 if fp == env_fp:
                     done.add(rid)
-        # Structures with reused runs keep the width those were computed at.
+        # Programs with reused runs keep the width those were computed at.
         widths = _recorded_widths(stored, done)
         if widths:
             groups = plan(loaded.variants, seeds, lanes=lanes, lane_budget=budget, widths=widths, **shape)
@@ -362,7 +362,7 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
             preparation = execute.preparation(todo, data, env)
             calibration = guard.Calibration.load(_timing_path())
             estimate = guard.estimate(todo, data, preparation=preparation, calibration=calibration,
-                                      workers=workers)
+                                      workers=workers, load=None)
         planned = sum(len(g.runs) for g in groups)
         if progress:
             progress("plan", groups=len(todo), runs=sum(len(g.runs) for g in todo), planned=planned,
@@ -372,11 +372,11 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
         compile_s = run_s = 0.0
         current = stored
         started = time.perf_counter()
-        compiled, loaded_s, busy = [], [], {}
+        compiled, loaded_s, busy, run_cpu = [], [], {}, 0.0
         check()
         for g, result in (executor or LocalWorkers(workers, checkpoint=checkpoint)).run(todo, data, env, progress):
             if estimate is not None and preparation[g.group_id] != "reuse":
-                (compiled if preparation[g.group_id] == "compile" else loaded_s).append(result.compile_seconds)
+                (compiled if preparation[g.group_id] == "compile" else loaded_s).append(result.compile_cpu_seconds)
             runs_t, curves_t = group_tables(result, g, loaded.study_hash, headline, key_columns,
                                             data[g.group_id].data_hash)
             current = write_results(target, meta, runs_t, curves_t, previous=current)
@@ -384,17 +384,20 @@ def run_study(loaded, out: Path, *, lanes: int | None = None, fresh: bool = Fals
             warnings += [f"{lane.run_id}: {w}" for lane in result.lanes for w in lane.warnings]
             compile_s += result.compile_seconds
             run_s += result.run_seconds
+            run_cpu += result.run_cpu_seconds
             busy[g.group_id] = result.compile_seconds + result.run_seconds
             if progress:
                 progress("stored", group=g, result=result)
             check()
         if estimate is not None and todo:
-            # What this invocation measured calibrates the next estimate on this machine.
-            # Groups that computed side by side overlap: what is left besides them is the
-            # elapsed time less the busiest worker's.
+            # What this invocation measured calibrates the next estimate on this machine, as
+            # an idle core would have taken it: CPU seconds of the computing processes. Groups
+            # that computed side by side overlap: what is left besides them is the elapsed time
+            # less the busiest worker's, taken back to an idle machine by the load seen now.
             rest = time.perf_counter() - started - guard.schedule([busy[g.group_id] for g in todo], workers)
+            rest /= guard.slowdown(processes=0)
             modelled = sum(guard.model_seconds(g, data[g.group_id]) for g in todo)
-            calibration.updated(compiled=compiled, loaded=loaded_s, executed=(run_s, modelled),
+            calibration.updated(compiled=compiled, loaded=loaded_s, executed=(run_cpu, modelled),
                                 other=(rest, len(todo))).save(_timing_path())
         if current is None:  # nothing to compute and nothing stored: an empty study cannot happen
             raise ResultSetError(f"{path}: nothing was computed")
@@ -412,7 +415,7 @@ def run_until_decided(loaded, out: Path, rule, *, axis: str | None = None, **kw)
     (:mod:`runtime.sequential`, the questions of :func:`runtime.diff.sequential_design`).
 
     Each look is one :func:`run_study` of only the runs it needs (arms still open, the round's new
-    seeds), so settled arms stop consuming compute and open ones share compile groups; the next
+    seeds), so settled arms stop consuming compute and open ones share groups; the next
     look is found by replaying the rule over the stored runs. The rule's decisions at a look
     depend only on the runs of that look, so a killed procedure, run again, replays to where it
     stopped and continues with the same decisions and the same seeds. Returns the report of each
@@ -421,9 +424,6 @@ def run_until_decided(loaded, out: Path, rule, *, axis: str | None = None, **kw)
     from runtime.diff import sequential_design
 
     spec = loaded.spec
-    if spec.ablation is not None and spec.ablation.tune is not None:
-        raise ResultSetError(f"{loaded.path}: --until-decided adds seeds to variants, and a tuned study compares "
-                             "arms (each its pick per seed); run it with a fixed number of seeds (study.seeds)")
     first = spec.study.seed_list
     record = {**rule.as_dict(), "first": first, "axis": axis, "metric": spec.study.metric}
     path = result_dir(out, spec.study.name, loaded.study_hash)

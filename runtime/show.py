@@ -10,8 +10,9 @@ from __future__ import annotations
 
 import numpy as np
 
+from runtime import tuning
 from runtime.formats import Fit
-from runtime.migrate import key_of
+from runtime.migrate import key_column
 from runtime.stats import summarize
 from runtime.store import ResultSet
 
@@ -96,9 +97,17 @@ def run_rows(rs: ResultSet, metrics: list[str]) -> tuple[list[dict], list[str]]:
 
 
 def axis_values(rs: ResultSet) -> tuple[list[str], dict[str, dict]]:
-    """The varied dotted keys and, per variant label, each key's value: the result set stores one
-    column per varied key (:func:`runtime.migrate.key_column`: no other column name has ``__``)."""
+    """The varied keys' column names and, per variant label, each one's value: the result set
+    stores one column per varied key (:func:`runtime.migrate.key_column`: no other column name has
+    ``__``), and a program reading ``show --format json``/``csv`` gets the names it would query
+    the Parquet file by (plain identifiers, unlike the dotted keys)."""
     names = [c for c in rs.runs.column_names if "__" in c]
     cols = rs.runs.select(["variant_label", *names]).to_pydict()
-    keys = [key_of(c) for c in names]
-    return keys, {lab: {key_of(c): cols[c][i] for c in names} for i, lab in enumerate(cols["variant_label"])}
+    values = {lab: {c: cols[c][i] for c in names} for i, lab in enumerate(cols["variant_label"])}
+    if tuning.tuned(rs):
+        # An arm (the rows of its picks and of its budget) has the values its tuned variants share;
+        # a tuned knob's column stays empty, its value differing from seed to seed.
+        for v in tuning.study_of(rs).variants:
+            tuned_columns = {key_column(k) for k in v.setting}
+            values.setdefault(v.arm.label, {c: x for c, x in values.get(v.label, {}).items() if c not in tuned_columns})
+    return names, values

@@ -89,7 +89,8 @@ def arm_picks(rs: ResultSet, loaded) -> list[ArmPicks]:
         raise ResultSetError(f"{rs.path}: stores no test scores (a tuned study needs data.test)")
     row = {rid: i for i, rid in enumerate(cols["run_id"])}
     at_epoch = _judged_values(rs, cols, metric, epoch)
-    seeds = loaded.spec.study.seed_list
+    # The spec's seeds and any a stopping rule added (lesion run --until-decided).
+    seeds = sorted(set(loaded.spec.study.seed_list) | set(cols["seed"]))
     out = []
     for arm in arms(loaded.variants):
         members = [v for v in loaded.variants if (v.arm or v).hash == arm.hash]

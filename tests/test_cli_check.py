@@ -63,7 +63,7 @@ def test_check_prints_the_study_hash_and_exits_0(spec):
     assert code == 0
     assert f"study hash  {study_hash(study.spec)}" in out
     for v in study.variants:
-        assert v.hash[:12] in out and v.structure in out
+        assert v.hash[:12] in out and v.program in out
 
 
 def test_check_json_form():
@@ -77,7 +77,7 @@ def test_check_json_form():
     assert report["runs"] == len(report["variants"]) * 4 == 16
     assert report["variants"][1] == {"label": "divergence huber", "changes": {"divergence.kind": "huber"},
                                      "variant_hash": study.variants[1].hash,
-                                     "program": study.variants[1].structure, "seeds": [11, 12, 13, 14]}
+                                     "program": study.variants[1].program, "seeds": [11, 12, 13, 14]}
 
 
 def test_check_and_schema_do_not_import_jax():
@@ -118,3 +118,15 @@ def test_labels_with_newlines_or_bidi_controls_are_escaped_in_check(tmp_path):
     assert not {"\u202e", "\u2066", "\x1b"} & set(out)
     # JSON's own escapes (RFC 8259 §7) keep the labels exact for programs.
     assert [v["label"] for v in json.loads(out)["variants"]] == ["base", "fast\u202eevil", "two\nlines\x1b[31m\u2066"]
+
+
+@pytest.mark.parametrize("width", [80, 120, 200])
+@pytest.mark.parametrize("spec", sorted((ROOT / "specs").glob("*.toml")), ids=lambda p: p.name)
+def test_check_fits_the_terminal_and_keys_its_labels(spec, width):
+    out = CliRunner().invoke(app, ["check", str(spec)], env={"COLUMNS": str(width)}).stdout
+    assert max(map(len, out.splitlines())) <= width, out
+    if spec.name == "cold-chain.toml":
+        # which axis each part of "none · 0.15" is, by the short names the pictures use too
+        text = " ".join(line.strip() for line in out.split("labels", 1)[1].split("\n#")[0].splitlines())
+        assert text == ("normalization · dropout.rate (normalization = normalization.kind, "
+                        "dropout.rate = regularization.dropout.rate)")

@@ -95,11 +95,11 @@ def test_seeds_as_count_or_list(seeds, expected):
     assert study.seeds == expected and study.runs == 2 * len(expected)
 
 
-def test_knob_only_changes_share_a_structure_and_kind_changes_do_not():
+def test_knob_only_changes_share_a_program_and_kind_changes_do_not():
     vs = _variants('[normalization]\nkind = "batch"\n'
                    '[[ablation.axis]]\nkey = "normalization.kind"\nvalues = ["batch", "layer"]\n'
                    '[[ablation.axis]]\nkey = "optimizer.learning_rate"\nvalues = [0.01, 0.1]\n')
-    assert vs[0].structure == vs[1].structure != vs[2].structure == vs[3].structure
+    assert vs[0].program == vs[1].program != vs[2].program == vs[3].program
     assert len({v.hash for v in vs}) == 4
 
 

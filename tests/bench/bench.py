@@ -174,7 +174,7 @@ def batched_matmul_throughput(w: dict, reps: int = 5) -> float:
 
 
 def lane_width(w: dict) -> int:
-    """lesion's default lane width for a benchmark study (one structure: all its runs, at most 32)."""
+    """lesion's default lane width for a benchmark study (one program key: all its runs, at most 32)."""
     return min(len(w["learning_rates"]) * len(w["seeds"]), 32)
 
 

@@ -7,7 +7,7 @@ Usage (repository root)::
 Each ``REV`` is a git revision (``main``, ``HEAD~1``, a commit) or ``.`` for the working tree;
 its ``compiler/`` and ``runtime/`` are copied to a temporary folder. For every repeat, each
 revision in turn (interleaved, so a busy machine's slow phases spread over all of them) runs in
-its own process with one XLA thread: the first compile group of ``SPEC`` (default: the realistic
+its own process with one XLA thread: the first group of ``SPEC`` (default: the realistic
 workload) with ``training.epochs`` set to ``--epochs``, executed twice, the second (warm) timed.
 It prints, per revision, the fastest epoch's wall milliseconds over all repeats (each epoch
 is timed; on a busy machine the fastest is the one least disturbed by other jobs) and its ratio

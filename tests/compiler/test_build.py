@@ -17,7 +17,7 @@ from sklearn.preprocessing import StandardScaler
 from compiler import build, model
 from compiler.data import load_data
 from compiler.expand import expand
-from compiler.hashing import KNOBS, structure_key, study_hash
+from compiler.hashing import KNOBS, program_key, study_hash
 from compiler.spec import Spec
 
 ROOT = pathlib.Path(__file__).resolve().parents[2]
@@ -33,7 +33,7 @@ def variant(**sections):
 
 def program(v, base_dir="."):
     ds = load_data(v, pathlib.Path(base_dir))
-    return build.compile_structure([v], ds), ds
+    return build.compile_program([v], ds), ds
 
 
 def knobs(v):
@@ -61,7 +61,7 @@ def base():
 
 def test_program_contract(base):
     v, prog, ds, carry, metrics = base
-    assert prog.structure == structure_key(v) and prog.epochs == 3
+    assert prog.key == program_key(v) and prog.epochs == 3
     assert prog.knob_names == tuple(k for k in KNOBS if k in prog.knob_names) and "optimizer.learning_rate" in prog.knob_names
     assert prog.metric_names == ("train_divergence", "train_penalty", "val_divergence", "val_accuracy", "val_macro_f1",
                                  "val_recall_0", "val_recall_1", "val_recall_2", "grad_norm",
@@ -163,17 +163,17 @@ def test_epoch_by_epoch_equals_train_and_vmap_lanes_do_not_interact(base):
         np.testing.assert_allclose(vm["val_divergence"][0], metrics["val_divergence"][e], rtol=1e-4)
 
 
-# ── one program per structure ───────────────────────────────────────────────────────────────────
+# ── one program per program key ───────────────────────────────────────────────────────────────
 def test_knobs_are_traced_one_trace_for_all_values():
     a = variant(optimizer={"kind": "sgd", "learning_rate": 0.01, "momentum": 0.0},
                 regularization={"weight_decay": 0.0, "dropout": {"rate": 0.0}})
     b = variant(optimizer={"kind": "sgd", "learning_rate": 0.3, "momentum": 0.9},
                 regularization={"weight_decay": 0.01, "dropout": {"rate": 0.3}})
-    assert structure_key(a) == structure_key(b)
+    assert program_key(a) == program_key(b)
     # Built for both: a program built for a alone leaves out the work a's zero knobs make the
     # identity (the dropout masks), and packing b's lanes for it is refused.
     ds = load_data(a, pathlib.Path("."))
-    prog = build.compile_structure([a, b], ds)
+    prog = build.compile_program([a, b], ds)
     traces = []
 
     def epoch(*args):
@@ -251,7 +251,7 @@ def test_a_program_packs_its_lanes_and_knows_its_zero_knobs():
     a = variant(regularization={"dropout": {"rate": 0.0}})
     b = variant(regularization={"dropout": {"rate": 0.2}}, optimizer={"kind": "sgd", "learning_rate": 0.01})
     ds = load_data(a, pathlib.Path("."))
-    prog = build.compile_structure([a, b], ds)
+    prog = build.compile_program([a, b], ds)
     assert prog.zero_knobs == {"regularization.weight_decay", "optimizer.momentum", "divergence.label_smoothing"}
     packed = prog.pack([a, b, a])
     assert tuple(packed) == prog.knob_names
@@ -260,16 +260,16 @@ def test_a_program_packs_its_lanes_and_knows_its_zero_knobs():
     np.testing.assert_array_equal(packed["optimizer.learning_rate"], np.float32([0.05, 0.01, 0.05]))
     # Built for rate 0 alone, the program may have left the masks out: b's rate cannot run on it.
     with pytest.raises(ValueError, match="regularization.dropout.rate"):
-        build.compile_structure([a], ds).pack([a, b])
+        build.compile_program([a], ds).pack([a, b])
 
 
-def test_one_program_serves_one_structure():
+def test_one_program_serves_one_program_key():
     a, other = variant(), variant(normalization={"kind": "layer"})
     ds = load_data(a, pathlib.Path("."))
-    with pytest.raises(ValueError, match="several structures"):
-        build.compile_structure([a, other], ds)
-    with pytest.raises(ValueError, match=structure_key(other)):
-        build.compile_structure([a], ds).pack([a, other])
+    with pytest.raises(ValueError, match="several program keys"):
+        build.compile_program([a, other], ds)
+    with pytest.raises(ValueError, match=program_key(other)):
+        build.compile_program([a], ds).pack([a, other])
 
 
 # ── health ──────────────────────────────────────────────────────────────────────────────────────

@@ -24,7 +24,7 @@ def _train(kind: str, zero: bool):
     or for it and a variant of rate 0.5 (it is not)."""
     v = _variant(kind, 0.0)
     ds = load_data(v, pathlib.Path("."))
-    prog = build.compile_structure([v] if zero else [v, _variant(kind, 0.5)], ds)
+    prog = build.compile_program([v] if zero else [v, _variant(kind, 0.5)], ds)
     assert ("regularization.dropout.rate" in prog.zero_knobs) == zero
     knobs = {k: jnp.float32(x) for k, x in build.knob_vector(v).items()}
     args = (knobs, build.seed_key(3), ds.x, ds.y)

@@ -294,7 +294,7 @@ def test_family_memory_estimate_bounds_a_measured_training_step(family, tmp_path
            "training": {"epochs": 1, "batch_size": 64}}
     variant = expand(Spec.model_validate(raw))[0]
     ds = load_data(variant.spec, tmp_path)
-    program = build.compile_structure([variant.spec], ds)
+    program = build.compile_program([variant.spec], ds)
     knobs = program.pack([variant.spec])
     keys = jax.vmap(build.seed_key)(jnp.arange(1))
     carry = jax.vmap(program.init, in_axes=(0, 0, None, None))(knobs, keys, ds.x, ds.y)

@@ -40,7 +40,7 @@ def _variant(network, epochs):
 def _final_accuracy(folder, network, seeds, epochs):
     v = _variant(network, epochs)
     ds = load_data(v, folder)
-    prog = build.compile_structure([v], ds)
+    prog = build.compile_program([v], ds)
     knobs = prog.pack([v] * len(seeds))
     keys = jax.vmap(build.seed_key)(np.asarray(seeds, np.uint32))
     _, metrics = jax.jit(jax.vmap(prog.train, in_axes=(0, 0, None, None)))(knobs, keys, ds.x, ds.y)

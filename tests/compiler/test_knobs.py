@@ -1,5 +1,5 @@
-"""Knobs and structure are derived from the schema: every field of a component reaches its
-factory, and every field of a variant decides either its structure key or a knob value.
+"""Knobs and program keys are derived from the schema: every field of a component reaches its
+factory, and every field of a variant decides either its program key or a knob value.
 
 These guard against a field that is validated, hashed and then silently ignored: a knob missing
 from what the compiler hands a factory made a Huber study with ``delta = 0.05`` train with the
@@ -19,7 +19,7 @@ import pytest
 from compiler import build, model
 from compiler.data import load_data
 from compiler.expand import expand
-from compiler.hashing import KNOBS, knobs_of, models_in, sections, structure_key, variant_payload
+from compiler.hashing import KNOBS, knobs_of, models_in, sections, program_key, variant_payload
 from compiler.spec import Spec, Strict
 
 sys.path.insert(0, str(pathlib.Path(__file__).parent))  # the suite imports in importlib mode
@@ -98,7 +98,7 @@ def factory_calls():
         for name in TRAINED:
             v = _variant(BASES[name])
             ds = load_data(v, pathlib.Path("."))
-            prog = build.compile_structure([v], ds)
+            prog = build.compile_program([v], ds)
             traced = {}
 
             def init(knobs):
@@ -135,13 +135,13 @@ def test_every_field_of_a_component_reaches_its_factory(factory_calls, name):
                     # learning rate reaches the schedule, whose result the optimizer receives).
                     assert any(value is traced[prefix + field] for value in below), f"{prefix}{field}"
                 else:
-                    assert not isinstance(given[field], jax.core.Tracer), f"{prefix}{field} is structure"
+                    assert not isinstance(given[field], jax.core.Tracer), f"{prefix}{field} is part of the program key"
                     assert given[field] == getattr(section, field), f"{prefix}{field}"
                 checked += 1
     assert checked
 
 
-# ── every field decides the structure key or a knob ─────────────────────────────────────────────
+# ── every field decides the program key or a knob ──────────────────────────────────────────────
 def _leaves(tree: dict, prefix: str = ""):
     for key, value in tree.items():
         if isinstance(value, dict):
@@ -200,12 +200,12 @@ def _changed(v: Spec, path: str, new) -> Spec | None:
     return None
 
 
-def test_changing_any_field_changes_the_structure_key_or_a_knob_value():
+def test_changing_any_field_changes_the_program_key_or_a_knob_value():
     covered = set()
     every = set()
     for raw in BASES.values():
         v = _variant(raw)
-        key, knobs = structure_key(v), knobs_of(v)
+        key, knobs = program_key(v), knobs_of(v)
         for path, value in _leaves(variant_payload(v)):
             every.add(path)
             other = next((w for w in (_changed(v, path, o) for o in _options(v, path, value)) if w), None)
@@ -213,8 +213,8 @@ def test_changing_any_field_changes_the_structure_key_or_a_knob_value():
                 continue  # no valid other value in this base; another base must cover the path
             covered.add(path)
             if path in knobs:
-                assert structure_key(other) == key and knobs_of(other) != knobs, path
+                assert program_key(other) == key and knobs_of(other) != knobs, path
             else:
-                assert structure_key(other) != key, f"{path} changed but neither the structure nor a knob did"
+                assert program_key(other) != key, f"{path} changed but neither the program key nor a knob did"
     # A file's task never changes alone: the divergence has to match it.
     assert every - covered == {"data.task"}

@@ -56,7 +56,7 @@ def tiny_spec():
 
 
 # A list study for `run --until-decided`: the base, an arm whose learning rate is too small to learn
-# in 3 epochs (clearly worse), and a light dropout (close to the base); all share one structure.
+# in 3 epochs (clearly worse), and a light dropout (close to the base); all share one program.
 DECIDED_VARIANTS = """
 [ablation]
 mode = "list"

@@ -153,8 +153,16 @@ def test_show_json_carries_the_study_hash_and_axis_values(stored):
     spec, path, _ = stored
     doc = json.loads(runner.invoke(app, ["show", str(path), "-f", "json"]).stdout)
     assert doc["study_hash"] == json.loads(runner.invoke(app, ["check", str(spec), "-f", "json"]).stdout)["study_hash"]
-    assert doc["axes"] == ["optimizer.learning_rate"]
-    assert [r["optimizer.learning_rate"] for r in doc["rows"]] == [0.03, 0.3]
+    # named as the Parquet column a program would query, each value a field of its own
+    assert doc["axes"] == ["optimizer__learning_rate"]
+    assert [r["optimizer__learning_rate"] for r in doc["rows"]] == [0.03, 0.3]
+    stored = pq.read_table(path / "runs.parquet").to_pydict()
+    for r in doc["rows"]:
+        assert {v for lab, v in zip(stored["variant_label"], stored["optimizer__learning_rate"])
+                if lab == r["variant"]} == {r["optimizer__learning_rate"]}
+    rows = list(csv.DictReader(io.StringIO(runner.invoke(app, ["show", str(path), "-f", "csv"]).stdout)))
+    assert [r["optimizer__learning_rate"] for r in rows] == ["0.03", "0.3"]
+    assert {r["study_hash"] for r in rows} == {doc["study_hash"]}
 
 
 def test_version_and_help_metavars():
@@ -172,10 +180,17 @@ def test_help_examples_name_the_shipped_specs_hashes():
 
     from compiler.loader import load_study
 
-    shipped = {load_study(p).result_set for p in (ROOT / "specs").glob("*.toml")}
-    texts = [runner.invoke(app, [c, "--help"]).stdout for c in ("show", "replay", "diff", "plot")]
-    named = set(re.findall(r"results/([a-z-]+-[0-9a-f]{12})\b", " ".join(texts)))
+    from compiler.hashing import run_id
+
+    studies = [load_study(p) for p in (ROOT / "specs").glob("*.toml")]
+    shipped = {s.result_set for s in studies}
+    texts = " ".join(runner.invoke(app, [c, "--help"]).stdout
+                     for c in ("show", "replay", "diff", "plot", "report", "export"))
+    named = set(re.findall(r"results/([a-z-]+-[0-9a-f]{12})\b", texts))
     assert named and named <= shipped
+    # a run id in an example is one of those studies' runs
+    ids = set(re.findall(r"--run ([0-9a-f]{16}-s\d+)", texts))
+    assert ids and ids <= {run_id(v.hash, seed) for s in studies for v in s.variants for seed in s.seeds}
 
 
 def test_progress_says_compiling_then_counts_epochs_with_an_estimate():
@@ -187,22 +202,32 @@ def test_progress_says_compiling_then_counts_epochs_with_an_estimate():
     from runtime.cli import _RunProgress
 
     run = SimpleNamespace(variant=SimpleNamespace(spec=SimpleNamespace(training=SimpleNamespace(epochs=4))))
-    group = SimpleNamespace(runs=[run, run], lane_width=2)
+    group = SimpleNamespace(group_id="a-0", runs=[run, run], lane_width=2)
+    other = SimpleNamespace(group_id="b-0", runs=[run, run], lane_width=2)
     out = io.StringIO()
     with _RunProgress(None, console=Console(file=out, width=120)) as bar:
         bar("plan", groups=2, runs=4, planned=4)
+        # two workers: both groups start (compiling) before either has an epoch
         bar("group", group=group, todo=2)
-        task = bar.progress.tasks[bar.task]
+        bar("group", group=other, todo=2)
+        task = bar.progress.tasks[bar.bars["a-0"]["task"]]
+        second = bar.progress.tasks[bar.bars["b-0"]["task"]]
         assert "compiling" in task.description and task.fields["count"] == "0/4 epochs"
+        assert "compiling" in second.description and "2/2" in second.description
         for done in (1, 2, 3):
-            bar("epoch", done=done, total=4)
+            bar("epoch", group=group, done=done, total=4)
         assert "compiling" not in task.description and task.completed == 3
         assert task.fields["count"] == "3/4 epochs" and task.fields["left"].endswith("left")
+        assert "compiling" in second.description   # the other group's epochs are its own
         study = bar.progress.tasks[bar.study]
         assert study.completed == 1.5 and study.fields["left"].endswith("left")
-        bar("epoch", done=4, total=4)
+        bar("epoch", group=other, done=2, total=4)
+        assert study.completed == 2.5 and second.fields["count"] == "2/4 epochs"
+        bar("epoch", group=group, done=4, total=4)
         bar("stored", group=group)
-    assert study.fields["count"] == "2/4 runs"
+        assert study.fields["count"] == "3/4 runs"    # 2 stored + half of the other group
+    assert task.fields["count"] == "4/4 epochs"
+
 
 @pytest.mark.parametrize("redirect, message", [
     (">/dev/full", "lesion: cannot write to standard output (No space left on device)"),

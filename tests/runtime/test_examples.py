@@ -44,7 +44,7 @@ def test_heavy_ball_gives_both_arms_the_same_five_rates():
     study = load_study(SPECS / "heavy-ball.toml")
     rates = {(v.arm.label, v.setting["optimizer.learning_rate"]) for v in study.variants}
     assert rates == {(a, r) for a in ("plain", "momentum") for r in (0.01, 0.03162, 0.1, 0.3162, 1.0)}
-    assert study.runs == 60 and len({v.structure for v in study.variants}) == 1
+    assert study.runs == 60 and len({v.program for v in study.variants}) == 1
 
 
 @pytest.mark.slow

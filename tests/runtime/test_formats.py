@@ -62,3 +62,32 @@ def test_labels_with_newlines_or_bidi_controls_are_escaped_in_show_diff_and_repl
     assert "fast\\u202eevil" in text and "two\\nlines\\x1b[31m [bold]x" in text and "a\\u202eb" in text
     assert len(text.splitlines()) == len(render(ESCAPE_ROWS[:1], ["variant", "mean"], fmt, title="t").splitlines()) + 1
 
+
+
+def test_a_column_goes_when_that_puts_rows_on_fewer_lines_and_only_then():
+    # the diff's layout at 80 columns: a row over three lines is harder to read than a column
+    # named on the last line; a column whose going saves no line stays
+    row = {"variant": "layer · dropconnect · 0.2", "ci": "[-0.4163, 0.01185]", "p": 0.05596,
+           "verdict": "no detectable change", "extra": "an optional long column"}
+    fit = Fit(keep=("variant", "ci", "verdict"), wrap=("variant", "ci", "verdict"))
+    columns = list(row)
+    lines = render([row], columns, "table", width=80, fit=fit).splitlines()
+    assert lines[2].split("  ")[0] == "layer · dropconnect · 0.2" and "no detectable change" in lines[2]
+    assert len(lines) == 4 and lines[3].startswith("not shown at 80 columns: extra (")
+    # at 50 the kept columns wrap whatever goes: p (5 columns wide) stays, it would save no line
+    narrow = render([row], columns, "table", width=50, fit=fit).splitlines()
+    assert max(map(len, narrow)) <= 50 and narrow[0].split() == ["variant", "ci", "p", "verdict"]
+    assert narrow[2].split()[:2] == ["layer", "·"] and narrow[4].strip() == "· 0.2"
+    assert narrow[5].startswith("not shown at 50 columns: extra (")
+
+
+def test_a_column_dropped_to_fit_comes_back_if_the_room_left_holds_it():
+    # check's table of a tuned study: the long 'changes' goes (it would put every row on two
+    # lines); the hash, seeds and program dropped before it fit beside the label again
+    rows = [{"#": i, "label": f"plain, optimizer.learning_rate={lr}", "changes":
+             f"optimizer.momentum=0.0, optimizer.learning_rate={lr}", "variant hash": "13d5e10a7b91",
+             "seeds": "0..5", "program": "86eafd1abda9"} for i, lr in enumerate(("0.01", "0.03162", "0.1"))]
+    fit = Fit(keep=("#", "label"), drop=("program", "seeds"), wrap=("label", "changes"))
+    lines = render(rows, list(rows[0]), "table", width=80, fit=fit).splitlines()
+    assert lines[0].split() == ["#", "label", "variant", "hash", "seeds", "program"]
+    assert len(lines) == 2 + 3 + 1 and lines[-1].startswith("not shown at 80 columns: changes (")

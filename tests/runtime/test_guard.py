@@ -1,6 +1,6 @@
 """The resource guard (runtime/guard.py): its time model against the grids measured on this
 machine, its memory model against the operating system's own accounting, narrower lanes when a
-structure would not fit, and a one-line refusal (exit 2) naming the knob to turn."""
+program would not fit, and a one-line refusal (exit 2) naming the knob to turn."""
 
 from __future__ import annotations
 
@@ -58,7 +58,7 @@ def test_groups_are_handed_out_to_the_first_free_worker():
 
 
 def test_the_time_estimate_with_workers_is_the_busiest_workers_wall_time():
-    # The 16-run grid at 4 lanes: 4 groups of one structure. One process compiles once and runs
+    # The 16-run grid at 4 lanes: 4 groups of one program. One process compiles once and runs
     # the groups one after another; on 2 workers each worker compiles (the cache is empty when
     # both start) and runs 2 groups; with the program cached, each worker loads it instead.
     groups, data = _grid(2048, 16, [32, 32], 4, 64, 20, lanes=4)
@@ -67,12 +67,16 @@ def test_the_time_estimate_with_workers_is_the_busiest_workers_wall_time():
     run = guard.model_seconds(groups[0], data[groups[0].group_id])
     one = guard.estimate(groups, data, calibration=cal)
     assert one.seconds == pytest.approx(2.0 + 4 * run + 4 * 0.05) and one.workers == 1
-    two = guard.estimate(groups, data, calibration=cal, workers=2)
+    two = guard.estimate(groups, data, calibration=cal, workers=2, cores=2)
     assert two.seconds == pytest.approx(2.0 + 2 * run + 4 * 0.05) and two.workers == 2
     loads = {g.group_id: "load" for g in groups}
-    cached = guard.estimate(groups, data, calibration=cal, workers=2, preparation=loads)
+    cached = guard.estimate(groups, data, calibration=cal, workers=2, preparation=loads, cores=2)
     assert cached.seconds == pytest.approx(0.1 + 2 * run + 4 * 0.05)
-    assert guard.estimate(groups, data, calibration=cal, workers=16).seconds == pytest.approx(2.0 + run + 4 * 0.05)
+    assert guard.estimate(groups, data, calibration=cal, workers=16, cores=16).seconds == pytest.approx(
+        2.0 + run + 4 * 0.05)
+    # More worker processes than cores share them.
+    assert guard.estimate(groups, data, calibration=cal, workers=4, cores=2).seconds == pytest.approx(
+        2 * (2.0 + run + 4 * 0.05))
     # One group stays in this process whatever the workers (runtime.workers).
     assert guard.estimate(groups[:1], data, calibration=cal, workers=2).workers == 1
 
@@ -97,8 +101,8 @@ def test_lane_budget_gives_the_widest_that_fits():
     fixed = guard.RUNTIME_BYTES + 2 * (d.x.nbytes + d.y.nbytes)
     for lanes in (1, 3, 7):
         budget = fixed + int(guard.XLA_SLACK * per_lane * lanes) + 1
-        assert guard.lane_budget(groups, data, budget) == {g.structure: lanes}
-    assert guard.lane_budget(groups, data, 0) == {g.structure: 1}
+        assert guard.lane_budget(groups, data, budget) == {g.program: lanes}
+    assert guard.lane_budget(groups, data, 0) == {g.program: 1}
 
 
 def test_this_machines_memory_matches_the_operating_system():
@@ -123,7 +127,7 @@ def test_check_passes_what_fits_and_names_the_lanes_knob_otherwise():
 
 @pytest.fixture(scope="module")
 def narrowed(tmp_path_factory, tiny_spec):
-    """The tiny study (6 runs of one structure) run with a memory budget that fits 2 lanes."""
+    """The tiny study (6 runs of one program) run with a memory budget that fits 2 lanes."""
     tmp = tmp_path_factory.mktemp("narrow")
     loaded = load_study(tiny_spec(tmp, "narrow"))
     groups = plan(loaded.variants, loaded.seeds)
@@ -142,7 +146,7 @@ def narrowed(tmp_path_factory, tiny_spec):
     return loaded, first, again, events
 
 
-def test_a_structure_that_does_not_fit_gets_narrower_lanes(narrowed):
+def test_a_program_that_does_not_fit_gets_narrower_lanes(narrowed):
     loaded, first, again, events = narrowed
     rs = open_result_set(first.path)
     assert set(rs.runs.column("lane_width").to_pylist()) == {2}
@@ -256,27 +260,48 @@ def test_a_compressed_npz_bomb_is_refused_from_its_headers_before_loading(tmp_pa
 
 def test_the_time_estimate_is_calibrated_by_what_runs_measured_on_this_machine(tmp_path, tiny_spec, monkeypatch):
     # The estimate was 2-3× low on a busy machine (issue 14): each run stores what it measured,
-    # and the next estimate is built from it. The measurements are checked against the result
-    # set's own record of them (runs.parquet: compile_seconds, run_seconds; README).
+    # and the next estimate is built from it. What is stored is CPU time of the computing
+    # process (what an idle core takes), recorded per group by execute; the wall times the
+    # result set keeps (runs.parquet: compile_seconds, run_seconds) are at least as long.
     from runtime import execute
 
     monkeypatch.setenv("LESION_CACHE_DIR", str(tmp_path / "cache"))
     monkeypatch.setattr(execute, "_programs", {})  # this process has compiled nothing yet
+    seen = []
+    execute_group = execute.execute_group
+    monkeypatch.setattr(execute, "execute_group", lambda *a, **k: seen.append(execute_group(*a, **k)) or seen[-1])
     loaded = load_study(tiny_spec(tmp_path, "calibrate"))
     groups = plan(loaded.variants, loaded.seeds)
     data = runner.datasets_for(groups, tmp_path)
     modelled = sum(guard.model_seconds(g, data[g.group_id]) for g in groups)
-    runs = open_result_set(runner.run_study(loaded, tmp_path / "a").path).runs.to_pydict()
+    runner.run_study(loaded, tmp_path / "a")
     stored = guard.Calibration.load(tmp_path / "cache" / "timing.json")
-    assert stored.runs == 1
-    assert stored.compile_seconds == pytest.approx(max(runs["compile_seconds"]))
-    assert stored.execute_ratio == pytest.approx(sum(runs["run_seconds"]) / modelled)
+    assert stored.runs == 1 and len(seen) == len(groups) == 1
+    assert 0 < stored.compile_seconds == pytest.approx(seen[0].compile_cpu_seconds)
+    assert stored.execute_ratio == pytest.approx(seen[0].run_cpu_seconds / modelled)
 
-    # A second process: the programs are in the compile cache, so the estimate counts a load.
+    # A second process: the programs are in the compile cache, so the estimate counts a load,
+    # at the machine's load now.
     monkeypatch.setattr(execute, "_programs", {})
+    monkeypatch.setattr(guard.os, "getloadavg", lambda: (0.0, 0.0, 0.0))
     events = []
     runner.run_study(loaded, tmp_path / "b", progress=lambda e, **info: events.append((e, info)))
     est = next(info["estimate"] for e, info in events if e == "plan")
+    assert est.busy == 1.0
     assert est.seconds == pytest.approx(stored.execute_ratio * modelled + stored.load_seconds
                                         + stored.group_seconds * len(groups))
     assert guard.Calibration.load(tmp_path / "cache" / "timing.json").runs == 2
+
+
+def test_a_busy_machine_lengthens_the_estimate_and_says_so():
+    # A process gets (cores ÷ runnable processes) of a core when more want one than there are
+    # (common practice: the load average counts runnable processes, Linux proc(5) loadavg).
+    assert guard.slowdown(1, load=0.0, cores=2) == 1.0
+    assert guard.slowdown(2, load=1.0, cores=2) == 1.5
+    assert guard.slowdown(1, load=19.0, cores=2) == 10.0
+    groups, data = _grid(2048, 16, [32, 32], 4, 64, 20)
+    idle = guard.estimate(groups, data, load=0.0, cores=2)
+    busy = guard.estimate(groups, data, load=19.0, cores=2)
+    assert busy.seconds == pytest.approx(10 * idle.seconds)
+    assert "busy" not in idle.describe()
+    assert busy.describe().endswith("(the machine is busy: load average 19.0 on 2 cores)")

@@ -73,6 +73,33 @@ def test_a_variant_is_named_by_its_old_label_its_new_label_or_its_values():
     assert resolve_variant(study, "dropout.kind=dropconnect, none") == 1
 
 
+def test_an_old_form_baseline_is_read_with_a_one_line_notice_naming_todays_label(tmp_path):
+    from typer.testing import CliRunner
+
+    from runtime.cli import app
+    from runtime.diff import name_variant
+
+    study = load_study(SPEC)
+    assert name_variant(study, "layer · inverted") == (2, None)        # today's forms: no notice
+    assert name_variant(study, "layer, inverted") == (2, None)
+    index, notice = name_variant(study, "normalization.kind=none, regularization.dropout.kind=connect")
+    assert index == 1 and "read as 'none · dropconnect'" in notice and "'connect' is now 'dropconnect'" in notice
+    index, notice = name_variant(study, "normalization.kind=layer, regularization.dropout.kind=inverted")
+    assert index == 2 and notice.endswith("read as 'layer · inverted' (the label result-set format 1 gave it)")
+    assert name_variant(study, "layer · connect")[0] == 3
+    for command in (["diff", str(GRID)], ["report", str(GRID), "-o", str(tmp_path / "r.html")]):
+        res = CliRunner().invoke(app, [*command, "--baseline", "none, connect", *(["-f", "json"] if command[0] == "diff" else [])])
+        notices = [line for line in res.stderr.splitlines() if line.startswith("notice:")]
+        assert notices == ["notice: --baseline 'none, connect': read as 'none · dropconnect' "
+                           "('connect' is now 'dropconnect')"], res.stderr
+        if command[0] == "diff":
+            assert res.exit_code == 0 and {r["variant_a"] for r in json.loads(res.stdout)["rows"]} == {"none · dropconnect"}
+    # still unknown after the renaming: every label, one per line
+    res = CliRunner().invoke(app, ["diff", str(GRID), "--baseline", "none · connected"])
+    assert res.exit_code == 2 and res.stderr.splitlines()[1:] == [
+        "  0  none · inverted", "  1  none · dropconnect", "  2  layer · inverted", "  3  layer · dropconnect"]
+
+
 def test_resuming_rewrites_an_old_result_set_in_the_current_format(tmp_path):
     path = tmp_path / GRID.name
     shutil.copytree(GRID, path)

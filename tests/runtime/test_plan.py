@@ -1,4 +1,4 @@
-"""Planning: structure groups, fixed lane widths, padding (see runtime/plan.py)."""
+"""Planning: groups by program key, fixed lane widths, padding (see runtime/plan.py)."""
 
 from compiler.expand import expand
 from compiler.spec import Spec
@@ -19,11 +19,11 @@ def _variants():
     return expand(spec)
 
 
-def test_groups_follow_structure_not_knobs():
+def test_groups_follow_the_program_key_not_knobs():
     groups = plan(_variants(), [0, 1, 2])
-    # learning rate is a traced knob, normalization kind is structure: 2 structures of 3×3 runs
+    # learning rate is a traced knob, normalization kind is in the program key: 2 programs of 3×3 runs
     assert [len(g.runs) for g in groups] == [9, 9]
-    assert len({g.structure for g in groups}) == 2
+    assert len({g.program for g in groups}) == 2
     assert all(g.lane_width == 9 and g.padding == 0 for g in groups)
 
 
@@ -43,6 +43,6 @@ def test_forced_width_and_every_run_once():
 
 def test_memory_budget_narrows_width():
     variants = _variants()
-    s = variants[0].structure
+    s = variants[0].program
     groups = plan(variants, [0, 1, 2], lane_budget={s: 2})
-    assert {g.lane_width for g in groups if g.structure == s} == {2}
+    assert {g.lane_width for g in groups if g.program == s} == {2}

@@ -219,7 +219,7 @@ def test_grid_cells_hold_the_summary_means_on_the_axis_values(sets):
     ax = fig.axes[0]
     assert ax.get_ylabel() == "optimizer.learning_rate" and ax.get_xlabel() == "regularization.weight_decay"
     assert [t.get_text() for t in ax.get_yticklabels()] == ["0.03", "0.3"]
-    assert [t.get_text() for t in ax.get_xticklabels()] == ["0", "0.01"]
+    assert [t.get_text() for t in ax.get_xticklabels()] == ["0.0", "0.01"]   # as the labels write it
     means = {r["variant"]: r["mean"] for r in summary_rows(rs)}
     for lr, wd in itertools.product(["0.03", "0.3"], ["0.0", "0.01"]):
         label = f"{lr} · {wd}"
@@ -343,6 +343,20 @@ def test_curves_of_a_large_grid_are_small_multiples_one_panel_per_level(sets):
     assert len(set(colour_of_decay.values())) == 3
     legend = [t.get_text() for t in fig.legends[0].get_texts()]
     assert legend == ["weight_decay=0.0", "weight_decay=0.001", "weight_decay=0.01"]
+
+
+def test_every_picture_of_grid_labels_says_which_axis_each_part_is(sets):
+    # a cell's label is its values alone ("0.03 · 0.0"): the picture names the axes in label order
+    key = "labels: learning_rate · weight_decay"
+    assert P.label_key(sets["grid"]) == "learning_rate · weight_decay"
+    assert P.plot_arms(sets["grid"]).axes[0].get_ylabel() == key
+    assert P.plot_diff(sets["grid"], sets["grid_b"]).axes[0].get_ylabel() == key
+    curves = P.plot_curves(sets["grid"])            # 4 variants: one panel, labels in the legend
+    assert curves.legends[0].get_title().get_text().splitlines()[0] == key
+    # (grid titles its axes by their keys: test_grid_cells_hold_the_summary_means_on_the_axis_values)
+    # small multiples name the axis in each panel and legend entry instead
+    nine = P.plot_curves(sets["nine"])
+    assert not nine.legends[0].get_title().get_text().startswith("labels:")
 
 
 def test_one_seed_says_so_and_draws_no_spread(sets):
@@ -490,13 +504,26 @@ def test_against_with_a_margin_draws_it_and_colours_equivalent_rows(sets):
     (["--kind", "grid"], "grid study over exactly two axes"),
     (["--metric", "val_accuracy"], "has no curves"),  # a classification metric in a regression study
     (["-o", "x.pdf"], ".png or .svg"),
-    (["--kind", "arms", "--baseline", "nope"], "--baseline 'nope': no such variant"),
 ])
 def test_cli_bad_input_is_one_line_and_exit_2(sets, args, message):
     out = CliRunner().invoke(app, ["plot", str(sets["regression"].path), *args])
     assert out.exit_code == 2, out.output
     assert message in out.stderr and len(out.stderr.strip().splitlines()) == 1
     assert "Traceback" not in out.output
+
+
+def test_cli_baseline_is_named_as_diff_names_it(sets, tmp_path):
+    path = str(sets["regression"].path)
+    # an unknown one: the choices one per line (labels may contain ", " themselves)
+    out = CliRunner().invoke(app, ["plot", path, "--kind", "arms", "--baseline", "nope"])
+    assert out.exit_code == 2 and "Traceback" not in out.output
+    assert out.stderr.splitlines() == ["--baseline 'nope': no such variant; give a label, an index or 'base':",
+                                       "  0  base", "  1  weight_decay 0.001", "  2  weight_decay 0.1"]
+    # a short label or an index marks the same arm as its full label
+    for given in ("weight_decay 0.1", "0.1", "2"):
+        out = CliRunner().invoke(app, ["plot", path, "--kind", "arms", "--baseline", given, "-o", str(tmp_path / "a.svg")])
+        assert out.exit_code == 0, out.output
+        assert "baseline mean (weight_decay 0.1)" in (tmp_path / "a.svg").read_text()
 
 
 def test_readme_does_not_brand_the_palette():

@@ -1,4 +1,4 @@
-"""Stored programs: a later invocation loads a structure's compiled executables from the compile
+"""Stored programs: a later invocation loads a program's compiled executables from the compile
 cache without tracing, and gets the same bits as the invocation that compiled them."""
 
 import dataclasses
@@ -41,21 +41,21 @@ def store(tmp_path, monkeypatch):
 
 
 def _untraceable(monkeypatch):
-    """From now on a structure's programs can only come from the store: tracing them fails."""
-    real = build.compile_structure
+    """From now on a program's executables can only come from the store: tracing them fails."""
+    real = build.compile_program
 
     def no_tracing(*args, **kwargs):
         def boom(*a, **k):
             raise AssertionError("traced although the programs were stored")
         return real(*args, **kwargs)._replace(init=boom, epoch=boom)
 
-    monkeypatch.setattr(build, "compile_structure", no_tracing)
+    monkeypatch.setattr(build, "compile_program", no_tracing)
 
 
 def test_a_later_run_loads_the_programs_without_tracing_and_gets_the_same_bits(tmp_path, tiny_spec, store, monkeypatch):
     loaded = load_study(tiny_spec(tmp_path, "ember", seeds=2, epochs=2))
     first = run_study(loaded, tmp_path / "a").path
-    assert len(list(store.glob("*.pkl"))) == 1  # one structure, one entry holding init and epoch
+    assert len(list(store.glob("*.pkl"))) == 1  # one program, one entry holding init and epoch
     monkeypatch.setattr(execute, "_programs", {})
     _untraceable(monkeypatch)
     second = run_study(loaded, tmp_path / "b").path

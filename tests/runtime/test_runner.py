@@ -63,14 +63,14 @@ def test_opens_in_plain_pyarrow_and_pandas(tiny_run):
 
 def test_arms_with_the_same_seed_start_from_the_same_parameters(tiny_run, tmp_path):
     # paired comparison: the init stream depends on the seed only, not on the knobs
-    from compiler.build import compile_structure, knob_vector, seed_key
+    from compiler.build import compile_program, knob_vector, seed_key
     from compiler.data import load_data
     import jax
 
     loaded, _, _ = tiny_run
     a, b = loaded.variants
     data = load_data(a.spec, Path("."))
-    pa_, pb_ = compile_structure([a.spec], data), compile_structure([b.spec], data)
+    pa_, pb_ = compile_program([a.spec], data), compile_program([b.spec], data)
     ca = pa_.init(knob_vector(a.spec), seed_key(1), data.x, data.y)
     cb = pb_.init(knob_vector(b.spec), seed_key(1), data.x, data.y)
     for x, y in zip(jax.tree.leaves(pa_.params(ca)), jax.tree.leaves(pb_.params(cb))):

@@ -127,7 +127,7 @@ def test_log_range_and_equal_budget():
     # the base and the listed arm, each with the same three rates (log-spaced: common practice)
     rates = Counter((v.arm.label, v.setting["optimizer.learning_rate"]) for v in loaded.variants)
     assert rates == {(a, r): 1 for a in ("base", "heavy") for r in (0.001, 0.01, 0.1)}
-    assert len({v.structure for v in loaded.variants}) == 1      # knobs: lanes, not programs
+    assert len({v.program for v in loaded.variants}) == 1      # knobs: lanes, not programs
 
 
 # ── a constructed study: a shared rate misleads, tuning inside arms does not ────────────────────
@@ -311,18 +311,37 @@ def test_report_of_a_tuned_study(shared):
     assert "arms tuned inside" in page and "budget:momentum" in page and "budget:plain" in page
 
 
-def test_until_decided_refuses_a_tuned_study(shared, tmp_path):
+def test_until_decided_adds_seeds_to_every_setting_of_the_open_arms(shared, tmp_path):
+    # The stopping rule judges the arms as diff does (each its pick per seed); a look's new seed
+    # is a new replicate of the whole tune-then-test procedure, so every setting of an open arm
+    # runs on it. A narrow margin keeps the question open past the first look.
+    from runtime.diff import sequential_design
     from runtime.runner import run_until_decided
     from runtime.sequential import Rule
-    from runtime.store import ResultSetError
 
     loaded = study_of(shared)
-    with pytest.raises(ResultSetError, match="tuned study compares arms"):
-        run_until_decided(loaded, tmp_path, Rule(margin=0.05, max_seeds=16, round=4, alpha=0.05))
+    rule = Rule(margin=0.005, max_seeds=12, round=4)
+    reports, seq = run_until_decided(loaded, tmp_path, rule)
+    rs = open_result_set(reports[-1].path)
+    cols = rs.runs.to_pydict()
+    seeds = {}
+    for label, seed in zip(cols["variant_label"], cols["seed"]):
+        seeds.setdefault(label, set()).add(seed)
+    assert len(reports) > 1 and max(cols["seed"]) >= 8              # seeds beyond the spec's were added
+    assert len({frozenset(s) for s in seeds.values()}) == 1          # every setting of both arms, same seeds
+    assert len(seeds) == 4
+    # the values judged at the last look are the arms' picks on those seeds, on the test split
+    (question, start, comparison, (a, b)), = seq.judged.values()
+    picks = {p.arm.label: p.picks for p in arm_picks(rs, study_of(rs))}
+    assert start["metric"] == "val_accuracy" and comparison.n_a == len(a) == len(seq.procedure.seeds)
+    assert a == {s: picks[start["variant_a"]][s].tests["test_accuracy"] for s in a}
+    assert b == {s: picks[start["variant_b"]][s].tests["test_accuracy"] for s in b}
+    again = sequential_design(rs, rule, loaded.spec.study.seed_list)
+    assert again.done and again.procedure.settled == seq.procedure.settled
 
 
 def test_test_rows_are_apart_and_standardization_ignores_them():
-    from compiler.build import compile_structure, seed_key
+    from compiler.build import compile_program, seed_key
     from compiler.data import load_data
 
     text = BASE.format(samples=200, validation=0.25, test=0.2)
@@ -331,7 +350,7 @@ def test_test_rows_are_apart_and_standardization_ignores_them():
     ds = load_data(held, Path("."))
     carries = {}
     for name, spec in (("held", held), ("plain", plain)):
-        prog = compile_structure([spec], ds)
+        prog = compile_program([spec], ds)
         knobs = {k: v[0] for k, v in prog.pack([spec]).items()}
         carries[name] = prog.init(knobs, seed_key(5), ds.x, ds.y)
         assert prog.test_names == (("test_divergence", "test_accuracy", "test_macro_f1", "test_recall_0", "test_recall_1",

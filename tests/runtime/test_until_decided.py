@@ -50,7 +50,7 @@ def test_clear_arm_settles_at_the_first_look_and_stops_running(uninterrupted):
     assert sorted(per_arm["stalled"]) == list(range(6))          # no seed after its look
     assert sorted(per_arm["light"]) == sorted(per_arm["base"])   # open arms share their new seeds
     assert len(per_arm["base"]) == decided[("base", "light")][2] > 6
-    # one width for the structure in every look: 3 variants × a round of 3 seeds
+    # one width for the program in every look: 3 variants × a round of 3 seeds
     assert set(runs["lane_width"]) == {9}
 
 

@@ -151,17 +151,49 @@ def test_runs_from_workers_record_a_one_thread_pool(one_and_two):
     assert envs == {1}
 
 
-def test_workers_report_each_group_when_it_is_back(one_and_two):
-    _, _, events, _ = one_and_two
+def test_workers_report_each_group_as_it_starts_then_its_epochs(one_and_two):
+    _, _, events, infos = one_and_two
     assert events.count("group") == events.count("stored") == 2
+    # every epoch event names its group, which has started and is not stored yet
+    running = set()
+    for event, info in zip(events, infos):
+        if event == "group":
+            running.add(info["group"].group_id)
+        elif event == "epoch":
+            assert info["group"].group_id in running and info["done"] == info["total"] == 1
+        elif event == "stored":
+            running.remove(info["group"].group_id)
+    assert events.count("epoch") == 2 and not running
+
+
+def test_worker_events_reach_progress_in_order_and_once():
+    import queue
+    from types import SimpleNamespace
+
+    from runtime.workers import _Relay
+
+    run = SimpleNamespace(variant=SimpleNamespace(spec=SimpleNamespace(training=SimpleNamespace(epochs=3))))
+    a, b = (SimpleNamespace(group_id=gid, runs=[run]) for gid in ("a", "b"))
+    told, events = [], queue.Queue()
+    relay = _Relay(lambda event, **info: told.append((event, info["group"].group_id, info.get("done"))),
+                   {"a": a, "b": b}, events)
+    events.put(("group", "a", 0, 0))
+    events.put(("epoch", "a", 1, 3))
+    relay.relay()
+    assert told == [("group", "a", None), ("epoch", "a", 1)]      # as the worker sends them
+    relay.finished(a)                                              # back before its last epochs
+    relay.finished(b)                                              # a group whose events never came
+    events.put(("epoch", "a", 2, 3))                               # late: already told whole
+    relay.relay()
+    assert told[2:] == [("epoch", "a", 3), ("group", "b", None), ("epoch", "b", 3)]
 
 
 def test_the_printed_estimate_is_for_the_workers_the_run_uses(one_and_two):
-    # Two groups of one structure on two workers: both compile side by side, so the wall time
+    # Two groups of one program on two workers: both compile side by side, so the wall time
     # is one compile and one group's execution, not the sum over groups.
     _, _, events, infos = one_and_two
     estimate = infos[events.index("plan")]["estimate"]
-    assert estimate.workers == 2 and estimate.describe().endswith(" on 2 workers")
+    assert estimate.workers == 2 and " on 2 workers" in estimate.describe()
 
 
 def test_an_interrupt_keeps_what_was_stored_and_ends_the_workers(tiny_spec, tmp_path):
@@ -179,6 +211,29 @@ def test_an_interrupt_keeps_what_was_stored_and_ends_the_workers(tiny_spec, tmp_
     assert stored.runs.num_rows == 2
     again = run_study(loaded, tmp_path / "out", lanes=2, workers=2)
     assert (again.computed, again.reused) == (4, 2)
+
+
+def test_a_ctrl_c_while_the_workers_start_stops_the_run(tiny_spec, tmp_path, monkeypatch):
+    # A Ctrl-C at a terminal goes to the whole process group: here to this process and to the
+    # worker just started, from inside the start of each worker. This process once ignored SIGINT
+    # while it started its workers, and such a Ctrl-C was lost: the run went on and exited 0.
+    import multiprocessing.util
+    import signal
+
+    loaded = load_study(tiny_spec(tmp_path, "starting", seeds=2, epochs=2))  # 4 runs: 2 groups of 2
+    start = multiprocessing.util.spawnv_passfds
+
+    def start_then_ctrl_c(path, args, passfds):
+        pid = start(path, args, passfds)
+        os.kill(pid, signal.SIGINT)
+        os.kill(os.getpid(), signal.SIGINT)
+        return pid
+
+    monkeypatch.setattr(multiprocessing.util, "spawnv_passfds", start_then_ctrl_c)
+    with interrupt_guard() as ctrl_c, pytest.raises(Interrupted):
+        run_study(loaded, tmp_path / "out", lanes=2, workers=2, checkpoint=ctrl_c.check)
+    assert ctrl_c.requested and multiprocessing.active_children() == []
+    assert not (tmp_path / "out" / loaded.result_set / "runs.parquet").exists()
 
 
 def test_a_study_of_one_group_stays_in_this_process(tiny_spec, tmp_path):
