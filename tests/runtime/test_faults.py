@@ -10,6 +10,7 @@ from __future__ import annotations
 import errno
 import os
 import random
+import shutil
 import signal
 import subprocess
 import sys
@@ -186,13 +187,21 @@ def test_two_writers_at_once_store_every_run_once(tmp_path, reference):
 
 
 # ── a full disk, an unwritable folder ───────────────────────────────────────────────────────────
-@pytest.fixture()
-def stored(tmp_path, reference):
+@pytest.fixture(scope="module")
+def stored_once(tmp_path_factory, reference):
     """A complete result set (copied from the reference run's numbers by a fresh in-process run)."""
     spec, _ = reference
-    result = CliRunner().invoke(app, ["run", str(spec), "--results", str(tmp_path / "out"), "--lanes", "1", "--quiet"])
+    out = tmp_path_factory.mktemp("stored")
+    result = CliRunner().invoke(app, ["run", str(spec), "--results", str(out), "--lanes", "1", "--quiet"])
     assert result.exit_code == 0, result.stderr
-    folder = Path(result.stdout.strip().splitlines()[-1])
+    return spec, Path(result.stdout.strip().splitlines()[-1])
+
+
+@pytest.fixture()
+def stored(tmp_path, stored_once):
+    """A copy of it for each test, which tries to damage it (computed once: it was the same set each time)."""
+    spec, computed = stored_once
+    folder = shutil.copytree(computed, tmp_path / "out" / computed.name)
     return spec, folder, {p.name: p.read_bytes() for p in folder.iterdir() if p.is_file()}
 
 
