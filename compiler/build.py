@@ -74,7 +74,7 @@ from compiler.hashing import knobs_of, program_key
 from compiler.spec import MACRO_F1, RECALL, Spec, Strict, class_metrics, split_sizes
 
 __all__ = ["Program", "Carry", "compile_program", "class_scores", "zero_knobs", "fit_standardization", "knob_vector",
-           "seed_key", "param_hash", "permutation", "stable_argsort",
+           "seed_key", "param_hash", "permutation",
            "SPLIT", "INIT", "SHUFFLE", "DROPOUT"]
 
 # Purpose tags of the random streams; fixed forever, since they decide every run's bits.
@@ -135,54 +135,7 @@ def permutation(key: jax.Array, n: int) -> jax.Array:
     One stable sort instead of ``jax.random.permutation``'s repeated rounds, which compile about
     twice as slowly. Rows whose keys tie (about n²/2³³ pairs per call: 0.0005 for 2048 rows,
     1 for 90 000) keep their relative order in that one permutation."""
-    return stable_argsort(jax.random.bits(key, (n,)))
-
-
-# Above this many rows the keys' high bits alone tie in runs long enough that the repair of
-# :func:`stable_argsort` costs more passes than the general sort it saves.
-_PACKED_ROWS = 1 << 16
-
-
-def stable_argsort(keys: jax.Array) -> jax.Array:
-    """``jnp.argsort(keys)`` (stable, int32) of a vector of uint32 ``keys``, bit for bit, sorting
-    one array instead of two.
-
-    XLA:CPU sorts one array of plain numbers with ``std::sort`` and a built-in comparison, but a
-    key array and its indices (an argsort) through a compiled comparison called per pair: 3× as
-    long for the 4000 rows of one epoch's shuffle. So each key's low ``b`` bits (``2ᵇ ≥ n``)
-    are replaced by its index, which makes the packed values distinct, and only those are sorted:
-    the order is the argsort's except inside runs of keys whose high bits tie (about n²/2³³⁻ᵇ
-    pairs: 8 for 4000 rows). Odd–even transposition passes on (key, index) pairs, repeated until
-    one changes nothing (typically twice), put those runs in the argsort's order: (key, index)
-    pairs are distinct, so the order they sort into is unique."""
-    n = keys.shape[0]
-    if n > _PACKED_ROWS:
-        return jnp.argsort(keys).astype(jnp.int32)
-    low = jnp.uint32((1 << max(1, (n - 1).bit_length())) - 1)
-    packed = jax.lax.sort((keys & ~low) | jnp.arange(n, dtype=jnp.uint32), is_stable=False)
-    order = (packed & low).astype(jnp.int32)
-    position = jnp.arange(n)
-
-    def exchange(pairs, first):
-        # compare-exchange of the neighbours (i, i + 1) for every i ≡ first (mod 2)
-        order, key = pairs
-        later = lambda a: jnp.concatenate([a[1:], a[-1:]])
-        earlier = lambda a: jnp.concatenate([a[:1], a[:-1]])
-        above = lambda ka, oa, kb, ob: (ka > kb) | ((ka == kb) & (oa > ob))
-        left = position % 2 == first
-        swap = jnp.where(left, (position + 1 < n) & above(key, order, later(key), later(order)),
-                         (position >= 1) & above(earlier(key), earlier(order), key, order))
-        moved = lambda a: jnp.where(swap, jnp.where(left, later(a), earlier(a)), a)
-        return (moved(order), moved(key)), jnp.any(swap)
-
-    def passes(state):
-        pairs, _ = state
-        pairs, even = exchange(pairs, 0)
-        pairs, odd = exchange(pairs, 1)
-        return pairs, even | odd
-
-    (order, _), _ = jax.lax.while_loop(lambda state: state[1], passes, ((order, keys[order]), jnp.bool_(True)))
-    return order
+    return jnp.argsort(jax.random.bits(key, (n,))).astype(jnp.int32)
 
 
 def knob_vector(variant: Spec) -> dict[str, np.float32]:

@@ -449,20 +449,6 @@ def test_linear_l2_reaches_the_ridge_optimum(tmp_path):
     np.testing.assert_allclose(w[:, 0], ref.coef_, rtol=1e-3, atol=1e-2)
 
 
-@pytest.mark.parametrize("n", [1, 2, 3, 7, 100, 4000, 4097, 70_000])
-def test_stable_argsort_is_numpys_stable_argsort(n):
-    # numpy.argsort(kind="stable") is the reference: ties (forced by drawing from few values, and
-    # by keys equal in their high bits only) keep index order, bit for bit.
-    rng = np.random.default_rng(n)
-    f = jax.jit(build.stable_argsort)
-    for values in (2, 7, 1 << 12, 1 << 32):
-        keys = rng.integers(0, values, n, dtype=np.uint64).astype(np.uint32)
-        keys[: n // 2] &= np.uint32(0xFFFF0000) if values == 1 << 32 else np.uint32(0xFFFFFFFF)
-        got = np.asarray(f(jnp.asarray(keys)))
-        assert got.dtype == np.int32
-        np.testing.assert_array_equal(got, np.argsort(keys, kind="stable"))
-
-
 def test_permutation_is_a_uniform_shuffle():
     n, trials = 6, 3000
     perms = np.asarray(jax.vmap(lambda k: build.permutation(k, n))(jax.random.split(jax.random.key(0), trials)))
